@@ -1,0 +1,46 @@
+# stationflow: two commands on a fresh clone — `make demo` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP_RUN := $(VENV)/.installed-run
+STAMP_TEST := $(VENV)/.installed-test
+OUT ?= demo_output
+
+.PHONY: demo demo-town test bench sample-data clean help
+
+help:
+	@echo "make demo       run the frost-night demo end to end and print where the report is"
+	@echo "make demo-town  run the PM2.5 town demo"
+	@echo "make test       run the whole test suite"
+	@echo "make bench      run the benchmarks (not part of make test)"
+	@echo "make sample-data regenerate sample_data/ from stationflow.synthetic"
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(STAMP_RUN): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e .
+	@touch $@
+
+$(STAMP_TEST): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	@touch $@ $(STAMP_RUN)
+
+demo: $(STAMP_RUN)
+	$(BIN)/stationflow demo --scenario frost --out $(OUT)/frost
+
+demo-town: $(STAMP_RUN)
+	$(BIN)/stationflow demo --scenario town --out $(OUT)/town
+
+test: $(STAMP_TEST)
+	$(BIN)/python -m pytest -q
+
+bench: $(STAMP_TEST)
+	$(BIN)/python benchmarks/run.py
+
+sample-data: $(STAMP_RUN)
+	$(BIN)/python -m stationflow.synthetic sample_data
+
+clean:
+	rm -rf $(VENV) $(OUT) .pytest_cache

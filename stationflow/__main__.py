@@ -1,0 +1,5 @@
+"""``python -m stationflow``: the command line."""
+
+from .cli import main
+
+main()

@@ -1,0 +1,242 @@
+"""TOML configuration: every key, its default, and validation.
+
+A configuration is one TOML file; every key is optional.  :data:`SCHEMA`
+lists each key with its default, the accepted type and a one-line
+explanation; ``docs/configuration.md`` documents the same keys and a test
+checks that the two agree.  Thresholds that come from a published source say
+so in their description; the rest are marked "common practice".
+"""
+
+from __future__ import annotations
+
+import copy
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import ConfigError
+
+
+@dataclass(frozen=True)
+class Key:
+    """One configuration key: default, accepted Python types, description."""
+
+    default: Any
+    types: tuple[type, ...]
+    doc: str
+    choices: tuple[str, ...] = ()
+
+
+# Per-variable QC defaults live in qc.py (DEFAULT_RANGE, ...) and are merged
+# with the user's per-variable tables; here they are free-form tables.
+FREE_TABLES = {
+    "stations.columns",
+    "observations.columns",
+    "observations.units",
+    "uncertainty.sensor",
+    "qc.range",
+    "qc.step",
+    "qc.persistence",
+}
+
+SCHEMA: dict[str, dict[str, Key]] = {
+    "stations": {
+        "delimiter": Key(",", (str,), "field separator of the stations CSV"),
+        "skip_lines": Key([], (list,), "1-based line numbers to skip (for example a units row)"),
+        "encoding": Key("utf-8", (str,), "text encoding of the file"),
+        "columns": Key({}, (dict,), "source column -> canonical column (station_id, latitude, longitude, elevation, sensor_height)"),
+    },
+    "observations": {
+        "format": Key("auto", (str,), "input format; auto picks by file ending (.csv, .parquet, .nc/.cdf, or a folder)",
+                      ("auto", "csv", "parquet", "netcdf")),
+        "layout": Key("long", (str,), "long: one row per station and time; wide: one column per station",
+                      ("long", "wide")),
+        "wide_variable": Key("air_temperature", (str,), "with layout = 'wide': the variable the station columns hold"),
+        "delimiter": Key(",", (str,), "field separator; ';' for many European exports"),
+        "skip_lines": Key([], (list,), "1-based line numbers to skip (for example a units row)"),
+        "encoding": Key("utf-8", (str,), "text encoding of the file"),
+        "timezone": Key("UTC", (str,), "IANA name or fixed offset like '+08:00'; applied to naive timestamps"),
+        "time_format": Key("", (str,), "strftime format of the time column, e.g. '%d/%m/%Y %H:%M' (default: ISO 8601)"),
+        "time_columns": Key([], (list,), "instead of one time column: columns assembled in this order (year, month, day, hour[, minute[, second]])"),
+        "missing_values": Key([], (list,), "strings that mean 'no value' (empty fields always do)"),
+        "columns": Key({}, (dict,), "source column -> canonical name (or a user scalar's name)"),
+        "units": Key({}, (dict,), "canonical name -> unit of the source values"),
+    },
+    "uncertainty": {
+        "sensor": Key({}, (dict,), "variable -> standard uncertainty of one reading, in the variable's SI (or declared) unit"),
+        "wind_component": Key(0.5, (int, float), "standard uncertainty of u and v [m s-1] (WMO-No. 8 Annex 1.E, from memory)"),
+        "calibration": Key(0.0, (int, float), "standard uncertainty of each sensor's constant offset, correlated in time [variable unit]"),
+        "gradient_error": Key("larger", (str,), "prior: from sensor uncertainty; posterior: from fit residuals where dof > 0; larger: the larger of the two",
+                              ("prior", "posterior", "larger")),
+    },
+    "qc": {
+        "enabled": Key(True, (bool,), "run the quality-control tests"),
+        "use_suspect": Key(False, (bool,), "let the estimator use values flagged suspect as well as good ones"),
+        "calm_speed": Key(0.5, (int, float), "wind speeds below this are calm [m s-1] (ICAO Annex 3 / METAR practice)"),
+        "range": Key({}, (dict,), "variable -> [low, high] plausible range in SI units"),
+        "step": Key({}, (dict,), "variable -> [[minutes, limit], ...] largest plausible change over an interval"),
+        "persistence": Key({}, (dict,), "variable -> [minimum range, window in minutes]: less variation than this is suspect"),
+        "dew_point_tolerance": Key(0.5, (int, float), "dew point may exceed air temperature by this much before it is bad [K] (common practice)"),
+        "spatial": Key(True, (bool,), "run the spatial (buddy) test"),
+        "spatial_neighbours": Key(6, (int,), "neighbours used to predict each station"),
+        "spatial_max_distance_km": Key(0.0, (int, float), "ignore neighbours farther than this (0 = no limit) [km]"),
+        "spatial_suspect": Key(3.0, (int, float), "suspect beyond this many robust standard deviations (common practice)"),
+        "spatial_bad": Key(6.0, (int, float), "bad beyond this many robust standard deviations (common practice)"),
+        "spatial_floor": Key({}, (dict,), "variable -> smallest residual that can be flagged, in SI units"),
+        "spatial_light_wind": Key(2.0, (int, float), "at night below this network wind the spatial test is relaxed [m s-1] (REFERENCES 4, common practice)"),
+        "spatial_relax": Key(2.0, (int, float), "factor applied to spatial thresholds at night in light wind; such values are never flagged bad"),
+    },
+    "network": {
+        "clusters": Key("delaunay", (str,), "how stations are grouped", ("delaunay", "file", "nearest")),
+        "cluster_file": Key("", (str,), "with clusters = 'file': CSV with columns cluster, station_id"),
+        "targets": Key([], (list,), "with clusters = 'nearest': station ids to centre clusters on (empty = every station)"),
+        "k": Key(5, (int,), "with clusters = 'nearest': stations per cluster, the target included"),
+        "min_angle": Key(20.0, (int, float), "reject triangles with a smaller interior angle [degree] (common practice, REFERENCES 1.4)"),
+        "max_angle": Key(155.0, (int, float), "reject triangles with a larger interior angle [degree] (Huntley et al. 2022)"),
+        "min_shape": Key(0.2, (int, float), "reject clusters with a smaller shape factor 4*sqrt(3)*area/sum(L^2) (Huntley et al. 2022)"),
+        "min_spread": Key(0.3, (int, float), "reject clusters of more than 3 stations with sqrt(lambda2/lambda1) below this (common practice)"),
+        "max_side_km": Key(0.0, (int, float), "reject clusters with a longer side (0 = no limit) [km]"),
+        "max_noise_amplification": Key(0.0, (int, float), "reject clusters whose gradient error per unit sensor noise exceeds this (0 = no limit) [km-1]"),
+    },
+    "budget": {
+        "variable": Key("air_temperature", (str,), "the scalar to budget (air_temperature or a user scalar such as pm2_5)"),
+        "vertical": Key("potential_temperature", (str,), "elevation handling for air temperature",
+                        ("potential_temperature", "regression", "none")),
+        "interval": Key("", (str,), "analysis time step, e.g. '10min' (default: inferred from the data)"),
+        "window": Key("", (str,), "centred window for tendencies and averaged terms (default: 3 intervals)"),
+        "min_stations": Key(3, (int,), "fewest good stations a plane fit may use"),
+        "significance": Key(2.0, (int, float), "a term counts when it exceeds this many standard errors (REFERENCES 2.1, common practice)"),
+        "dominance": Key(0.67, (int, float), "share |A|/(|A|+|R|) above which the change is advective (below 1 - this: in situ) (common practice)"),
+        "min_rate": Key(0.0, (int, float), "terms smaller than this are never significant [variable unit per hour]"),
+        "chunk": Key("", (str,), "process this much time at once, e.g. '7D' (default: all at once)"),
+    },
+}
+
+
+def _walk_defaults() -> dict[str, dict[str, Any]]:
+    return {sec: {k: copy.deepcopy(key.default) for k, key in keys.items()} for sec, keys in SCHEMA.items()}
+
+
+@dataclass
+class Config:
+    """A validated configuration: ``cfg.section['key']`` for every key."""
+
+    data: dict[str, dict[str, Any]] = field(default_factory=_walk_defaults)
+    source: str | None = None
+
+    def __getitem__(self, section: str) -> dict[str, Any]:
+        return self.data[section]
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain nested dict (for run.json)."""
+        return copy.deepcopy(self.data)
+
+
+def _check_type(where: str, value: Any, key: Key) -> Any:
+    if isinstance(value, bool) and bool not in key.types:
+        raise ConfigError(f"{where} must be {_type_names(key.types)}, got {value!r}")
+    if not isinstance(value, key.types):
+        raise ConfigError(f"{where} must be {_type_names(key.types)}, got {value!r}")
+    if key.choices and value not in key.choices:
+        raise ConfigError(f"{where} = {value!r} is not one of: {', '.join(key.choices)}")
+    return value
+
+
+def _type_names(types: tuple[type, ...]) -> str:
+    names = {bool: "true or false", int: "a number", float: "a number", str: "a string",
+             list: "a list", dict: "a table"}
+    return " or ".join(dict.fromkeys(names.get(t, t.__name__) for t in types))
+
+
+def from_dict(raw: dict[str, Any], *, source: str | None = None) -> Config:
+    """Validate a nested dict against :data:`SCHEMA` and fill defaults."""
+    where0 = f"{source}: " if source else ""
+    cfg = Config(source=source)
+    for section, table in raw.items():
+        if section not in SCHEMA:
+            raise ConfigError(
+                f"{where0}unknown section [{section}]; known sections: {', '.join(SCHEMA)}"
+            )
+        if not isinstance(table, dict):
+            raise ConfigError(f"{where0}[{section}] must be a table")
+        for key, value in table.items():
+            if key not in SCHEMA[section]:
+                raise ConfigError(
+                    f"{where0}unknown key {section}.{key}; known keys in [{section}]: "
+                    f"{', '.join(SCHEMA[section])}"
+                )
+            cfg.data[section][key] = _check_type(f"{where0}{section}.{key}", value, SCHEMA[section][key])
+    _validate_values(cfg, where0)
+    return cfg
+
+
+def _validate_values(cfg: Config, where0: str) -> None:
+    for sec in ("stations", "observations"):
+        d = cfg[sec]["delimiter"]
+        if len(d) != 1:
+            raise ConfigError(f"{where0}{sec}.delimiter must be one character, got {d!r}")
+        for n in cfg[sec]["skip_lines"]:
+            if not isinstance(n, int) or isinstance(n, bool) or n < 1:
+                raise ConfigError(f"{where0}{sec}.skip_lines must hold 1-based line numbers, got {n!r}")
+        for k, v in cfg[sec]["columns"].items():
+            if not isinstance(v, str):
+                raise ConfigError(f"{where0}{sec}.columns.{k} must be a string")
+    for k, v in cfg["observations"]["units"].items():
+        if not isinstance(v, str):
+            raise ConfigError(f"{where0}observations.units.{k} must be a string, got {v!r}")
+    for k, v in cfg["uncertainty"]["sensor"].items():
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or v <= 0:
+            raise ConfigError(f"{where0}uncertainty.sensor.{k} must be a positive number, got {v!r}")
+    for k, v in cfg["qc"]["range"].items():
+        if not (isinstance(v, list) and len(v) == 2 and all(isinstance(x, (int, float)) for x in v) and v[0] < v[1]):
+            raise ConfigError(f"{where0}qc.range.{k} must be [low, high] with low < high, got {v!r}")
+    for k, v in cfg["qc"]["step"].items():
+        ok = isinstance(v, list) and len(v) >= 1 and all(
+            isinstance(p, list) and len(p) == 2 and all(isinstance(x, (int, float)) and x > 0 for x in p) for p in v)
+        if not ok:
+            raise ConfigError(f"{where0}qc.step.{k} must be a list of [minutes, limit] pairs, got {v!r}")
+    for k, v in cfg["qc"]["persistence"].items():
+        if not (isinstance(v, list) and len(v) == 2 and all(isinstance(x, (int, float)) and x >= 0 for x in v)):
+            raise ConfigError(f"{where0}qc.persistence.{k} must be [minimum range, window minutes], got {v!r}")
+    for name in ("min_stations",):
+        if cfg["budget"][name] < 3:
+            raise ConfigError(f"{where0}budget.{name} must be at least 3")
+    if cfg["network"]["k"] < 3:
+        raise ConfigError(f"{where0}network.k must be at least 3")
+    if cfg["network"]["clusters"] == "file" and not cfg["network"]["cluster_file"]:
+        raise ConfigError(f"{where0}network.clusters = 'file' needs network.cluster_file")
+    if not 0.5 <= cfg["budget"]["dominance"] < 1.0:
+        raise ConfigError(f"{where0}budget.dominance must be in [0.5, 1)")
+    from .align import parse_duration  # local: align imports nothing from here
+
+    for name in ("interval", "window", "chunk"):
+        text = cfg["budget"][name]
+        if text:
+            try:
+                parse_duration(text)
+            except ValueError:
+                raise ConfigError(f"{where0}budget.{name} = {text!r} is not a duration like '10min', '1h' or '7D'") from None
+
+
+def load(path: str | Path | None) -> Config:
+    """Read and validate a TOML file; ``None`` gives the defaults."""
+    if path is None:
+        return Config()
+    p = Path(path)
+    try:
+        text = p.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"{p}: configuration file not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{p}: cannot read configuration ({exc})") from None
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{p}: not valid TOML ({exc})") from None
+    cfg = from_dict(raw, source=str(p))
+    base = p.parent
+    cf = cfg["network"]["cluster_file"]
+    if cf and not Path(cf).is_absolute():
+        cfg.data["network"]["cluster_file"] = str((base / cf))
+    return cfg

@@ -1,0 +1,843 @@
+"""Read station metadata and observations into the canonical tidy form.
+
+The result of :func:`read_observations` is an :class:`IngestResult`:
+
+- ``observations``: one row per (``station_id``, ``time``), ``time`` a UTC
+  timestamp, one float column per variable named by its canonical name, in
+  SI units (K, m s-1, degree, %, Pa); user scalars keep their declared unit;
+- ``stations``: ``station_id``, ``latitude`` and ``longitude`` [degree,
+  WGS84], ``elevation`` [m above sea level], ``sensor_height`` [m above
+  ground, NaN when not given];
+- ``rejected``: ``file``, ``line`` (1-based; the header is line 1; for
+  Parquet and netCDF the 1-based record number) and ``reason`` for every row
+  that could not be used;
+- ``accounting``: ``rows_read`` = ``rows_accepted`` + ``rows_rejected``
+  (data rows; header, skipped and blank lines are not rows), and
+  ``duplicates_collapsed`` (identical repeats, counted as accepted).
+
+Row problems never stop the run; file problems raise :class:`IngestError`
+with one line that names the file, what is wrong and how to fix it.
+"""
+
+from __future__ import annotations
+
+import csv
+import datetime as _dt
+import io
+import logging
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+import numpy as np
+import pandas as pd
+
+from . import variables as V
+from .config import Config
+from .errors import ConfigError, IngestError
+
+log = logging.getLogger(__name__)
+
+_NEEDS_OBS = ("station_id",)
+_TZ_SUFFIX = r"(?:[zZ]|[+-]\d{2}(?::?\d{2})?)$"
+_MAX_REASON_VALUE = 40
+
+
+@dataclass
+class TextTable:
+    """Raw string cells of a delimited file and the source line of each row."""
+
+    path: str
+    header: list[str]
+    cells: pd.DataFrame  # all columns as strings
+    lines: np.ndarray  # 1-based source line of each row
+    rejected: list[tuple[str, int, str]] = field(default_factory=list)
+
+
+@dataclass
+class IngestResult:
+    """Canonical observations, the station table and the row accounting."""
+
+    observations: pd.DataFrame
+    stations: pd.DataFrame
+    rejected: pd.DataFrame
+    accounting: dict[str, int]
+    units: dict[str, str]
+    sources: list[str]
+    ignored_columns: list[str] = field(default_factory=list)
+
+    @property
+    def variables(self) -> list[str]:
+        """Names of the variable columns."""
+        return [c for c in self.observations.columns if c not in V.ID_COLUMNS]
+
+
+# --------------------------------------------------------------------------
+# delimited text
+# --------------------------------------------------------------------------
+
+def _read_bytes(path: str | Path) -> bytes:
+    p = Path(path)
+    try:
+        return p.read_bytes()
+    except FileNotFoundError:
+        raise IngestError(f"{p}: file not found; check the path") from None
+    except IsADirectoryError:
+        raise IngestError(f"{p}: is a folder, expected a file") from None
+    except OSError as exc:
+        raise IngestError(f"{p}: cannot read the file ({exc.strerror})") from None
+
+
+def read_text_table(
+    path: str | Path,
+    *,
+    delimiter: str = ",",
+    skip_lines: list[int] | tuple[int, ...] = (),
+    encoding: str = "utf-8",
+    section: str = "observations",
+) -> TextTable:
+    """Read a delimited text file into string cells, keeping source line numbers.
+
+    Lines with the wrong number of fields or bytes that are not valid text
+    are rejected with their line number; everything else is returned as
+    strings for the caller to parse.  Blank lines and ``skip_lines`` are not
+    rows.  Vectorised over lines with numpy; only rejected lines are looked
+    at one by one.
+    """
+    name = str(path)
+    data = _read_bytes(path)
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    rejected: list[tuple[str, int, str]] = []
+    enc = encoding.lower().replace("_", "-")
+    if enc not in ("utf-8", "utf8"):
+        try:
+            data = data.decode(encoding).encode("utf-8")
+        except LookupError:
+            raise ConfigError(f"{section}.encoding = {encoding!r} is not a known text encoding") from None
+        except UnicodeDecodeError as exc:
+            raise IngestError(f"{name}: not valid {encoding} text ({exc.reason}); set [{section}] encoding") from None
+    if not data.strip():
+        raise IngestError(f"{name}: the file is empty; expected a header line and data rows")
+    arr = np.frombuffer(data, np.uint8)
+    nl = np.flatnonzero(arr == 10)
+    starts = np.concatenate([[0], nl + 1])
+    ends = np.concatenate([nl, [arr.size]])
+    if starts[-1] >= arr.size:
+        starts, ends = starts[:-1], ends[:-1]
+    cr = (ends > starts) & (arr[np.maximum(ends - 1, 0)] == 13)
+    ends_c = ends - cr
+    n_lines = starts.size
+    lineno = np.arange(1, n_lines + 1)
+    # blank lines: nothing but spaces/tabs
+    nonspace = np.concatenate([[0], np.cumsum((arr != 32) & (arr != 9) & (arr != 13))])
+    blank = (nonspace[ends_c] - nonspace[starts]) == 0
+    skip = np.zeros(n_lines, bool)
+    if skip_lines:
+        idx = np.asarray([n - 1 for n in skip_lines if 0 < n <= n_lines], dtype=int)
+        skip[idx] = True
+    candidates = np.flatnonzero(~blank & ~skip)
+    if candidates.size == 0:
+        raise IngestError(f"{name}: no header line found (every line is blank or skipped)")
+    h = candidates[0]
+    header_text = data[starts[h]:ends_c[h]]
+    try:
+        header_str = header_text.decode("utf-8")
+    except UnicodeDecodeError:
+        raise IngestError(f"{name}: line {h + 1} (header) is not valid UTF-8 text; set [{section}] encoding") from None
+    header = [c.strip() for c in next(csv.reader([header_str], delimiter=delimiter))]
+    if len(header) == 1:
+        for other in (";", "\t", ",", "|"):
+            if other != delimiter and other in header_str:
+                shown = {"\t": "\\t"}.get(other, other)
+                raise IngestError(
+                    f"{name}: the header has one column but contains {shown!r}; "
+                    f"set [{section}] delimiter = \"{shown}\" in the configuration"
+                )
+    if any(c == "" for c in header):
+        raise IngestError(f"{name}: line {h + 1} (header) has an empty column name")
+    dupes = sorted({c for c in header if header.count(c) > 1})
+    if dupes:
+        raise IngestError(f"{name}: the header repeats column(s) {', '.join(dupes)}; column names must be unique")
+    is_row = ~blank & ~skip
+    is_row[h] = False
+    # bytes that are not valid UTF-8: find the lines (error path only)
+    try:
+        data.decode("utf-8")
+    except UnicodeDecodeError:
+        for i in np.flatnonzero(is_row):
+            try:
+                data[starts[i]:ends[i]].decode("utf-8")
+            except UnicodeDecodeError:
+                is_row[i] = False
+                rejected.append((name, int(i + 1), f"not valid UTF-8 text (set [{section}] encoding)"))
+    # count fields, honouring double quotes
+    d = ord(delimiter)
+    is_delim = arr == d
+    if 34 in arr:
+        quote_cum = np.concatenate([[0], np.cumsum(arr == 34)])
+        pos = np.flatnonzero(is_delim)
+        line_of = np.searchsorted(starts, pos, side="right") - 1
+        inside = (quote_cum[pos] - quote_cum[starts[line_of]]) % 2 == 1
+        is_delim = is_delim.copy()
+        is_delim[pos[inside]] = False
+    delim_cum = np.concatenate([[0], np.cumsum(is_delim)])
+    n_fields = delim_cum[ends_c] - delim_cum[starts] + 1
+    wrong = is_row & (n_fields != len(header))
+    for i in np.flatnonzero(wrong):
+        rejected.append((name, int(i + 1), f"expected {len(header)} fields, found {int(n_fields[i])} (check [{section}] delimiter)"))
+    is_row &= ~wrong
+    rows = np.flatnonzero(is_row)
+    cells = _parse_rows(data, arr, starts, ends, rows, header, delimiter)
+    if len(cells) != rows.size:  # quoting the fast path could not follow
+        cells = _parse_rows_python(data, starts, ends, rows, header, delimiter)
+    return TextTable(name, header, cells, lineno[rows], rejected)
+
+
+def _parse_rows(data, arr, starts, ends, rows, header, delimiter) -> pd.DataFrame:
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    if rows.size == 0:
+        return pd.DataFrame({c: pd.Series([], dtype="str") for c in header})
+    # keep the bytes of the selected lines, each with its newline
+    keep_line = np.zeros(starts.size, bool)
+    keep_line[rows] = True
+    lengths = np.minimum(ends + 1, arr.size) - starts
+    keep = np.repeat(keep_line, lengths)
+    body = arr[: keep.size][keep].tobytes()
+    if not body.endswith(b"\n"):
+        body += b"\n"
+    try:
+        table = pacsv.read_csv(
+            io.BytesIO(body),
+            read_options=pacsv.ReadOptions(column_names=header, use_threads=True, block_size=1 << 24),
+            parse_options=pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=False, ignore_empty_lines=False),
+            convert_options=pacsv.ConvertOptions(
+                column_types={c: pa.string() for c in header},
+                strings_can_be_null=False, quoted_strings_can_be_null=False, null_values=[],
+            ),
+        )
+    except pa.ArrowInvalid:
+        return pd.DataFrame({c: [] for c in header})
+    return table.to_pandas(types_mapper={pa.string(): pd.StringDtype("pyarrow")}.get)
+
+
+def _parse_rows_python(data, starts, ends, rows, header, delimiter) -> pd.DataFrame:
+    text_lines = [data[starts[i]:ends[i]].decode("utf-8").rstrip("\r") for i in rows]
+    parsed = list(csv.reader(text_lines, delimiter=delimiter))
+    parsed = [(p + [""] * len(header))[: len(header)] for p in parsed]
+    return pd.DataFrame(parsed, columns=header, dtype="string")
+
+
+# --------------------------------------------------------------------------
+# shared parsing helpers
+# --------------------------------------------------------------------------
+
+def _clip(text: object) -> str:
+    s = str(text)
+    return s if len(s) <= _MAX_REASON_VALUE else s[: _MAX_REASON_VALUE - 3] + "..."
+
+
+def _as_text(col: pd.Series) -> pd.Series:
+    return col.astype("string").str.strip()
+
+
+def parse_numbers(col: pd.Series, missing: set[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Parse a column to float. Returns (values, bad) with NaN for missing.
+
+    ``bad`` marks cells that are present but not a finite number.
+    """
+    if pd.api.types.is_numeric_dtype(col.dtype) and not pd.api.types.is_bool_dtype(col.dtype):
+        x = col.to_numpy(dtype=float, na_value=np.nan)
+        return x, np.isinf(x)
+    s = _as_text(col)
+    absent = s.isna() | (s == "") | s.isin(missing)
+    absent = absent.fillna(True).to_numpy(bool)
+    x = pd.to_numeric(s.mask(absent), errors="coerce").to_numpy(float, na_value=np.nan)
+    bad = ~absent & ~np.isfinite(x)
+    x[bad] = np.nan
+    return x, bad
+
+
+def _timezone(name: str) -> _dt.tzinfo:
+    m = re.fullmatch(r"(?:UTC)?\s*([+-])(\d{1,2})(?::?(\d{2}))?", name.strip())
+    if m:
+        sign = 1 if m.group(1) == "+" else -1
+        off = _dt.timedelta(hours=int(m.group(2)), minutes=int(m.group(3) or 0))
+        return _dt.timezone(sign * off)
+    if name.strip().upper() in ("UTC", "Z", "GMT"):
+        return _dt.timezone.utc
+    try:
+        return ZoneInfo(name.strip())
+    except (ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(
+            f"observations.timezone = {name!r} is not an IANA time zone (like 'Europe/Vienna') "
+            "or a fixed offset (like '+08:00')"
+        ) from None
+
+
+def parse_times(
+    frame: pd.DataFrame,
+    *,
+    time_column: str | None,
+    time_columns: list[str],
+    time_format: str,
+    timezone: str,
+    station: pd.Series,
+) -> tuple[pd.Series, np.ndarray, list[str | None]]:
+    """Parse times to UTC. Returns (times, bad_mask, reasons per bad row).
+
+    Naive times are local times in ``timezone``.  At a daylight-saving
+    fall-back, an ambiguous local time is resolved from the station's order
+    in the file (first occurrence summer time, second standard time); if
+    that cannot be told the row is rejected, as are local times that do not
+    exist (spring-forward gap).
+    """
+    n = len(frame)
+    reasons: list[str | None] = [None] * n
+    if time_columns:
+        parts = {}
+        for key, colname in zip(("year", "month", "day", "hour", "minute", "second"), time_columns):
+            parts[key] = pd.to_numeric(_as_text(frame[colname]), errors="coerce")
+        for key in ("hour", "minute", "second"):
+            parts.setdefault(key, pd.Series(0, index=frame.index))
+        comp = pd.DataFrame(parts).astype(float)
+        whole = comp.notna().all(axis=1) & (comp.fillna(0) % 1 == 0).all(axis=1)
+        naive = pd.to_datetime(comp.where(whole), errors="coerce")
+        hour24 = whole & (comp["hour"] == 24)  # 24:00 means midnight of the next day
+        if hour24.any():
+            c2 = comp.copy()
+            c2.loc[hour24, "hour"] = 0
+            naive = naive.where(~hour24, pd.to_datetime(c2.where(hour24), errors="coerce") + pd.Timedelta(days=1))
+        aware_mask = np.zeros(n, bool)
+        aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+        text = None
+    else:
+        col = frame[time_column]
+        if isinstance(col.dtype, pd.DatetimeTZDtype):
+            t = col.dt.tz_convert("UTC")
+            return t, t.isna().to_numpy(), ["time is missing" if b else None for b in t.isna()]
+        if pd.api.types.is_datetime64_dtype(col.dtype):
+            naive = col
+            aware_mask = np.zeros(n, bool)
+            aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+            text = None
+        else:
+            text = _as_text(col)
+            aware_mask = text.str.contains(_TZ_SUFFIX, regex=True).fillna(False).to_numpy(bool)
+            fmt = time_format or "ISO8601"
+            naive = pd.to_datetime(text.where(~aware_mask), errors="coerce", format=fmt)
+            if aware_mask.any():
+                aware = pd.to_datetime(text.where(aware_mask), errors="coerce", utc=True,
+                                       format=time_format or "ISO8601")
+            else:
+                aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+    if getattr(naive.dt, "tz", None) is not None:
+        naive = naive.dt.tz_localize(None)
+    naive = naive.astype("datetime64[ns]")
+    tz = _timezone(timezone)
+    out = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+    nav = naive.notna().to_numpy() & ~aware_mask
+    if isinstance(tz, _dt.timezone):
+        out[nav] = (naive[nav] - pd.Timedelta(tz.utcoffset(None))).dt.tz_localize("UTC")
+    elif nav.any():
+        loc_nat = naive.dt.tz_localize(tz, ambiguous="NaT", nonexistent="NaT")
+        loc_dst = naive.dt.tz_localize(tz, ambiguous=np.ones(n, bool), nonexistent="NaT")
+        nonexistent = nav & loc_dst.isna().to_numpy()
+        ambiguous = nav & loc_nat.isna().to_numpy() & ~nonexistent
+        resolved = loc_nat.copy()
+        if ambiguous.any():
+            is_dst, unresolved = _resolve_ambiguous(naive, station, ambiguous)
+            ok = ambiguous & ~unresolved
+            flags = np.where(ok, is_dst, True)
+            fixed = naive.dt.tz_localize(tz, ambiguous=flags, nonexistent="NaT")
+            resolved[ok] = fixed[ok]
+            for i in np.flatnonzero(unresolved):
+                reasons[i] = (f"local time {naive.iloc[i]} occurs twice at the daylight-saving change "
+                              "and the station's time order does not tell which is meant")
+        for i in np.flatnonzero(nonexistent):
+            reasons[i] = f"local time {naive.iloc[i]} does not exist in {timezone} (daylight-saving gap)"
+        out[nav] = resolved[nav].dt.tz_convert("UTC")
+    out[aware_mask] = aware[aware_mask]
+    bad = out.isna().to_numpy()
+    for i in np.flatnonzero(bad):
+        if reasons[i] is None:
+            if time_columns:
+                vals = "/".join(_clip(frame[c].iloc[i]) for c in time_columns)
+                reasons[i] = f"cannot build a time from {'/'.join(time_columns)} = {vals}"
+            else:
+                raw = frame[time_column].iloc[i]
+                reasons[i] = ("time is missing" if (pd.isna(raw) or str(raw).strip() == "")
+                              else f"cannot parse time {_clip(raw)!r}")
+    return out, bad, reasons
+
+
+def _resolve_ambiguous(naive: pd.Series, station: pd.Series, ambiguous: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Decide summer (True) or standard time for ambiguous local times.
+
+    Within one station, in file order: the first occurrence of an ambiguous
+    local time is summer time and the second standard time.  A single
+    occurrence is summer time when the station's next report goes back in
+    local time, standard time when its previous report was later; else
+    unresolved.
+    """
+    n = len(naive)
+    frame = pd.DataFrame({"s": station.to_numpy(), "t": naive.to_numpy(), "pos": np.arange(n)})
+    occ = frame[ambiguous].groupby(["s", "t"], sort=False).cumcount().to_numpy()
+    cnt = frame[ambiguous].groupby(["s", "t"], sort=False)["pos"].transform("size").to_numpy()
+    is_dst = np.ones(n, bool)
+    unresolved = np.zeros(n, bool)
+    idx = np.flatnonzero(ambiguous)
+    is_dst[idx] = occ == 0
+    unresolved[idx[occ >= 2]] = True
+    single = idx[cnt == 1]
+    if single.size:
+        g = frame.groupby("s", sort=False)["t"]
+        nxt = g.shift(-1).to_numpy()
+        prv = g.shift(1).to_numpy()
+        t = frame["t"].to_numpy()
+        back_after = pd.notna(nxt[single]) & (nxt[single] < t[single])
+        back_before = pd.notna(prv[single]) & (prv[single] > t[single])
+        is_dst[single] = back_after
+        unresolved[single] = ~(back_after ^ back_before)
+    return is_dst, unresolved
+
+
+# --------------------------------------------------------------------------
+# stations
+# --------------------------------------------------------------------------
+
+def _rename(columns: list[str], mapping: dict[str, str]) -> dict[str, str]:
+    return {c: mapping.get(c, c) for c in columns}
+
+
+def read_stations(path: str | Path, config: Config | None = None) -> pd.DataFrame:
+    """Read the stations CSV into ``station_id, latitude, longitude, elevation, sensor_height``.
+
+    Coordinates are degrees (WGS84), elevation metres above sea level,
+    sensor height metres above ground.  Any problem in this small file is
+    a file-level :class:`IngestError` naming the line.
+    """
+    cfg = config or Config()
+    sc = cfg["stations"]
+    table = read_text_table(path, delimiter=sc["delimiter"], skip_lines=sc["skip_lines"],
+                            encoding=sc["encoding"], section="stations")
+    if table.rejected:
+        f, line, reason = table.rejected[0]
+        raise IngestError(f"{f}: line {line}: {reason}")
+    cells = table.cells.rename(columns=_rename(table.header, sc["columns"]))
+    for req in ("station_id", "latitude", "longitude"):
+        if req not in cells:
+            raise IngestError(
+                f"{table.path}: no column {req!r} (columns are: {', '.join(table.header)}); "
+                f"map yours in [stations.columns], for example MyName = \"{req}\""
+            )
+    if len(cells) == 0:
+        raise IngestError(f"{table.path}: no station rows after the header")
+    out = pd.DataFrame({"station_id": _as_text(cells["station_id"]).astype(str)})
+    for name in ("latitude", "longitude", "elevation", "sensor_height"):
+        if name not in cells:
+            out[name] = np.nan
+            continue
+        x, bad = parse_numbers(cells[name], set())
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise IngestError(f"{table.path}: line {table.lines[i]}: {name} {_clip(cells[name].iloc[i])!r} is not a number")
+        out[name] = x
+    return _validate_stations(out, table.path, table.lines)
+
+
+def _validate_stations(out: pd.DataFrame, path: str, lines: np.ndarray) -> pd.DataFrame:
+    empty = out["station_id"].isin(["", "nan", "<NA>"]).to_numpy()
+    if empty.any():
+        raise IngestError(f"{path}: line {lines[np.flatnonzero(empty)[0]]}: station_id is empty")
+    for name, lo, hi in (("latitude", -90, 90), ("longitude", -180, 360)):
+        x = out[name].to_numpy()
+        bad = ~np.isfinite(x) | (x < lo) | (x > hi)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise IngestError(
+                f"{path}: line {lines[i]}: {name} {x[i]!r} of station {out['station_id'].iloc[i]!r} "
+                f"is outside [{lo}, {hi}] degrees (give decimal degrees, WGS84)"
+            )
+    out["longitude"] = ((out["longitude"] + 180.0) % 360.0) - 180.0
+    el = out["elevation"].to_numpy()
+    if np.any(np.isfinite(el) & ((el < -500) | (el > 9000))):
+        i = int(np.flatnonzero(np.isfinite(el) & ((el < -500) | (el > 9000)))[0])
+        raise IngestError(f"{path}: line {lines[i]}: elevation {el[i]} m is not plausible (expected metres above sea level)")
+    dup = out.duplicated("station_id", keep=False)
+    if dup.any():
+        same = out[dup].drop_duplicates()
+        if same["station_id"].duplicated().any():
+            sid = same["station_id"][same["station_id"].duplicated()].iloc[0]
+            raise IngestError(f"{path}: station {sid!r} is listed twice with different coordinates")
+        out = out.drop_duplicates("station_id")
+    return out.reset_index(drop=True)
+
+
+# --------------------------------------------------------------------------
+# observations
+# --------------------------------------------------------------------------
+
+def _detect_format(path: Path, configured: str) -> str:
+    if configured != "auto":
+        return configured
+    if path.is_dir():
+        if any(path.glob("*.parquet")) or any(path.glob("**/*.parquet")):
+            return "parquet"
+        return "netcdf"
+    suffix = path.suffix.lower()
+    if suffix in (".parquet", ".pq"):
+        return "parquet"
+    if suffix in (".nc", ".cdf", ".nc4", ".netcdf"):
+        return "netcdf"
+    return "csv"
+
+
+def read_observations(
+    path: str | Path,
+    config: Config | None = None,
+    *,
+    stations: pd.DataFrame | None = None,
+) -> IngestResult:
+    """Read observations (CSV long or wide, Parquet, or netCDF station files).
+
+    ``stations`` is the station table from :func:`read_stations`; when it is
+    ``None`` the table is derived from ``latitude``/``longitude`` (and
+    ``elevation``) columns of the observations, or from netCDF coordinates.
+    """
+    cfg = config or Config()
+    oc = cfg["observations"]
+    p = Path(path)
+    if not p.exists():
+        raise IngestError(f"{p}: file not found; check the path")
+    fmt = _detect_format(p, oc["format"])
+    if fmt == "netcdf":
+        frame, lines, rejected, source_units, n_rows, sources = _load_netcdf(p, cfg)
+        files = np.asarray(frame.pop("__file__"))
+    else:
+        if fmt == "parquet":
+            frame, lines, rejected, n_rows, sources = _load_parquet(p, cfg)
+            source_units = {}
+        else:
+            table = read_text_table(p, delimiter=oc["delimiter"], skip_lines=oc["skip_lines"],
+                                    encoding=oc["encoding"], section="observations")
+            frame, lines, rejected = table.cells, table.lines, list(table.rejected)
+            n_rows = len(lines) + len(rejected)
+            sources = [str(p)]
+            source_units = {}
+            if oc["layout"] == "wide":
+                frame, lines = _melt_wide(frame, lines, cfg, str(p))
+        files = np.full(len(frame), str(sources[0]) if sources else str(p), dtype=object)
+    return _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations)
+
+
+def _melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str):
+    oc = cfg["observations"]
+    mapping = oc["columns"]
+    renamed = frame.rename(columns=_rename(list(frame.columns), mapping))
+    time_cols = oc["time_columns"] or ["time"]
+    missing = [c for c in time_cols if c not in renamed]
+    if missing:
+        raise IngestError(
+            f"{path}: no column {missing[0]!r} for the time (columns are: {', '.join(frame.columns)}); "
+            "map it in [observations.columns], for example Timestamp = \"time\""
+        )
+    station_cols = [c for c in renamed.columns if c not in time_cols]
+    if not station_cols:
+        raise IngestError(f"{path}: layout = 'wide' but there are no station columns besides the time")
+    var = oc["wide_variable"]
+    n = len(renamed)
+    k = len(station_cols)
+    long = pd.DataFrame({c: np.repeat(renamed[c].to_numpy(object), k) for c in time_cols})
+    long["station_id"] = np.tile(np.asarray(station_cols, dtype=object), n)
+    long[var] = renamed[station_cols].to_numpy(object).reshape(-1)
+    long["__row__"] = np.repeat(np.arange(n), k)
+    return long.astype({c: "string" for c in long.columns if c != "__row__"}), np.repeat(lines, k)
+
+
+def _load_parquet(p: Path, cfg: Config):
+    import pyarrow as pa
+    import pyarrow.dataset as ds
+
+    try:
+        dataset = ds.dataset(str(p), format="parquet", partitioning="hive")
+        table = dataset.to_table()
+    except (pa.ArrowInvalid, OSError) as exc:
+        raise IngestError(f"{p}: cannot read as Parquet ({_clip(exc)})") from None
+    frame = table.to_pandas()
+    for c in frame.columns:
+        if isinstance(frame[c].dtype, pd.CategoricalDtype):
+            frame[c] = frame[c].astype("string")
+    lines = np.arange(1, len(frame) + 1)
+    return frame, lines, [], len(frame), [str(p)]
+
+
+def _load_netcdf(p: Path, cfg: Config):
+    import xarray as xr
+
+    files = sorted(p.glob("*.nc")) + sorted(p.glob("*.cdf")) + sorted(p.glob("*.nc4")) if p.is_dir() else [p]
+    if not files:
+        raise IngestError(f"{p}: no netCDF files (*.nc, *.cdf) in this folder")
+    mapping = cfg["observations"]["columns"]
+    frames = []
+    units: dict[str, str] = {}
+    for f in files:
+        try:
+            dset = xr.open_dataset(f, decode_times=True)
+        except Exception as exc:  # noqa: BLE001 - any backend failure is a file problem
+            raise IngestError(f"{f}: cannot read as netCDF ({_clip(exc)})") from None
+        with dset:
+            if "time" not in dset.coords and "time" not in dset:
+                raise IngestError(f"{f}: no 'time' coordinate; expected one station per file with a time axis")
+            sid = None
+            for attr in ("station_id", "facility_id", "site_id", "station_name", "platform_id"):
+                if attr in dset.attrs and str(dset.attrs[attr]).strip():
+                    sid = str(dset.attrs[attr]).strip()
+                    break
+            sid = sid or f.name.split(".")[0]
+            data = {"time": pd.DatetimeIndex(dset["time"].values).tz_localize("UTC")}
+            nt = len(data["time"])
+            for name in ("lat", "latitude", "lon", "longitude", "alt", "altitude", "elevation"):
+                if name in dset:
+                    canon = {"lat": "latitude", "lon": "longitude", "alt": "elevation", "altitude": "elevation"}.get(name, name)
+                    vals = np.broadcast_to(np.asarray(dset[name].values, float).reshape(-1)[: max(nt, 1)] if dset[name].size == nt else np.asarray(dset[name].values, float).reshape(-1)[0], (nt,))
+                    data[canon] = vals
+            for src, canon in mapping.items():
+                if src in dset and canon not in V.ID_COLUMNS:
+                    data[canon] = np.asarray(dset[src].values, float).reshape(nt)
+                    unit = dset[src].attrs.get("units")
+                    if unit and canon in V.CANONICAL:
+                        units.setdefault(canon, str(unit))
+            for canon in V.CANONICAL:
+                if canon in dset and canon not in data:
+                    data[canon] = np.asarray(dset[canon].values, float).reshape(nt)
+                    if "units" in dset[canon].attrs:
+                        units.setdefault(canon, str(dset[canon].attrs["units"]))
+            fr = pd.DataFrame(data)
+            fr["station_id"] = sid
+            fr["__file__"] = str(f)
+            fr["__line__"] = np.arange(1, nt + 1)
+            frames.append(fr)
+    frame = pd.concat(frames, ignore_index=True)
+    lines = frame.pop("__line__").to_numpy()
+    return frame, lines, [], units, len(frame), [str(f) for f in files]
+
+
+def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations) -> IngestResult:
+    oc = cfg["observations"]
+    src_name = sources[0] if len(sources) == 1 else str(Path(sources[0]).parent)
+    wide_rows = frame.pop("__row__").to_numpy() if "__row__" in frame else None
+    frame = frame.rename(columns=_rename(list(frame.columns), oc["columns"]))
+    time_cols = oc["time_columns"]
+    for c in time_cols or ["time"]:
+        if c not in frame:
+            raise IngestError(
+                f"{src_name}: no column {c!r} for the time (columns are: {', '.join(map(str, frame.columns))}); "
+                "map it in [observations.columns], for example Timestamp = \"time\", or set observations.time_columns"
+            )
+    if "station_id" not in frame:
+        raise IngestError(
+            f"{src_name}: no column 'station_id' (columns are: {', '.join(map(str, frame.columns))}); "
+            "map yours in [observations.columns], for example Site = \"station_id\""
+        )
+    if len(frame) == 0 and not rejected:
+        raise IngestError(f"{src_name}: no data rows after the header")
+    mapped_targets = set(oc["columns"].values())
+    coord_cols = {"latitude", "longitude", "elevation", "sensor_height"}
+    var_cols = [c for c in frame.columns
+                if c not in V.ID_COLUMNS and c not in time_cols and c not in coord_cols and c != "__file__"
+                and (c in V.CANONICAL or c in mapped_targets or c == oc["wide_variable"] and oc["layout"] == "wide")]
+    ignored = [c for c in frame.columns if c not in var_cols and c not in V.ID_COLUMNS
+               and c not in time_cols and c not in coord_cols and c != "__file__"]
+    if not var_cols:
+        raise IngestError(
+            f"{src_name}: no variable columns (columns are: {', '.join(map(str, frame.columns))}); "
+            "name them by their canonical names (air_temperature, wind_speed, ...) or map them in [observations.columns]"
+        )
+    units_cfg = dict(source_units)
+    units_cfg.update(oc["units"])
+    for name in units_cfg:
+        if name in V.CANONICAL:
+            try:
+                V.unit_factors(name, units_cfg[name])
+            except ConfigError as exc:
+                raise ConfigError(f"observations.units.{name}: {exc}") from None
+    n = len(frame)
+    reasons = np.full(n, None, dtype=object)
+    station = _as_text(frame["station_id"]).fillna("")
+    times, bad_t, t_reasons = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
+                                          time_format=oc["time_format"], timezone=oc["timezone"], station=station)
+    for i in np.flatnonzero(bad_t):
+        reasons[i] = t_reasons[i]
+    empty_sid = (station == "").to_numpy(bool)
+    for i in np.flatnonzero(empty_sid):
+        reasons[i] = reasons[i] or "station_id is empty"
+    missing = {str(m) for m in oc["missing_values"]}
+    out = pd.DataFrame({"station_id": station.astype(str).to_numpy(), "time": times.to_numpy()})
+    out["time"] = pd.DatetimeIndex(out["time"]).tz_convert("UTC") if len(out) else out["time"]
+    calm_codes = np.zeros(n, bool)
+    for name in var_cols:
+        col = frame[name]
+        if name == "wind_from_direction" and (units_cfg.get(name, "degree") == "compass"
+                                              or not pd.api.types.is_numeric_dtype(col.dtype)):
+            text = _as_text(col)
+            absent = (text.isna() | (text == "") | text.isin(missing)).fillna(True).to_numpy(bool)
+            deg, calm, bad = V.compass_to_degrees(text.mask(absent).to_numpy(object))
+            if units_cfg.get(name, "degree") != "compass":
+                # numbers only, but calm/variable codes are still understood
+                pass
+            calm_codes |= calm
+            x = deg
+        else:
+            x, bad = parse_numbers(col, missing)
+            x = V.convert(x, name, units_cfg.get(name))
+        for i in np.flatnonzero(bad):
+            if reasons[i] is None:
+                raw = col.iloc[i]
+                reasons[i] = f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else \
+                    f"{name}: {_clip(raw)!r} is not a finite number"
+        out[name] = x
+    if "wind_from_direction" in out:
+        d = out["wind_from_direction"].to_numpy()
+        if "wind_speed" in out:
+            s = out["wind_speed"].to_numpy()
+            calm = calm_codes | ((d == 0) & np.isfinite(s) & (s < cfg["qc"]["calm_speed"]))
+            north = (d == 0) & ~calm
+            if calm_codes.any():
+                out.loc[calm_codes & ~np.isfinite(s), "wind_speed"] = 0.0
+        else:
+            calm = calm_codes | (d == 0)
+            north = np.zeros(n, bool)
+        d = np.where(calm, np.nan, np.where(north, 360.0, d))
+        out["wind_from_direction"] = d
+    # station table
+    coords_in_obs = "latitude" in frame and "longitude" in frame
+    if stations is None:
+        if not coords_in_obs:
+            raise IngestError(
+                f"{src_name}: no station file was given and the observations have no latitude/longitude columns; "
+                "pass --stations FILE"
+            )
+        stations = _stations_from_rows(frame, out, lines, files, reasons)
+    known = set(stations["station_id"])
+    unknown = ~out["station_id"].isin(known).to_numpy() & ~empty_sid
+    if wide_rows is not None and unknown.any():
+        sid = out["station_id"][unknown].iloc[0]
+        raise IngestError(f"{src_name}: column {sid!r} is not a station in the stations file; add it there or drop the column")
+    for i in np.flatnonzero(unknown):
+        reasons[i] = reasons[i] or f"station {_clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)"
+    bad_row = pd.notna(reasons)
+    if wide_rows is not None:
+        # one bad cell rejects its whole line: a wide line is one row
+        bad_line = np.zeros(wide_rows.max() + 1 if len(wide_rows) else 0, bool)
+        np.logical_or.at(bad_line, wide_rows, bad_row)
+        reported = np.zeros(len(bad_row), bool)
+        seen_rows = pd.Series(np.where(bad_row, wide_rows, -1)).drop_duplicates(keep="first")
+        idx = seen_rows.index[seen_rows.to_numpy() >= 0].to_numpy()
+        reported[idx] = True
+        bad_row = bad_line[wide_rows]
+        rej_rows = [(files[i], int(lines[i]), reasons[i]) for i in np.flatnonzero(reported)]
+    else:
+        rej_rows = [(files[i], int(lines[i]), reasons[i]) for i in np.flatnonzero(bad_row)]
+    keep = ~bad_row
+    good = out[keep].copy()
+    good_lines = np.asarray(lines)[keep]
+    good_files = np.asarray(files)[keep]
+    good, dup_rejects, collapsed = _deduplicate(good, good_lines, good_files, var_cols, wide=wide_rows is not None)
+    rej_rows.extend(dup_rejects)
+    rejected_all = list(rejected) + rej_rows
+    rej = pd.DataFrame(rejected_all, columns=["file", "line", "reason"])
+    rej = rej.sort_values(["file", "line"], kind="stable").reset_index(drop=True)
+    if wide_rows is not None:
+        rej = rej.drop_duplicates(["file", "line"])
+    n_rej = len(rej)
+    accounting = {"rows_read": int(n_rows), "rows_accepted": int(n_rows - n_rej), "rows_rejected": int(n_rej),
+                  "duplicates_collapsed": int(collapsed)}
+    good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
+    good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
+    units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
+    return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored)
+
+
+def _looks_infinite(raw: object) -> bool:
+    s = str(raw).strip().lower().lstrip("+-")
+    return s in ("inf", "infinity", "nan") or bool(re.fullmatch(r"[0-9.]+e[+]?[0-9]{3,}", s))
+
+
+def _stations_from_rows(frame, out, lines, files, reasons) -> pd.DataFrame:
+    cols = {}
+    for name in ("latitude", "longitude", "elevation", "sensor_height"):
+        if name in frame:
+            x, bad = parse_numbers(frame[name], set())
+            for i in np.flatnonzero(bad):
+                reasons[i] = reasons[i] or f"{name}: cannot read {_clip(frame[name].iloc[i])!r} as a number"
+            cols[name] = x
+        else:
+            cols[name] = np.full(len(frame), np.nan)
+    st = pd.DataFrame({"station_id": out["station_id"].to_numpy(), **cols})
+    st["__line__"] = np.asarray(lines)
+    st["__file__"] = np.asarray(files)
+    ok = pd.isna(reasons) & (st["station_id"] != "").to_numpy()
+    st = st[ok]
+    uniq = st.drop_duplicates(["station_id", "latitude", "longitude", "elevation", "sensor_height"])
+    moved = uniq["station_id"].duplicated(keep=False)
+    if moved.any():
+        sid = uniq.loc[moved, "station_id"].iloc[0]
+        rows = uniq[uniq["station_id"] == sid]
+        raise IngestError(
+            f"{rows['__file__'].iloc[0]}: station {sid!r} changes coordinates between lines "
+            f"{rows['__line__'].iloc[0]} and {rows['__line__'].iloc[1]}; give a stations file with --stations"
+        )
+    res = uniq.drop(columns=["__line__", "__file__"]).reset_index(drop=True)
+    return _validate_stations(res, str(files[0]) if len(files) else "observations", uniq["__line__"].to_numpy())
+
+
+def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_cols: list[str], *, wide: bool):
+    """Collapse identical (station, time) repeats; reject conflicting ones."""
+    dup = good.duplicated(["station_id", "time"], keep=False).to_numpy()
+    if not dup.any():
+        return good, [], 0
+    sub = good[dup]
+    vals = sub[var_cols].to_numpy(float)
+    grp = sub.groupby(["station_id", "time"], sort=False).ngroup().to_numpy()
+    order = np.argsort(grp, kind="stable")
+    first_of = np.full(grp.max() + 1, -1)
+    first_of[grp[order][::-1]] = order[::-1]
+    ref = vals[first_of[grp]]
+    same = np.all((vals == ref) | (np.isnan(vals) & np.isnan(ref)), axis=1)
+    conflict_group = np.zeros(grp.max() + 1, bool)
+    np.logical_or.at(conflict_group, grp, ~same)
+    sub_idx = np.flatnonzero(dup)
+    drop = np.zeros(len(good), bool)
+    rejects = []
+    sub_lines = lines[dup]
+    sub_files = files[dup]
+    collapsed = 0
+    lines_by_group: dict[int, list[int]] = {}
+    for j in np.flatnonzero(conflict_group[grp]):
+        lines_by_group.setdefault(int(grp[j]), []).append(int(sub_lines[j]))
+    for j in range(len(sub_idx)):
+        g = int(grp[j])
+        if conflict_group[g]:
+            drop[sub_idx[j]] = True
+            others = [ln for ln in lines_by_group[g] if ln != sub_lines[j]]
+            rejects.append((sub_files[j], int(sub_lines[j]),
+                            f"conflicts with line {', '.join(map(str, others[:5]))} (same station and time, different values)"))
+        elif first_of[g] != j:
+            drop[sub_idx[j]] = True
+            collapsed += 1
+    return good[~drop], rejects, collapsed
+
+
+def read(
+    obs_path: str | Path,
+    stations_path: str | Path | None = None,
+    config: Config | None = None,
+) -> IngestResult:
+    """Read the station table (optional) and the observations: the ingest stage."""
+    cfg = config or Config()
+    stations = read_stations(stations_path, cfg) if stations_path is not None else None
+    return read_observations(obs_path, cfg, stations=stations)
