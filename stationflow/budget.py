@@ -1,0 +1,314 @@
+"""The budget: tendency = advection + residual, with uncertainties and a regime.
+
+For each usable cluster and analysis time (REFERENCES 2.1):
+
+- the scalar's plane is fitted (``gradient.fit_planes``) giving the centre
+  value ``a(t)`` and the gradient;
+- the cluster wind is the mean of the member stations' winds (grid axes);
+  stations without wind fall back to the network-mean wind;
+- advection ``A(t) = -(u dT/dx + v dT/dy)``;
+- the tendency is the centred difference ``(a(t+h) - a(t-h)) / 2h`` over
+  the configured window ``2h``; the advection is averaged over the same
+  window with trapezoid weights, so that ``tendency - mean(A)`` is the window
+  mean of the in-situ part (the residual);
+- standard errors by first-order propagation: gradient covariance and wind
+  error for A, ``var(A) = V^T S_grad V + grad^T S_V grad`` (REFERENCES 1.3),
+  intercept errors for the tendency; random errors are independent between
+  time steps, the calibration (offset) uncertainty is fully correlated in
+  time, so it cancels in the tendency but not in the advection;
+- the regime: which terms exceed ``significance`` standard errors (and
+  ``min_rate``), and the advective share ``|A| / (|A| + |R|)``.
+
+Every rate is in the variable's unit per hour; gradients in unit per km.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .gradient import PlaneFit, fit_planes
+
+log = logging.getLogger(__name__)
+
+REGIMES = ("advective", "in_situ", "mixed", "steady", "undetermined")
+ERROR_MODELS = ("prior", "posterior", "larger")
+
+
+@dataclass
+class BudgetSettings:
+    """Settings of :func:`compute_budget` (from the ``[budget]`` and ``[uncertainty]`` tables)."""
+
+    sigma: float = 0.2  # standard uncertainty of one reading [unit]
+    wind_sigma: float = 0.5  # standard uncertainty of u and v [m s-1]
+    calibration: float = 0.0  # constant per-sensor offset uncertainty [unit]
+    error_model: str = "larger"
+    half_window: int = 1  # h, in analysis intervals
+    interval_s: float = 600.0
+    min_stations: int = 3
+    significance: float = 2.0
+    dominance: float = 0.67
+    min_rate: float = 0.0  # [unit h-1]
+    vertical_regression: bool = False
+
+
+def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Mean, sample variance and count of member values per cluster.
+
+    ``values`` (n_times, n_stations) with NaN for missing; ``membership`` a
+    sparse (n_stations, n_clusters) 0/1 matrix.  Where a cluster has no
+    member value and ``fallback`` is set, the network mean is used (and the
+    count is reported as 0).
+    """
+    ok = np.isfinite(values)
+    v0 = np.where(ok, values, 0.0)
+    n = (membership.T @ ok.T.astype(float)).T
+    s = (membership.T @ v0.T).T
+    s2 = (membership.T @ (v0 * v0).T).T
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = s / n
+        var = np.where(n > 1, (s2 - n * mean * mean) / np.maximum(n - 1, 1), np.nan)
+    if fallback:
+        import warnings
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            net = np.nanmean(values, axis=1)
+            net_var = np.nanvar(values, axis=1, ddof=1) if values.shape[1] > 1 else np.full(values.shape[0], np.nan)
+        missing = n == 0
+        mean = np.where(missing, net[:, None], mean)
+        var = np.where(missing, net_var[:, None], var)
+    return mean, np.maximum(var, 0.0), n
+
+
+def membership_matrix(members: list[np.ndarray], n_stations: int):
+    """Sparse (n_stations, n_clusters) 0/1 matrix of cluster membership."""
+    from scipy.sparse import csr_matrix
+
+    rows = np.concatenate([np.asarray(m) for m in members]) if members else np.zeros(0, int)
+    cols = np.concatenate([np.full(len(m), j) for j, m in enumerate(members)]) if members else np.zeros(0, int)
+    return csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n_stations, len(members)))
+
+
+def window_mean(a: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.ndarray:
+    """Trapezoid-weighted centred mean over ``t-h .. t+h`` along axis 0.
+
+    Missing samples are left out and the weights renormalised; at least
+    ``min_weight`` of the total weight must be present, else NaN.
+    """
+    w_full = np.ones(2 * h + 1)
+    w_full[0] = w_full[-1] = 0.5
+    total = w_full.sum()
+    acc = np.zeros_like(a)
+    wsum = np.zeros_like(a)
+    n = a.shape[0]
+    for j, w in zip(range(-h, h + 1), w_full):  # loop over the window's offsets, not over time
+        src = slice(max(0, j), n + min(0, j))
+        dst = slice(max(0, -j), n - max(0, j))
+        seg = a[src]
+        ok = np.isfinite(seg)
+        acc[dst] += np.where(ok, seg * w, 0.0)
+        wsum[dst] += np.where(ok, w, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(wsum >= min_weight * total, acc / wsum, np.nan)
+
+
+def window_sum_sq_weights(var: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.ndarray:
+    """Variance of :func:`window_mean` for independent samples: sum(w_i^2 var_i) / (sum w_i)^2."""
+    w_full = np.ones(2 * h + 1)
+    w_full[0] = w_full[-1] = 0.5
+    total = w_full.sum()
+    acc = np.zeros_like(var)
+    wsum = np.zeros_like(var)
+    n = var.shape[0]
+    for j, w in zip(range(-h, h + 1), w_full):  # loop over the window's offsets, not over time
+        src = slice(max(0, j), n + min(0, j))
+        dst = slice(max(0, -j), n - max(0, j))
+        seg = var[src]
+        ok = np.isfinite(seg)
+        acc[dst] += np.where(ok, seg * w * w, 0.0)
+        wsum[dst] += np.where(ok, w, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(wsum >= min_weight * total, acc / wsum ** 2, np.nan)
+
+
+def shift(a: np.ndarray, k: int) -> np.ndarray:
+    """``out[t] = a[t + k]`` along axis 0, NaN outside."""
+    out = np.full_like(a, np.nan)
+    n = a.shape[0]
+    if k >= 0:
+        out[: n - k] = a[k:]
+    else:
+        out[-k:] = a[: n + k]
+    return out
+
+
+def classify(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, advection_se: np.ndarray,
+             residual_se: np.ndarray, *, significance: float = 2.0, dominance: float = 0.67,
+             min_rate: float = 0.0) -> np.ndarray:
+    """Regime per element: advective, in_situ, mixed, steady or undetermined.
+
+    A term is significant when ``|term| > max(significance * se, min_rate)``.
+    Both significant: the advective share ``f = |A| / (|A| + |R|)`` decides
+    (``f >= dominance`` advective, ``f <= 1 - dominance`` in situ, else
+    mixed).  One significant: that one, if it is also the larger; else mixed.
+    Neither: steady (too small to tell).  Any term missing: undetermined.
+    """
+    a, r = np.abs(advection), np.abs(residual)
+    with np.errstate(invalid="ignore"):
+        sig_a = a > np.fmax(significance * advection_se, min_rate)
+        sig_r = r > np.fmax(significance * residual_se, min_rate)
+        share = a / (a + r)
+    out = np.full(np.shape(tendency), "steady", dtype=object)
+    both = sig_a & sig_r
+    out[both & (share >= dominance)] = "advective"
+    out[both & (share <= 1 - dominance)] = "in_situ"
+    out[both & (share > 1 - dominance) & (share < dominance)] = "mixed"
+    only_a = sig_a & ~sig_r
+    only_r = sig_r & ~sig_a
+    out[only_a] = np.where(share[only_a] >= 0.5, "advective", "mixed")
+    out[only_r] = np.where(share[only_r] <= 0.5, "in_situ", "mixed")
+    undetermined = ~(np.isfinite(tendency) & np.isfinite(advection) & np.isfinite(advection_se) & np.isfinite(residual_se))
+    out[undetermined] = "undetermined"
+    return out
+
+
+def compute_budget(
+    values: np.ndarray,
+    u: np.ndarray,
+    v: np.ndarray,
+    x: np.ndarray,
+    y: np.ndarray,
+    members: list[np.ndarray],
+    settings: BudgetSettings,
+    *,
+    z: np.ndarray | None = None,
+    wind_speed: np.ndarray | None = None,
+    fit: PlaneFit | None = None,
+) -> dict[str, np.ndarray]:
+    """Budget terms per (time, cluster) from gridded values and winds.
+
+    Parameters
+    ----------
+    values
+        (n_times, n_stations) of the budgeted quantity [unit], NaN where not good.
+    u, v
+        (n_times, n_stations) wind in *grid* axes [m s-1], NaN where missing.
+    x, y
+        Station grid coordinates [m]; ``z`` elevations [m] when
+        ``settings.vertical_regression``.
+    members
+        Station indices per cluster.
+    fit
+        A precomputed plane fit of ``values`` (to share work); else fitted here.
+
+    Returns a dict of (n_times, n_clusters) arrays: value, tendency,
+    advection, residual and their standard errors [unit h-1], grad_x,
+    grad_y [unit km-1] and errors, u, v [m s-1] and errors, n_used, dof,
+    rms, regime, and (with regression) vertical_gradient [unit per 100 m].
+    """
+    s = settings
+    if fit is None:
+        fit = fit_planes(values, x, y, members, z=z if s.vertical_regression else None, sigma=s.sigma,
+                         min_stations=s.min_stations, residuals=True)
+    if s.error_model not in ERROR_MODELS:
+        raise ValueError(f"error_model must be one of {ERROR_MODELS}")
+    scale = fit.error_scale(s.error_model)
+    vx, vy, cxy = fit.var_x * scale, fit.var_y * scale, fit.cov_xy * scale
+    va = fit.var_value * scale
+    gx, gy = fit.grad_x, fit.grad_y
+    memb = membership_matrix(members, values.shape[1])
+    um, uvar, n_w = cluster_mean(u, memb)
+    vm, vvar, _ = cluster_mean(v, memb)
+    nw = np.maximum(n_w, 1)
+    se2_u = np.fmax(s.wind_sigma ** 2, np.nan_to_num(uvar)) / nw
+    se2_v = np.fmax(s.wind_sigma ** 2, np.nan_to_num(vvar)) / nw
+    # where no member has wind, the network mean stands in: its error is the spatial spread
+    se2_u = np.where(n_w == 0, s.wind_sigma ** 2 + np.nan_to_num(uvar), se2_u)
+    se2_v = np.where(n_w == 0, s.wind_sigma ** 2 + np.nan_to_num(vvar), se2_v)
+    hour = 3600.0
+    adv = -(um * gx + vm * gy) * hour
+    var_adv = (um * um * vx + vm * vm * vy + 2 * um * vm * cxy + gx * gx * se2_u + gy * gy * se2_v) * hour ** 2
+    h = max(1, int(s.half_window))
+    span = 2 * h * s.interval_s
+    a_plus, a_minus = shift(fit.value, h), shift(fit.value, -h)
+    tendency = (a_plus - a_minus) / span * hour
+    tendency_var = (shift(va, h) + shift(va, -h)) / span ** 2 * hour ** 2
+    adv_mean = window_mean(adv, h)
+    adv_var = window_sum_sq_weights(var_adv, h)
+    if s.calibration > 0:
+        ratio = (s.calibration / s.sigma) ** 2  # prior variances are sigma^2 (A^T A)^-1
+        ub, vb = window_mean(um, h), window_mean(vm, h)
+        adv_var = adv_var + (ub * ub * fit.var_x + vb * vb * fit.var_y + 2 * ub * vb * fit.cov_xy) * ratio * hour ** 2
+    residual = tendency - adv_mean
+    res_var = tendency_var + adv_var
+    out = {
+        "value": fit.value, "value_se": np.sqrt(va),
+        "tendency": tendency, "tendency_se": np.sqrt(tendency_var),
+        "advection": adv_mean, "advection_se": np.sqrt(adv_var),
+        "residual": residual, "residual_se": np.sqrt(res_var),
+        "advection_instant": adv, "advection_instant_se": np.sqrt(var_adv),
+        "grad_x": gx * 1000.0, "grad_y": gy * 1000.0,
+        "grad_x_se": np.sqrt(vx) * 1000.0, "grad_y_se": np.sqrt(vy) * 1000.0,
+        "u": um, "v": vm, "u_se": np.sqrt(se2_u), "v_se": np.sqrt(se2_v),
+        "n_used": fit.n_used, "n_wind": n_w.astype(np.int32), "dof": fit.dof,
+        "rms": fit.rms if fit.rms is not None else np.full_like(gx, np.nan),
+        "cond": fit.cond,
+    }
+    if fit.grad_z is not None:
+        out["vertical_gradient"] = fit.grad_z * 100.0
+        out["vertical_gradient_se"] = np.sqrt(fit.var_z * scale) * 100.0
+    if wind_speed is not None:
+        sp, _, _ = cluster_mean(wind_speed, memb)
+        out["wind_speed"] = sp
+    out["regime"] = classify(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
+                             significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
+    return out
+
+
+def main_periods(table: pd.DataFrame, *, unit: str, min_steps: int = 3, max_lines: int = 12) -> list[dict]:
+    """Runs of one regime (advective, in_situ, mixed) per cluster, longest first.
+
+    Each period: cluster, regime, start, end, steps and mean tendency,
+    advection and residual with their mean standard errors.
+    """
+    t = table[table["regime"].isin(["advective", "in_situ", "mixed"])]
+    if t.empty:
+        return []
+    t = table.sort_values(["cluster", "time"], kind="stable")
+    new = (t["cluster"] != t["cluster"].shift()) | (t["regime"] != t["regime"].shift())
+    t = t.assign(run=new.cumsum())
+    g = t.groupby("run")
+    agg = g.agg(cluster=("cluster", "first"), regime=("regime", "first"), start=("time", "min"), end=("time", "max"),
+                steps=("time", "size"), tendency=("tendency", "mean"), advection=("advection", "mean"),
+                residual=("residual", "mean"), advection_se=("advection_se", "mean"),
+                residual_se=("residual_se", "mean"), tendency_se=("tendency_se", "mean"))
+    agg = agg[agg["regime"].isin(["advective", "in_situ", "mixed"]) & (agg["steps"] >= min_steps)]
+    agg = agg.sort_values(["steps", "start"], ascending=[False, True]).head(max_lines)
+    out = []
+    for r in agg.sort_values(["cluster", "start"]).itertuples():
+        term, se = (r.advection, r.advection_se) if r.regime == "advective" else (r.residual, r.residual_se)
+        if r.regime == "mixed":
+            term, se = r.tendency, r.tendency_se
+        out.append({"cluster": r.cluster, "regime": r.regime, "start": r.start, "end": r.end, "steps": int(r.steps),
+                    "rate": float(term), "rate_se": float(se), "tendency": float(r.tendency),
+                    "advection": float(r.advection), "residual": float(r.residual), "unit": unit})
+    return out
+
+
+def describe_period(p: dict, *, variable: str) -> str:
+    """One line such as 'cluster T03, 21:40-01:10 UTC: advective cooling -1.9 +/- 0.2 K/h'."""
+    temp = variable in ("air_temperature", "potential_temperature")
+    if temp:
+        word = "cooling" if p["rate"] < 0 else "warming"
+    else:
+        word = "fall" if p["rate"] < 0 else "rise"
+    label = {"advective": "advective", "in_situ": "in-situ", "mixed": "mixed"}[p["regime"]]
+    start = pd.Timestamp(p["start"]).strftime("%Y-%m-%d %H:%M")
+    end_fmt = "%H:%M" if pd.Timestamp(p["start"]).date() == pd.Timestamp(p["end"]).date() else "%Y-%m-%d %H:%M"
+    end = pd.Timestamp(p["end"]).strftime(end_fmt)
+    unit = p["unit"].replace(" h-1", "/h")
+    return f"cluster {p['cluster']}, {start}-{end} UTC: {label} {word} {p['rate']:+.2f} +/- {p['rate_se']:.2f} {unit}"

@@ -1,0 +1,364 @@
+"""The command line: a thin typer layer over :mod:`stationflow.pipeline`.
+
+Exit codes: 0 done; 2 bad input or configuration (one ``error:`` line on
+stderr); 1 an unexpected fault.
+"""
+
+from __future__ import annotations
+
+import sys
+import traceback
+from enum import Enum
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from . import __version__
+from .errors import StationflowError
+
+SAFETY = ("Decision aid only: the advection/in-situ split supports, and does not replace, independent frost and "
+          "air-quality alarms; local codes, extension services and licensed practice prevail.")
+
+app = typer.Typer(
+    name="stationflow",
+    help=("Split the local change seen by a network of fixed stations into what the wind carried in "
+          "(advection) and what happened in place (in situ), with uncertainties.\n\n"
+          "Start with:  stationflow demo --out demo_output\n\n" + SAFETY),
+    no_args_is_help=True,
+    add_completion=False,
+    rich_markup_mode=None,
+    context_settings={"help_option_names": ["-h", "--help"]},
+)
+
+STATE = {"verbose": False}
+
+
+class Engine(str, Enum):
+    """Where the budget runs."""
+
+    local = "local"
+    dask = "dask"
+
+
+class ScenarioName(str, Enum):
+    """Bundled demo scenarios."""
+
+    frost = "frost"
+    town = "town"
+
+
+def _err(message: str) -> None:
+    typer.echo(f"error: {message}", err=True)
+
+
+def _progress(quiet: bool):
+    """A stage reporter on stderr (a spinner with the current stage), or nothing."""
+    if quiet:
+        return None, (lambda _msg: None)
+    from rich.console import Console
+    from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+    console = Console(stderr=True)
+    prog = Progress(SpinnerColumn(), TextColumn("{task.description}"), TimeElapsedColumn(), console=console,
+                    transient=True, disable=not console.is_terminal)
+    task = prog.add_task("starting", total=None)
+
+    def report(msg: str) -> None:
+        prog.update(task, description=msg)
+        if not console.is_terminal:
+            console.print(f"[stationflow] {msg}", highlight=False, markup=False)
+
+    return prog, report
+
+
+def _run(fn, *, quiet: bool):
+    prog, report = _progress(quiet)
+    try:
+        if prog is not None:
+            with prog:
+                return fn(report)
+        return fn(report)
+    except StationflowError as exc:
+        _err(str(exc).replace("\n", " "))
+        raise typer.Exit(2) from None
+    except typer.Exit:
+        raise
+    except KeyboardInterrupt:
+        _err("interrupted; no output file was left half-written")
+        raise typer.Exit(130) from None
+    except Exception as exc:  # noqa: BLE001 - the last line of defence: a bug, not a user error
+        if STATE["verbose"]:
+            traceback.print_exc()
+        _err(f"unexpected fault ({type(exc).__name__}: {exc}); rerun with --verbose and please report it")
+        raise typer.Exit(1) from None
+
+
+def _config(path: Optional[Path]):
+    from .config import load
+
+    return load(path)
+
+
+def _check_paths(**paths: Optional[Path]) -> None:
+    from .errors import IngestError
+
+    for name, p in paths.items():
+        if p is not None and not Path(p).exists():
+            raise IngestError(f"{p}: file not found (given as --{name})")
+
+
+@app.callback()
+def main_options(
+    verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Show details, and tracebacks for unexpected faults.")] = False,
+    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+) -> None:
+    """Global options."""
+    STATE["verbose"] = verbose
+    if version:
+        typer.echo(f"stationflow {__version__}")
+        raise typer.Exit(0)
+    import logging
+
+    logging.basicConfig(level=logging.INFO if verbose else logging.WARNING, format="%(levelname)s %(name)s: %(message)s",
+                        stream=sys.stderr)
+
+
+StationsOpt = Annotated[Optional[Path], typer.Option("--stations", help="Stations CSV (station_id, latitude, longitude[, elevation]). "
+                                                     "Optional when the observations carry latitude/longitude.")]
+ObsOpt = Annotated[Path, typer.Option("--obs", help="Observations: CSV (long or wide), Parquet file or dataset folder, "
+                                      "or a folder of netCDF station files.")]
+ConfigOpt = Annotated[Optional[Path], typer.Option("--config", help="TOML configuration (every key optional; see docs/configuration.md).")]
+OutOpt = Annotated[Path, typer.Option("--out", help="Output folder (created if needed).")]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress or summary output.")]
+
+
+@app.command()
+def check(
+    obs: ObsOpt,
+    out: OutOpt,
+    stations: StationsOpt = None,
+    config: ConfigOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Read and quality-control the inputs; report what was read, rejected and flagged.
+
+    Writes run.json, rejected_rows.csv, qc_flags.csv, qc_periods.csv and qc_overview.png.
+
+    Example:
+
+        stationflow check --stations sample_data/frost/stations.csv --obs sample_data/frost/observations.csv --config sample_data/frost/config.toml --out check_out
+    """
+    from .pipeline import run_check
+    from .report.outputs import write_check
+
+    def job(report):
+        _check_paths(obs=obs, stations=stations, config=config)
+        cfg = _config(config)
+        chk = run_check(obs, stations, cfg, progress=report)
+        report("writing outputs")
+        write_check(out, chk, inputs={"observations": obs, "stations": stations})
+        if not quiet:
+            typer.echo(_check_summary(chk, out))
+
+    _run(job, quiet=quiet)
+
+
+def _check_summary(chk, out: Path) -> str:
+    import numpy as np
+    import pandas as pd
+
+    d = chk.data
+    o = d.observations
+    acc = d.accounting
+    lines = [f"stations: {len(d.stations)}   rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, "
+             f"rejected {acc['rows_rejected']:,}" + (f", identical duplicates collapsed {acc['duplicates_collapsed']:,}"
+                                                     if acc["duplicates_collapsed"] else "")]
+    if len(o):
+        lines.append(f"time span: {pd.Timestamp(o['time'].min()):%Y-%m-%d %H:%M} to {pd.Timestamp(o['time'].max()):%Y-%m-%d %H:%M} UTC")
+        step = o.sort_values(["station_id", "time"]).groupby("station_id")["time"].apply(lambda s: s.diff().median())
+        common = step.mode().iloc[0] if len(step.dropna()) else None
+        odd = step[step != common].dropna()
+        lines.append(f"reporting interval: {common} at {int((step == common).sum())} stations"
+                     + (f"; others: " + ", ".join(f"{k} {v}" for k, v in odd.head(6).items()) if len(odd) else ""))
+    lines.append("completeness (good / present / expected):")
+    n_exp = max(1, len(d.stations)) * max(1, o["time"].nunique())
+    for v in d.variables:
+        f = chk.qc.flags[v]
+        lines.append(f"  {v:<28} {np.sum(f == 0) / n_exp:6.1%} / {np.sum(f != 3) / n_exp:6.1%}   "
+                     f"[{d.units.get(v, '')}]")
+    if len(chk.per_test):
+        lines.append("QC tests fired: " + ", ".join(f"{r.variable}:{r.test} {r.values}" for r in chk.per_test.itertuples()))
+    flagged = chk.per_station[(chk.per_station["suspect"] > 0) | (chk.per_station["bad"] > 0)]
+    if len(flagged):
+        lines.append("flags per station: " + ", ".join(f"{r.station_id} {r.suspect} suspect/{r.bad} bad"
+                                                      for r in flagged.itertuples()))
+    big = chk.periods[chk.periods["values"] >= 3]
+    for p in big.head(12).itertuples():
+        lines.append(f"  {p.station_id} {p.variable}: {p.flag} ({p.tests}) {pd.Timestamp(p.start):%Y-%m-%d %H:%M}"
+                     f" to {pd.Timestamp(p.end):%H:%M} UTC, {p.values} values")
+    if acc["rows_rejected"]:
+        first = d.rejected.head(3)
+        for r in first.itertuples():
+            lines.append(f"  rejected {Path(r.file).name} line {r.line}: {r.reason}")
+    lines.append(f"outputs in {out}/ (run.json, rejected_rows.csv, qc_flags.csv, qc_overview.png)")
+    return "\n".join(lines)
+
+
+@app.command()
+def network(
+    out: OutOpt,
+    stations: StationsOpt = None,
+    obs: Annotated[Optional[Path], typer.Option("--obs", help="Observations to take the station table from, when no --stations.")] = None,
+    config: ConfigOpt = None,
+    quiet: QuietOpt = False,
+) -> None:
+    """Inspect the network: which clusters are usable for gradients, and why the others are not.
+
+    Writes clusters.csv (id, members, centroid, area, angles, shape, noise amplification, status, reason),
+    network_map.png and run.json.
+
+    Example:
+
+        stationflow network --stations sample_data/frost/stations.csv --out network_out
+    """
+    from .ingest import read_observations, read_stations
+    from .pipeline import run_network
+    from .report.outputs import write_network
+
+    def job(report):
+        from .errors import IngestError
+
+        if stations is None and obs is None:
+            raise IngestError("give --stations FILE (or --obs FILE with latitude/longitude columns)")
+        _check_paths(stations=stations, obs=obs, config=config)
+        cfg = _config(config)
+        report("reading stations")
+        st = read_stations(stations, cfg) if stations is not None else read_observations(obs, cfg).stations
+        net = run_network(st, cfg)
+        report("writing outputs")
+        write_network(out, net, inputs={"stations": stations, "observations": obs}, config=cfg)
+        if not quiet:
+            c = net.clusters
+            typer.echo(f"{len(net.stations)} stations, projection {net.crs}")
+            typer.echo(f"{len(c)} clusters: {int((c['status'] == 'ok').sum())} usable, {int((c['status'] != 'ok').sum())} rejected")
+            for r in c[c["status"] != "ok"].head(20).itertuples():
+                typer.echo(f"  {r.cluster} ({r.stations}): {r.reason}")
+            typer.echo(f"outputs in {out}/ (clusters.csv, network_map.png, run.json)")
+
+    _run(job, quiet=quiet)
+
+
+@app.command()
+def budget(
+    obs: ObsOpt,
+    out: OutOpt,
+    stations: StationsOpt = None,
+    config: ConfigOpt = None,
+    variable: Annotated[Optional[str], typer.Option("--variable", help="Scalar to budget (default budget.variable, air_temperature).")] = None,
+    engine: Annotated[Engine, typer.Option("--engine", help="local: this process; dask: dask.distributed, partitioned in time.")] = Engine.local,
+    scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="Dask scheduler address (default: a local cluster on loopback).")] = None,
+    csv: Annotated[bool, typer.Option("--csv", help="Write budget.csv even above 1,000,000 rows.")] = False,
+    quiet: QuietOpt = False,
+) -> None:
+    """The main job: split each observed change into advection and an in-situ part, per cluster and time.
+
+    Runs ingest, QC, the network, the plane fits and the budget; writes run.json, rejected_rows.csv,
+    qc_flags.csv, budget.parquet, budget.csv, budget.nc, figures and report.html, and prints the main periods.
+
+    CAUTION: a decision aid only. It supports, and does not replace, frost and air-quality alarms and
+    warnings; local codes, extension services and licensed practice prevail. Check sensors and cold-pool
+    stations by hand before acting on a flag.
+
+    Example:
+
+        stationflow budget --stations sample_data/frost/stations.csv --obs sample_data/frost/observations.csv --config sample_data/frost/config.toml --out frost_out
+    """
+    from .pipeline import run_budget
+    from .report.outputs import write_budget
+
+    def job(report):
+        _check_paths(obs=obs, stations=stations, config=config)
+        cfg = _config(config)
+        if engine == Engine.dask:
+            from .scale import run_budget_dask
+
+            run = run_budget_dask(obs, stations, cfg, variable=variable, scheduler=scheduler, progress=report)
+        else:
+            if scheduler:
+                from .errors import ConfigError
+
+                raise ConfigError("--scheduler goes with --engine dask")
+            run = run_budget(obs, stations, cfg, variable=variable, progress=report)
+        report("writing outputs")
+        _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv)
+        if not quiet:
+            typer.echo(_budget_summary(run, out, notes))
+
+    _run(job, quiet=quiet)
+
+
+def _budget_summary(run, out: Path, notes: list[str]) -> str:
+    from .budget import describe_period
+
+    t = run.table
+    counts = t["regime"].value_counts()
+    lines = [f"{run.variable} ({run.quantity.replace('_', ' ')}) over {len(run.network.usable)} clusters, "
+             f"{t['time'].nunique()} times of {run.interval} (window {run.window})",
+             "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
+    if run.periods:
+        lines.append("main periods:")
+        lines += ["  " + describe_period(p, variable=run.quantity) for p in run.periods]
+    acc = run.check.data.accounting
+    lines.append(f"rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, rejected {acc['rows_rejected']:,}")
+    lines += notes
+    lines.append(f"report: {out / 'report.html'}")
+    lines.append(SAFETY)
+    return "\n".join(lines)
+
+
+@app.command()
+def demo(
+    out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("demo_output"),
+    scenario: Annotated[ScenarioName, typer.Option("--scenario", help="frost: a frost night in an invented valley; town: PM2.5 sensors in an invented town.")] = ScenarioName.frost,
+    quiet: QuietOpt = False,
+) -> None:
+    """Run the main job on a bundled scenario (invented place, known truth) and say where the report is.
+
+    Uses sample_data/<scenario>/ when present (as shipped), else generates the scenario.
+
+    Example:
+
+        stationflow demo --scenario frost --out demo_output/frost
+    """
+    from . import synthetic
+    from .pipeline import run_budget
+    from .report.outputs import write_budget
+
+    def job(report):
+        folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
+        if not (folder / "observations.csv").exists():
+            folder = out / "input"
+            report("generating the scenario")
+            make, write = synthetic.SCENARIOS[scenario.value]
+            write(make(), folder)
+        cfg = _config(folder / "config.toml")
+        run = run_budget(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
+        report("writing outputs")
+        _, notes = write_budget(out, run, inputs={"observations": folder / "observations.csv",
+                                                  "stations": folder / "stations.csv"})
+        if not quiet:
+            typer.echo(f"scenario: {scenario.value} ({folder})")
+            typer.echo(_budget_summary(run, out, notes))
+            typer.echo(f"\nOpen the report: {(out / 'report.html').resolve()}")
+
+    _run(job, quiet=quiet)
+
+
+def main() -> None:
+    """Entry point of the ``stationflow`` command."""
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

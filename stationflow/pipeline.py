@@ -1,0 +1,374 @@
+"""The pipeline: wire the stages from a configuration and return documented results.
+
+``check`` = ingest + QC; ``network`` = geometry; ``budget`` = ingest, QC,
+alignment, geometry, plane fits and the budget.  Each returns a result
+object; :mod:`stationflow.report` writes the files; :mod:`stationflow.cli`
+is a thin layer over these functions.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+
+from . import align, geometry, ingest, qc
+from .budget import BudgetSettings, compute_budget, main_periods
+from .config import Config
+from .errors import ConfigError, GeometryError
+from .thermo import KAPPA, P_REF, standard_pressure
+from .variables import CANONICAL, si_unit
+
+log = logging.getLogger(__name__)
+
+Progress = Callable[[str], None]
+
+
+def _noop(_: str) -> None:
+    pass
+
+
+@dataclass
+class CheckResult:
+    """What ``check`` found: the ingest result, the QC flags and summaries."""
+
+    data: ingest.IngestResult
+    qc: qc.QCResult
+    flags: pd.DataFrame
+    periods: pd.DataFrame
+    per_test: pd.DataFrame
+    per_station: pd.DataFrame
+    config: Config
+
+
+@dataclass
+class BudgetRun:
+    """The budget of one variable: the xarray dataset, the tidy table and main periods."""
+
+    check: CheckResult
+    network: geometry.Network
+    dataset: object  # xarray.Dataset
+    table: pd.DataFrame
+    periods: list[dict]
+    variable: str
+    quantity: str
+    unit: str
+    interval: pd.Timedelta
+    window: pd.Timedelta
+    settings: BudgetSettings
+    extras: dict = field(default_factory=dict)
+
+
+def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, progress: Progress = _noop) -> CheckResult:
+    """Ingest and quality-control the observations."""
+    progress("reading observations")
+    data = ingest.read(obs, stations, config)
+    if data.observations.empty:
+        raise ingest.IngestError(f"{obs}: no usable rows ({data.accounting['rows_rejected']} rejected; see rejected_rows.csv)")
+    progress("quality control")
+    result = qc.run_qc(data.observations, data.stations, config)
+    flags = qc.flag_table(data.observations, result)
+    periods = qc.flagged_periods(data.observations, result)
+    s = qc.summary(data.observations, result)
+    return CheckResult(data, result, flags, periods, s["per_test"], s["per_station"], config)
+
+
+def run_network(stations: pd.DataFrame, config: Config) -> geometry.Network:
+    """Project the stations and form and screen the clusters."""
+    return geometry.build_network(stations, config)
+
+
+def default_sigma(variable: str, config: Config) -> float:
+    """Sensor standard uncertainty for ``variable`` [its unit].
+
+    Configured value, else: air temperature 0.2 K (WMO-No. 8 Annex 1.E,
+    achievable accuracy, from memory); dew point 0.3 K and relative humidity
+    3 % (same source, from memory); particulate matter 2 ug m-3 (common
+    practice for calibrated low-cost sensors at 5-60 min).
+    """
+    table = config["uncertainty"]["sensor"]
+    if variable in table:
+        return float(table[variable])
+    defaults = {"air_temperature": 0.2, "dew_point_temperature": 0.3, "relative_humidity": 3.0,
+                "air_pressure": 15.0, "wind_speed": 0.5}
+    if variable in defaults:
+        return defaults[variable]
+    if qc._is_pm(variable):
+        return 2.0
+    raise ConfigError(
+        f"no sensor uncertainty for {variable!r}; set uncertainty.sensor.{variable} = <standard uncertainty of one reading>"
+    )
+
+
+def _quantity(obs: pd.DataFrame, stations: pd.DataFrame, variable: str, vertical: str, usable: dict) -> tuple[np.ndarray, str]:
+    """The field to fit: the variable itself, or potential temperature."""
+    x = obs[variable].to_numpy(float)
+    if variable != "air_temperature" or vertical != "potential_temperature":
+        return x, variable
+    elev = obs["station_id"].map(stations.set_index("station_id")["elevation"]).to_numpy(float)
+    p = standard_pressure(elev)
+    if "air_pressure" in obs:
+        obs_p = obs["air_pressure"].to_numpy(float)
+        ok = np.isfinite(obs_p) & usable.get("air_pressure", np.ones(len(obs), bool))
+        p = np.where(ok, obs_p, p)
+    if np.any(np.isfinite(x) & ~np.isfinite(p)):
+        missing = obs["station_id"][np.isfinite(x) & ~np.isfinite(p)].iloc[0]
+        raise ConfigError(
+            f"budget.vertical = 'potential_temperature' needs air_pressure or an elevation for every station; "
+            f"station {missing!r} has neither. Add elevations to the stations file or set budget.vertical = 'none'"
+        )
+    return x * (P_REF / p) ** KAPPA, "potential_temperature"
+
+
+def _durations(config: Config, observations: pd.DataFrame) -> tuple[pd.Timedelta, pd.Timedelta, int]:
+    bc = config["budget"]
+    interval = align.parse_duration(bc["interval"]) if bc["interval"] else align.infer_interval(observations)
+    window = align.parse_duration(bc["window"]) if bc["window"] else 2 * interval
+    h = int(round(window / interval / 2))
+    if h < 1:
+        raise ConfigError(f"budget.window = {bc['window'] or window} must be at least two analysis intervals ({2 * interval})")
+    return interval, 2 * h * interval, h
+
+
+def run_budget(obs: str | Path, stations: str | Path | None, config: Config, *, variable: str | None = None,
+               progress: Progress = _noop, check: CheckResult | None = None) -> BudgetRun:
+    """The main job: ingest, QC, align, network, fits and budget for one variable."""
+    chk = check or run_check(obs, stations, config, progress=progress)
+    return budget_from_check(chk, config, variable=variable, progress=progress)
+
+
+def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
+                      progress: Progress = _noop, times: pd.DatetimeIndex | None = None) -> BudgetRun:
+    """The budget stages on an already checked data set."""
+    bc = config["budget"]
+    var = variable or bc["variable"]
+    data = chk.data
+    if var not in data.observations:
+        have = [v for v in data.variables if v not in ("wind_speed", "wind_from_direction")]
+        raise ConfigError(f"variable {var!r} is not in the observations; available: {', '.join(have) or 'none'} "
+                          "(choose one with --variable or budget.variable)")
+    vertical = bc["vertical"]
+    usable = chk.qc.usable(use_suspect=config["qc"]["use_suspect"])
+    obs = data.observations
+    progress("aligning to the analysis grid")
+    quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
+    frame = obs[["station_id", "time"]].copy()
+    frame["__q__"] = quantity_values
+    mask_q = usable.get(var, np.ones(len(obs), bool))
+    has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
+    st_all = data.stations.reset_index(drop=True)
+    st_var = st_all[st_all["station_id"].isin(has_var)].reset_index(drop=True)
+    if len(st_var) < 3:
+        raise GeometryError(f"only {len(st_var)} station(s) have good {var} values; a plane needs at least 3")
+    progress("building the network")
+    net = geometry.build_network(st_var, config)
+    if vertical == "regression" and var == "air_temperature" and net.usable["n_stations"].min(initial=99) < 4:
+        raise ConfigError("budget.vertical = 'regression' needs clusters of at least 4 stations; "
+                          "set network.clusters = 'nearest' (with network.k >= 5) or use 'potential_temperature'")
+    if net.usable.empty:
+        raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
+                            "and relax [network] min_angle/min_shape/max_side_km")
+    interval, window, h = _durations(config, obs)
+    for name in ("wind_speed", "wind_from_direction"):
+        if name in obs:
+            frame[name] = obs[name].to_numpy()
+    use = {"__q__": mask_q}
+    for name in ("wind_speed", "wind_from_direction"):
+        if name in usable:
+            use[name] = usable[name]
+    ids = st_all["station_id"].tolist()
+    start = times[0] if times is not None else None
+    end = times[-1] if times is not None else None
+    grid = align.to_grid(frame, ids, ["__q__"], interval=interval, usable=use, start=start, end=end,
+                         calm_speed=config["qc"]["calm_speed"])
+    x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
+    values = grid.values["__q__"]
+    n_t = len(grid.times)
+    if "u" in grid.values:
+        ug, vg = geometry.rotate_to_grid(grid.values["u"], grid.values["v"], conv[None, :])
+        speed = grid.values.get("wind_speed")
+    else:
+        log.warning("no wind observations: advection cannot be estimated")
+        ug = vg = np.full(values.shape, np.nan)
+        speed = None
+    index = {s: i for i, s in enumerate(ids)}
+    ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
+    members = [np.array([index[net.stations["station_id"].iloc[j]] for j in net.members[i]]) for i in ok_rows]
+    settings = BudgetSettings(
+        sigma=default_sigma(var, config), wind_sigma=float(config["uncertainty"]["wind_component"]),
+        calibration=float(config["uncertainty"]["calibration"]), error_model=config["uncertainty"]["gradient_error"],
+        half_window=h, interval_s=interval.total_seconds(), min_stations=bc["min_stations"],
+        significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=float(bc["min_rate"]),
+        vertical_regression=(vertical == "regression" and var == "air_temperature"),
+    )
+    z = st_all["elevation"].to_numpy(float)
+    if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
+        raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
+    progress("fitting planes and computing the budget")
+    terms = compute_budget(values, ug, vg, x_all, y_all, members, settings, z=z, wind_speed=speed)
+    extras = {}
+    inv = mast_inversion(obs, st_all, x_all, y_all, usable, interval, grid.times)
+    if inv is not None:
+        terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
+        extras["inversion"] = inv
+    clusters = net.clusters.iloc[ok_rows].reset_index(drop=True)
+    unit = si_unit(var, data.units.get(var))
+    ds = to_dataset(terms, grid.times, clusters, conv_at=lambda la, lo: _convergence(la, lo, net.crs), unit=unit,
+                    variable=var, quantity=quantity)
+    table = to_table(ds)
+    periods = main_periods(table, unit=f"{unit} h-1")
+    del n_t
+    return BudgetRun(chk, net, ds, table, periods, var, quantity, unit, interval, window, settings, extras)
+
+
+def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:
+    _, _, g, _ = geometry.project(lat, lon, crs)
+    return g
+
+
+def mast_inversion(obs: pd.DataFrame, stations: pd.DataFrame, x: np.ndarray, y: np.ndarray, usable: dict,
+                   interval: pd.Timedelta, times: pd.DatetimeIndex) -> np.ndarray | None:
+    """Mean temperature difference upper minus surface sensor over all masts [K] per time.
+
+    A positive value is an inversion (warmer air above), a sign of
+    radiative cooling at the surface; ``None`` when there is no mast.
+    """
+    if "air_temperature" not in obs:
+        return None
+    roles = geometry.assign_roles(stations, x, y)
+    upper = np.flatnonzero(roles == "upper")
+    if upper.size == 0:
+        return None
+    surf = np.flatnonzero(roles == "surface")
+    d = np.hypot(x[upper, None] - x[None, surf], y[upper, None] - y[None, surf])
+    partner = surf[np.argmin(d, axis=1)]
+    ids = stations["station_id"].tolist()
+    frame = obs[["station_id", "time", "air_temperature"]]
+    grid = align.to_grid(frame, ids, ["air_temperature"], interval=interval, start=times[0], end=times[-1],
+                         usable={"air_temperature": usable.get("air_temperature", np.ones(len(obs), bool))})
+    t = grid.values["air_temperature"]
+    diff = t[:, upper] - t[:, partner]
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(diff, axis=1)
+
+
+LONG_NAMES = {
+    "value": "fitted value at the cluster centre",
+    "value_se": "standard error of value",
+    "tendency": "local rate of change (centred difference over the window)",
+    "tendency_se": "standard error of tendency",
+    "advection": "horizontal advection -V.grad, mean over the window",
+    "advection_se": "standard error of advection",
+    "residual": "in-situ part: tendency minus advection",
+    "residual_se": "standard error of residual",
+    "advection_instant": "horizontal advection at the analysis time",
+    "advection_instant_se": "standard error of advection_instant",
+    "grad_x": "eastward (grid) component of the horizontal gradient",
+    "grad_y": "northward (grid) component of the horizontal gradient",
+    "grad_x_se": "standard error of grad_x",
+    "grad_y_se": "standard error of grad_y",
+    "u": "eastward (grid) wind, cluster mean",
+    "v": "northward (grid) wind, cluster mean",
+    "u_se": "standard error of u",
+    "v_se": "standard error of v",
+    "n_used": "stations used in the plane fit",
+    "n_wind": "member stations with wind (0: network-mean wind used)",
+    "dof": "residual degrees of freedom of the plane fit",
+    "rms": "residual RMS of the plane fit",
+    "cond": "condition number of the scaled design",
+    "vertical_gradient": "fitted vertical gradient (positive: inversion)",
+    "vertical_gradient_se": "standard error of vertical_gradient",
+    "wind_speed": "cluster mean of station wind speeds (scalar mean)",
+    "wind_from_direction": "direction the cluster-mean wind blows from (true north)",
+    "gradient_bearing": "bearing toward higher values (true north)",
+    "inversion": "mast temperature difference, upper minus surface sensor (network mean)",
+    "regime": "advective, in_situ, mixed, steady or undetermined",
+}
+
+
+def _units(unit: str) -> dict[str, str]:
+    rate = f"{unit} h-1"
+    grad = f"{unit} km-1"
+    return {
+        "value": unit, "value_se": unit, "tendency": rate, "tendency_se": rate, "advection": rate,
+        "advection_se": rate, "residual": rate, "residual_se": rate, "advection_instant": rate,
+        "advection_instant_se": rate, "grad_x": grad, "grad_y": grad, "grad_x_se": grad, "grad_y_se": grad,
+        "u": "m s-1", "v": "m s-1", "u_se": "m s-1", "v_se": "m s-1", "n_used": "1", "n_wind": "1", "dof": "1",
+        "rms": unit, "cond": "1", "vertical_gradient": f"{unit} (100 m)-1", "vertical_gradient_se": f"{unit} (100 m)-1",
+        "wind_speed": "m s-1", "wind_from_direction": "degree", "gradient_bearing": "degree", "inversion": "K",
+    }
+
+
+def to_dataset(terms: dict, times: pd.DatetimeIndex, clusters: pd.DataFrame, *, conv_at, unit: str, variable: str,
+               quantity: str):
+    """The budget as a CF-style ``xarray.Dataset`` with dims (time, cluster)."""
+    import xarray as xr
+
+    from .variables import wind_direction
+
+    units = _units(unit)
+    conv = conv_at(clusters["latitude"].to_numpy(), clusters["longitude"].to_numpy())
+    dirs = wind_direction(terms["u"], terms["v"])
+    terms = dict(terms)
+    terms["wind_from_direction"] = (dirs - conv[None, :]) % 360.0
+    bearing = np.rad2deg(np.arctan2(terms["grad_x"], terms["grad_y"]))
+    terms["gradient_bearing"] = (bearing - conv[None, :]) % 360.0
+    data_vars = {}
+    for name, arr in terms.items():
+        attrs = {"long_name": LONG_NAMES.get(name, name)}
+        if name in units:
+            attrs["units"] = units[name]
+        if name == "regime":
+            attrs["flag_meanings"] = " ".join(("advective", "in_situ", "mixed", "steady", "undetermined"))
+            data_vars[name] = (("time", "cluster"), np.asarray(arr, dtype=object).astype(str), attrs)
+        else:
+            data_vars[name] = (("time", "cluster"), np.asarray(arr), attrs)
+    ds = xr.Dataset(
+        data_vars,
+        coords={
+            "time": ("time", pd.DatetimeIndex(times).tz_convert("UTC").tz_localize(None).to_numpy("datetime64[ns]"),
+                     {"long_name": "end of the analysis interval (UTC)", "standard_name": "time"}),
+            "cluster": ("cluster", clusters["cluster"].astype(str).to_numpy(), {"long_name": "cluster id"}),
+            "stations": ("cluster", clusters["stations"].astype(str).to_numpy(), {"long_name": "member station ids joined by +"}),
+            "latitude": ("cluster", clusters["latitude"].to_numpy(float), {"units": "degrees_north", "standard_name": "latitude",
+                                                                           "long_name": "cluster centroid latitude"}),
+            "longitude": ("cluster", clusters["longitude"].to_numpy(float), {"units": "degrees_east", "standard_name": "longitude",
+                                                                             "long_name": "cluster centroid longitude"}),
+        },
+        attrs={"Conventions": "CF-1.8", "title": f"stationflow budget of {variable}", "variable": variable,
+               "quantity": quantity, "source": "stationflow"},
+    )
+    if quantity == "potential_temperature":
+        ds["value"].attrs["long_name"] = "potential temperature at the cluster centre"
+        ds["value"].attrs["standard_name"] = "air_potential_temperature"
+    elif variable in CANONICAL:
+        ds["value"].attrs["standard_name"] = variable
+    return ds
+
+
+TABLE_COLUMNS = ["time", "cluster", "stations", "n_used", "latitude", "longitude", "value", "tendency", "advection",
+                 "residual", "tendency_se", "advection_se", "residual_se", "grad_x", "grad_y", "u", "v", "regime"]
+
+
+def to_table(ds) -> pd.DataFrame:
+    """Tidy table, one row per cluster and time: the contract columns first, then the extras."""
+    n_t, n_c = ds.sizes["time"], ds.sizes["cluster"]
+    cols: dict[str, np.ndarray] = {
+        "time": np.repeat(pd.DatetimeIndex(ds["time"].values).tz_localize("UTC"), n_c),
+        "cluster": np.tile(ds["cluster"].values, n_t),
+        "stations": np.tile(ds["stations"].values, n_t),
+        "latitude": np.tile(ds["latitude"].values, n_t),
+        "longitude": np.tile(ds["longitude"].values, n_t),
+    }
+    for name in ds.data_vars:
+        cols[name] = ds[name].values.reshape(-1)
+    t = pd.DataFrame(cols)
+    extra = [c for c in t.columns if c not in TABLE_COLUMNS]
+    return t[TABLE_COLUMNS + extra]

@@ -1,0 +1,591 @@
+"""Quality control: tests that return masks, and a separate step that makes flags.
+
+Every test is a function named after what it checks; it returns a boolean
+array that is True where the value *passed* (missing values pass: they are
+flagged ``missing`` separately).  :func:`combine` turns the masks into CF
+flags per variable, ``<name>_qc`` with ``flag_values = 0 1 2 3`` and
+``flag_meanings = "good suspect bad missing"``, and ``<name>_qc_tests``, a
+bitmask of the tests that fired (:data:`TEST_BITS`).  QC never deletes or
+changes a value.
+
+Test families follow Shafer et al. (2000), Fiebrich et al. (2010) and the
+WMO AWS guidelines (Zahumensky 2004): range, step, persistence, internal
+consistency and spatial (buddy).  Default thresholds and their sources are
+in :data:`DEFAULT_RANGE`, :data:`DEFAULT_STEP` and
+:data:`DEFAULT_PERSISTENCE`; values marked "from memory" should be read as
+such.  Cold-air pools are real (Fiebrich and Crawford 2001): at night in
+light wind the spatial test is relaxed and can only make a value suspect.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from .config import Config
+
+log = logging.getLogger(__name__)
+
+GOOD, SUSPECT, BAD, MISSING = 0, 1, 2, 3
+FLAG_NAMES = {GOOD: "good", SUSPECT: "suspect", BAD: "bad", MISSING: "missing"}
+TEST_BITS = {"range": 1, "step": 2, "spike": 4, "persistence": 8, "consistency": 16, "spatial": 32}
+#: severity of each test when it fires
+SEVERITY = {"range": BAD, "step": SUSPECT, "spike": BAD, "persistence": SUSPECT, "consistency": BAD, "spatial": SUSPECT}
+#: exceptions by variable: a vane that keeps reporting a direction in calm is a nuisance, not an error
+SEVERITY_BY_VARIABLE = {("wind_from_direction", "consistency"): SUSPECT}
+
+C0 = 273.15
+#: plausible ranges [SI units]
+DEFAULT_RANGE: dict[str, tuple[float, float, str]] = {
+    "air_temperature": (C0 - 80, C0 + 60, "WMO AWS guidelines, Zahumensky 2004: -80..+60 degC (from memory)"),
+    "dew_point_temperature": (C0 - 80, C0 + 35, "-80..+35 degC (from memory)"),
+    "relative_humidity": (0.0, 103.0, "0-100 % plus sensor tolerance to 103 %, Shafer et al. 2000 (from memory)"),
+    "air_pressure": (50000.0, 110000.0, "500-1100 hPa (from memory)"),
+    "wind_speed": (0.0, 75.0, "0-75 m/s for a 2- or 10-min mean (from memory)"),
+    "wind_speed_of_gust": (0.0, 150.0, "0-150 m/s (from memory)"),
+    "wind_from_direction": (0.0, 360.0, "0-360 degree, EPA-454/R-99-005"),
+}
+#: largest plausible change over an interval [(minutes, limit in SI units)]
+DEFAULT_STEP: dict[str, tuple[list[tuple[float, float]], str]] = {
+    "air_temperature": ([(1, 3.0), (60, 4.0), (120, 7.0), (180, 9.0), (360, 15.0), (720, 25.0)],
+                        "3 K per minute (from memory); 4/7/9/15/25 K over 1/2/3/6/12 h, WMO-No. 305 GDPS Guide (1993)"),
+    "dew_point_temperature": ([(1, 2.0), (60, 4.0), (120, 6.0), (180, 8.0), (360, 12.0), (720, 20.0)],
+                              "2 K per minute (from memory); 4/6/8/12/20 K over 1/2/3/6/12 h, WMO-No. 305"),
+    "air_pressure": ([(1, 50.0), (60, 300.0), (120, 600.0), (180, 900.0), (360, 1800.0), (720, 3600.0)],
+                     "0.5 hPa per minute (from memory); 3/6/9/18/36 hPa over 1/2/3/6/12 h, WMO-No. 305"),
+    "relative_humidity": ([(1, 10.0), (60, 30.0)], "10 % per minute (from memory); 30 % per hour (common practice)"),
+    "wind_speed": ([(1, 20.0), (60, 20.0)], "20 m/s between successive values (from memory)"),
+}
+#: (minimum range, window minutes): less variation over the window is suspect
+DEFAULT_PERSISTENCE: dict[str, tuple[float, float, str]] = {
+    "air_temperature": (0.1, 60.0, "< 0.1 K variation in 60 min (from memory)"),
+    "dew_point_temperature": (0.1, 60.0, "< 0.1 K variation in 60 min (common practice)"),
+    "relative_humidity": (1.0, 60.0, "< 1 % in 60 min (from memory); readings at 99-100 % are exempt (fog, dew)"),
+    "air_pressure": (10.0, 60.0, "< 0.1 hPa in 60 min (from memory)"),
+    "wind_speed": (0.1, 180.0, "< 0.1 m/s for 3 h, EPA-454/R-99-005; calm values are exempt"),
+    "wind_from_direction": (1.0, 180.0, "< 1 degree for more than 3 h, EPA-454/R-99-005; calm is exempt"),
+}
+#: smallest spatial residual that can be flagged [SI units]
+DEFAULT_SPATIAL_FLOOR = {"air_temperature": 1.5, "dew_point_temperature": 2.0}
+SPATIAL_VARIABLES = ("air_temperature", "dew_point_temperature")
+#: user scalars whose names look like particulate matter: non-negative
+PM_NAMES = ("pm", "mass_concentration")
+
+
+@dataclass
+class QCResult:
+    """Flags aligned with the observations frame.
+
+    ``flags[name]`` is an int8 array (0 good, 1 suspect, 2 bad, 3 missing),
+    ``tests[name]`` an int16 bitmask of :data:`TEST_BITS`.
+    """
+
+    flags: dict[str, np.ndarray]
+    tests: dict[str, np.ndarray]
+
+    def usable(self, *, use_suspect: bool = False) -> dict[str, np.ndarray]:
+        """Masks of the values the estimator may use."""
+        limit = SUSPECT if use_suspect else GOOD
+        return {k: f <= limit for k, f in self.flags.items()}
+
+    def columns(self) -> dict[str, np.ndarray]:
+        """The ``<name>_qc`` and ``<name>_qc_tests`` columns."""
+        out: dict[str, np.ndarray] = {}
+        for k in self.flags:
+            out[f"{k}_qc"] = self.flags[k]
+            out[f"{k}_qc_tests"] = self.tests[k]
+        return out
+
+
+# --------------------------------------------------------------------------
+# helpers
+# --------------------------------------------------------------------------
+
+def _segments(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Start index of each element's station run (data sorted by station, time)."""
+    n = codes.size
+    new = np.ones(n, bool)
+    new[1:] = codes[1:] != codes[:-1]
+    start_of_run = np.maximum.accumulate(np.where(new, np.arange(n), 0))
+    return new, start_of_run
+
+
+def _prev_finite(x: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """Index of the previous finite value of the same station (-1 if none)."""
+    n = x.size
+    idx = np.where(np.isfinite(x), np.arange(n), -1)
+    last = np.maximum.accumulate(idx)
+    prev = np.empty(n, np.int64)
+    prev[0] = -1
+    prev[1:] = last[:-1]
+    _, run_start = _segments(codes)
+    prev[prev < run_start] = -1
+    return prev
+
+
+def _next_finite(x: np.ndarray, codes: np.ndarray) -> np.ndarray:
+    """Index of the next finite value of the same station (-1 if none)."""
+    n = x.size
+    rev = _prev_finite(x[::-1], codes[::-1])
+    nxt = np.where(rev >= 0, n - 1 - rev, -1)[::-1]
+    return nxt
+
+
+def step_limit(table: list[tuple[float, float]] | list[list[float]], minutes: np.ndarray) -> np.ndarray:
+    """Largest plausible change over ``minutes``, interpolated log-log in ``table``.
+
+    Below the first and above the last entry the end values are used, so
+    the limit never shrinks below the shortest-interval value.
+    """
+    tm = np.log([float(a) for a, _ in table])
+    lim = np.log([float(b) for _, b in table])
+    m = np.log(np.clip(minutes, 1e-6, None))
+    return np.exp(np.interp(m, tm, lim))
+
+
+def rolling_range(x: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Max and min of ``x[start[i]:i+1]`` for every i (NaN ignored).
+
+    A sparse table (range-maximum query): O(n log w), vectorised.
+    """
+    n = x.size
+    hi0 = np.where(np.isnan(x), -np.inf, x)
+    lo0 = np.where(np.isnan(x), np.inf, x)
+    length = np.arange(n) - start + 1
+    levels = max(1, int(np.ceil(np.log2(max(1, length.max())))) + 1)
+    his, los = [hi0], [lo0]
+    for lev in range(1, levels):
+        span = 1 << (lev - 1)
+        h, l_ = his[-1], los[-1]
+        nh = h.copy()
+        nl = l_.copy()
+        nh[:-span] = np.maximum(h[:-span], h[span:])
+        nl[:-span] = np.minimum(l_[:-span], l_[span:])
+        his.append(nh)
+        los.append(nl)
+    lev = np.floor(np.log2(np.maximum(length, 1))).astype(int)
+    H = np.stack(his)
+    L = np.stack(los)
+    j2 = np.arange(n) - (1 << lev) + 1
+    mx = np.maximum(H[lev, start], H[lev, j2])
+    mn = np.minimum(L[lev, start], L[lev, j2])
+    return mx, mn
+
+
+def solar_elevation(times: pd.DatetimeIndex | np.ndarray, latitude: float, longitude: float) -> np.ndarray:
+    """Approximate solar elevation [degree] (Spencer 1971 declination and equation of time).
+
+    Accurate to a fraction of a degree: enough to tell day from night.
+    """
+    t = pd.DatetimeIndex(times)
+    doy = t.dayofyear.to_numpy()
+    hours = t.hour.to_numpy() + t.minute.to_numpy() / 60.0 + t.second.to_numpy() / 3600.0
+    g = 2 * np.pi / 365.0 * (doy - 1 + (hours - 12) / 24)
+    decl = (0.006918 - 0.399912 * np.cos(g) + 0.070257 * np.sin(g) - 0.006758 * np.cos(2 * g)
+            + 0.000907 * np.sin(2 * g) - 0.002697 * np.cos(3 * g) + 0.00148 * np.sin(3 * g))
+    eqt = 229.18 * (0.000075 + 0.001868 * np.cos(g) - 0.032077 * np.sin(g) - 0.014615 * np.cos(2 * g)
+                    - 0.040849 * np.sin(2 * g))
+    solar_time = hours * 60 + eqt + 4 * longitude
+    ha = np.deg2rad(solar_time / 4 - 180)
+    lat = np.deg2rad(latitude)
+    sin_el = np.sin(lat) * np.sin(decl) + np.cos(lat) * np.cos(decl) * np.cos(ha)
+    return np.rad2deg(np.arcsin(np.clip(sin_el, -1, 1)))
+
+
+# --------------------------------------------------------------------------
+# the tests: each returns True where the value passed
+# --------------------------------------------------------------------------
+
+def within_range(values: np.ndarray, low: float, high: float) -> np.ndarray:
+    """Plausible-value test: True where ``low <= value <= high`` or missing."""
+    v = np.asarray(values, float)
+    return np.isnan(v) | ((v >= low) & (v <= high))
+
+
+def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
+                    table: list[tuple[float, float]]) -> tuple[np.ndarray, np.ndarray]:
+    """Step and spike tests on each station's series (sorted by station, time).
+
+    Returns ``(step_ok, spike_ok)``.  A change from the previous value larger
+    than the limit for the elapsed time fails ``step``; a value that jumps
+    away and straight back (both changes too large, opposite signs) fails
+    ``spike`` instead.  The return from a spike is not a step.
+    """
+    x = np.asarray(values, float)
+    prev = _prev_finite(x, codes)
+    nxt = _next_finite(x, codes)
+    has_p, has_n = prev >= 0, nxt >= 0
+    p = np.where(has_p, prev, 0)
+    q = np.where(has_n, nxt, 0)
+    dt_in = (times_ns - times_ns[p]) / 6e10
+    dt_out = (times_ns[q] - times_ns) / 6e10
+    max_gap = max(float(a) for a, _ in table) * 1.5
+    d_in = x - x[p]
+    d_out = x[q] - x
+    fin = np.isfinite(x)
+    ex_in = fin & has_p & (dt_in <= max_gap) & (np.abs(d_in) > step_limit(table, dt_in))
+    ex_out = fin & has_n & (dt_out <= max_gap) & (np.abs(d_out) > step_limit(table, dt_out))
+    spike = ex_in & ex_out & (np.sign(d_in) != np.sign(d_out))
+    after_spike = np.zeros_like(spike)
+    after_spike[has_p] = spike[p[has_p]]
+    step = ex_in & ~spike & ~after_spike
+    return ~step, ~spike
+
+
+def not_persistent(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, min_range: float,
+                   window_minutes: float, *, exempt: np.ndarray | None = None) -> np.ndarray:
+    """Persistence test: False for values in a window with less variation than ``min_range``.
+
+    The trailing window of ``window_minutes`` must be at least 80 % covered
+    and hold at least 3 values; then every value in a failing window fails.
+    ``exempt`` marks values that may legitimately persist (calm, fog).
+    """
+    x = np.asarray(values, float).copy()
+    n = x.size
+    if exempt is not None:
+        x[exempt] = np.nan
+    _, run_start = _segments(codes)
+    w = int(window_minutes * 6e10)
+    key = codes.astype(np.int64)
+    # first index of the same station whose time is >= t - w
+    t_rel = times_ns - times_ns.min()
+    combo = key * (t_rel.max() + 2 * w + 1) + t_rel
+    start = np.searchsorted(combo, combo - w, side="left")
+    start = np.maximum(start, run_start)
+    mx, mn = rolling_range(x, start)
+    count_fin = np.concatenate([[0], np.cumsum(np.isfinite(x))])
+    n_in = count_fin[np.arange(n) + 1] - count_fin[start]
+    span = (times_ns - times_ns[start]) / 6e10
+    n_all = np.arange(n) - start + 1
+    fail = (np.isfinite(x) & (n_in >= 3) & (n_in >= 0.5 * n_all) & (span >= 0.8 * window_minutes)
+            & ((mx - mn) < min_range))
+    # every value inside a failing window fails
+    mark = np.zeros(n + 1, np.int64)
+    np.add.at(mark, start[fail], 1)
+    np.add.at(mark, np.flatnonzero(fail) + 1, -1)
+    covered = np.cumsum(mark)[:n] > 0
+    exempt_mask = np.zeros(n, bool) if exempt is None else np.asarray(exempt, bool)
+    return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)
+
+
+def dew_point_not_above_temperature(dew_point: np.ndarray, temperature: np.ndarray, tolerance: float = 0.5) -> np.ndarray:
+    """Internal consistency: dew point may not exceed air temperature (+ tolerance) [K]."""
+    td, t = np.asarray(dew_point, float), np.asarray(temperature, float)
+    return ~(np.isfinite(td) & np.isfinite(t) & (td > t + tolerance))
+
+
+def gust_not_below_mean(gust: np.ndarray, speed: np.ndarray) -> np.ndarray:
+    """Internal consistency: a gust may not be below the mean speed."""
+    g, s = np.asarray(gust, float), np.asarray(speed, float)
+    return ~(np.isfinite(g) & np.isfinite(s) & (g < s))
+
+
+def direction_defined_when_moving(direction: np.ndarray, speed: np.ndarray, calm_speed: float) -> np.ndarray:
+    """Internal consistency: with a speed of 0 there can be no direction."""
+    d, s = np.asarray(direction, float), np.asarray(speed, float)
+    return ~(np.isfinite(d) & np.isfinite(s) & (s == 0) & (d != 0))
+
+
+def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, *,
+                           neighbours: int = 6, max_distance_m: float = 0.0, suspect_z: float = 3.0,
+                           bad_z: float = 6.0, floor: float = 0.0, relaxed: np.ndarray | None = None,
+                           relax: float = 2.0, sigma: float = 1.0,
+                           predictors: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Spatial (buddy) test on a (n_times, n_stations) grid.
+
+    Each station is predicted from its ``neighbours`` nearest stations by a
+    leave-one-out plane fit (with elevation as a regressor where the
+    neighbours span enough height), evaluated at the station.  Its residual
+    is compared with a robust spread of all stations' residuals at that time
+    (1.4826 MAD): beyond ``suspect_z`` it fails, beyond ``bad_z`` it is bad,
+    never below ``floor``.  Where ``relaxed`` (per time) is True, values
+    *below* their prediction get thresholds multiplied by ``relax`` and are
+    never made bad: a cold pool on a calm clear night is real.
+    ``predictors`` (same shape) are the values the predictions are made
+    from; default ``values`` (pass values already flagged as NaN here so a
+    faulty station does not spoil its neighbours' predictions).
+
+    Returns ``(passed, bad, residual)`` arrays of shape (n_times, n_stations).
+    """
+    from scipy.spatial import cKDTree
+
+    from .gradient import fit_planes
+
+    vals = np.asarray(values, float)
+    n_t, n_s = vals.shape
+    k = min(neighbours, n_s - 1)
+    passed = np.ones(vals.shape, bool)
+    bad = np.zeros(vals.shape, bool)
+    resid = np.full(vals.shape, np.nan)
+    if k < 3:
+        return passed, bad, resid
+    tree = cKDTree(np.column_stack([x, y]))
+    dist, idx = tree.query(np.column_stack([x, y]), k=k + 1)
+    nb = idx[:, 1:]
+    members = [nb[i] for i in range(n_s)]
+    centres = np.column_stack([x, y])
+    zz = np.asarray(z, float)
+    spread = np.nanmax(zz[nb], axis=1) - np.nanmin(zz[nb], axis=1) if np.isfinite(zz).any() else np.zeros(n_s)
+    with_z = (spread > 30.0) & (k >= 5) & np.isfinite(zz[nb]).all(axis=1) & np.isfinite(zz)
+    pred = np.full(vals.shape, np.nan)
+    for use_z in (False, True):
+        sel = np.flatnonzero(with_z == use_z)
+        if sel.size == 0:
+            continue
+        fit = fit_planes(vals if predictors is None else np.asarray(predictors, float), x, y,
+                         [members[i] for i in sel], z=zz if use_z else None, sigma=sigma,
+                         centres=centres[sel], min_stations=4 if use_z else 3, residuals=False)
+        p = fit.value
+        if use_z:
+            p = p + fit.grad_z * (zz[sel] - np.array([zz[members[i]].mean() for i in sel]))[None, :]
+        pred[:, sel] = p
+    if max_distance_m > 0:
+        far = dist[:, 1:].max(axis=1) > max_distance_m
+        pred[:, far] = np.nan
+    r = vals - pred
+    med = np.nanmedian(r, axis=1, keepdims=True) if n_t else r
+    mad = 1.4826 * np.nanmedian(np.abs(r - med), axis=1, keepdims=True)
+    dev = r - med
+    # relaxed (night, light wind) only for values colder/lower than predicted: cold pools are real
+    cold_relax = np.zeros(vals.shape, bool) if relaxed is None else (np.asarray(relaxed)[:, None] & (dev < 0))
+    scale = np.where(cold_relax, relax, 1.0)
+    thr_s = np.fmax(suspect_z * mad, floor) * scale
+    thr_b = np.fmax(bad_z * mad, 2 * floor) * scale
+    fin = np.isfinite(dev)
+    passed = ~(fin & (np.abs(dev) > thr_s))
+    bad = fin & (np.abs(dev) > thr_b) & ~cold_relax
+    return passed, bad, r
+
+
+# --------------------------------------------------------------------------
+# running all tests and combining
+# --------------------------------------------------------------------------
+
+def thresholds(config: Config) -> dict[str, dict]:
+    """The thresholds in force: defaults merged with the configuration."""
+    qc = config["qc"]
+    rng = {k: (lo, hi) for k, (lo, hi, _) in DEFAULT_RANGE.items()}
+    rng.update({k: tuple(v) for k, v in qc["range"].items()})
+    step = {k: t for k, (t, _) in DEFAULT_STEP.items()}
+    step.update({k: [tuple(p) for p in v] for k, v in qc["step"].items()})
+    pers = {k: (a, b) for k, (a, b, _) in DEFAULT_PERSISTENCE.items()}
+    pers.update({k: tuple(v) for k, v in qc["persistence"].items()})
+    floor = dict(DEFAULT_SPATIAL_FLOOR)
+    floor.update(qc["spatial_floor"])
+    return {"range": rng, "step": step, "persistence": pers, "spatial_floor": floor}
+
+
+def _is_pm(name: str) -> bool:
+    return any(name.lower().startswith(p) for p in PM_NAMES)
+
+
+def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | None = None) -> QCResult:
+    """Run every test on the tidy observations and combine the results into flags.
+
+    ``observations`` must be the ingest result (canonical names, SI units).
+    Vectorised over stations and time.
+    """
+    cfg = config or Config()
+    qcfg = cfg["qc"]
+    th = thresholds(cfg)
+    variables = [c for c in observations.columns if c not in ("station_id", "time")]
+    n = len(observations)
+    order = np.lexsort((observations["time"].to_numpy("datetime64[ns]").astype(np.int64),
+                        pd.factorize(observations["station_id"])[0]))
+    obs = observations.iloc[order]
+    codes = pd.factorize(obs["station_id"])[0]
+    tns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    fired: dict[str, dict[str, np.ndarray]] = {v: {} for v in variables}
+    arr = {v: obs[v].to_numpy(float) for v in variables}
+    calm_speed = qcfg["calm_speed"]
+    if qcfg["enabled"]:
+        for v in variables:
+            x = arr[v]
+            if v in th["range"]:
+                fired[v]["range"] = ~within_range(x, *th["range"][v])
+            elif _is_pm(v):
+                fired[v]["range"] = ~within_range(x, 0.0, 1000.0)
+            if v in th["step"]:
+                step_ok, spike_ok = plausible_steps(x, tns, codes, th["step"][v])
+                fired[v]["step"] = ~step_ok
+                fired[v]["spike"] = ~spike_ok
+            if v in th["persistence"] or _is_pm(v):
+                mr, win = th["persistence"].get(v, (1e-9, 60.0))
+                exempt = None
+                if v == "wind_speed":
+                    exempt = x < calm_speed
+                elif v == "wind_from_direction" and "wind_speed" in arr:
+                    exempt = ~(arr["wind_speed"] >= calm_speed)
+                elif v == "relative_humidity":
+                    exempt = x >= 99.0
+                fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt)
+        if "dew_point_temperature" in arr and "air_temperature" in arr:
+            fired["dew_point_temperature"]["consistency"] = ~dew_point_not_above_temperature(
+                arr["dew_point_temperature"], arr["air_temperature"], qcfg["dew_point_tolerance"])
+        if "wind_speed_of_gust" in arr and "wind_speed" in arr:
+            fired["wind_speed_of_gust"]["consistency"] = ~gust_not_below_mean(arr["wind_speed_of_gust"], arr["wind_speed"])
+        if "wind_from_direction" in arr and "wind_speed" in arr:
+            fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
+                arr["wind_from_direction"], arr["wind_speed"], calm_speed)
+        if qcfg["spatial"]:
+            _spatial(obs, stations, arr, fired, cfg, th)
+    flags: dict[str, np.ndarray] = {}
+    tests: dict[str, np.ndarray] = {}
+    inv = np.empty(n, np.int64)
+    inv[order] = np.arange(n)
+    for v in variables:
+        missing = np.isnan(arr[v])
+        f = np.where(missing, MISSING, GOOD).astype(np.int8)
+        bits = np.zeros(n, np.int16)
+        spatial_bad = fired[v].pop("spatial_bad", None)
+        for name, mask in fired[v].items():
+            mask = mask & ~missing
+            bits |= np.where(mask, TEST_BITS[name], 0).astype(np.int16)
+            sev = SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name])
+            f = np.where(mask & (f < sev), sev, f).astype(np.int8)
+        if spatial_bad is not None:
+            f = np.where(spatial_bad & ~missing, BAD, f).astype(np.int8)
+        flags[v] = f[inv]
+        tests[v] = bits[inv]
+    return QCResult(flags, tests)
+
+
+def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, cfg: Config, th: dict) -> None:
+    from .align import bin_index, infer_interval
+    from .geometry import assign_roles, project
+
+    qcfg = cfg["qc"]
+    st = stations.reset_index(drop=True)
+    x, y, _, _ = project(st["latitude"].to_numpy(), st["longitude"].to_numpy())
+    surface = assign_roles(st, x, y) == "surface"
+    surface_ids = st["station_id"][surface].tolist()
+    if len(surface_ids) < 5:
+        return
+    interval = infer_interval(obs)
+    t0 = obs["time"].min().ceil(interval)
+    rows = bin_index(obs["time"], t0, interval)
+    n_t = int(rows.max()) + 1
+    col = pd.Index(surface_ids).get_indexer(obs["station_id"])
+    inside = (col >= 0) & (rows >= 0)
+    flat = rows * len(surface_ids) + col
+    size = n_t * len(surface_ids)
+    sx, sy = x[surface], y[surface]
+    sz = st["elevation"].to_numpy(float)[surface]
+    times = pd.date_range(t0, periods=n_t, freq=interval)
+    lat0, lon0 = float(st["latitude"].mean()), float(st["longitude"].mean())
+    night = solar_elevation(times, lat0, lon0) < 0
+    light = np.ones(n_t, bool)
+    if "wind_speed" in arr:
+        s = arr["wind_speed"]
+        ok = inside & np.isfinite(s)
+        grid = np.full(size, np.nan)
+        sums = np.bincount(flat[ok], weights=s[ok], minlength=size)
+        cnt = np.bincount(flat[ok], minlength=size)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            grid = (sums / cnt).reshape(n_t, -1)
+        with np.errstate(all="ignore"):
+            import warnings
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                med = np.nanmedian(grid, axis=1)
+        light = ~(med >= qcfg["spatial_light_wind"])
+    relaxed = night & light
+    names = [v for v in arr if v in SPATIAL_VARIABLES or _is_pm(v)]
+    sigma = cfg["uncertainty"]["sensor"]
+    for v in names:
+        xv = arr[v]
+        already = np.zeros(xv.size, bool)
+        for m in fired[v].values():
+            already |= m
+        ok = inside & np.isfinite(xv) & ~already
+        sums = np.bincount(flat[ok], weights=xv[ok], minlength=size)
+        cnt = np.bincount(flat[ok], minlength=size)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            grid = (sums / cnt).reshape(n_t, -1)
+        data = np.log(np.fmax(grid, 0.5)) if _is_pm(v) else grid
+        floor = th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
+        import warnings
+
+        opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
+                    suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed,
+                    relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            # two passes: the second predicts from neighbours cleaned of first-pass failures
+            passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, **opts)
+            cleaned = np.where(passed, data, np.nan)
+            passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, predictors=cleaned, **opts)
+        fail = np.zeros(xv.size, bool)
+        badm = np.zeros(xv.size, bool)
+        fail[inside] = ~passed.reshape(-1)[flat[inside]]
+        badm[inside] = bad.reshape(-1)[flat[inside]]
+        fired[v]["spatial"] = fail & np.isfinite(xv)
+        fired[v]["spatial_bad"] = badm & np.isfinite(xv)
+
+
+def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:
+    """The qc_flags.csv table: one row per value that is not good (and not missing)."""
+    parts = []
+    names = {bit: name for name, bit in TEST_BITS.items()}
+    for v, f in result.flags.items():
+        sel = (f == SUSPECT) | (f == BAD)
+        if not sel.any():
+            continue
+        bits = result.tests[v][sel]
+        uniq, inv = np.unique(bits, return_inverse=True)
+        labels = np.array(["+".join(names[b] for b in sorted(names) if u & b) for u in uniq], dtype=object)
+        parts.append(pd.DataFrame({
+            "station_id": observations["station_id"].to_numpy()[sel],
+            "time": observations["time"].to_numpy()[sel],
+            "variable": v,
+            "flag": np.where(f[sel] == BAD, "bad", "suspect"),
+            "tests": labels[inv],
+        }))
+    if not parts:
+        return pd.DataFrame({"station_id": pd.Series([], dtype=str), "time": pd.Series([], dtype="datetime64[ns, UTC]"),
+                             "variable": pd.Series([], dtype=str), "flag": pd.Series([], dtype=str),
+                             "tests": pd.Series([], dtype=str)})
+    out = pd.concat(parts, ignore_index=True)
+    return out.sort_values(["time", "station_id", "variable"], kind="stable").reset_index(drop=True)
+
+
+def summary(observations: pd.DataFrame, result: QCResult) -> dict[str, pd.DataFrame]:
+    """Counts of fired tests per variable and test, and flags per station."""
+    rows = []
+    for v, bits in result.tests.items():
+        for name, b in TEST_BITS.items():
+            c = int(np.count_nonzero(bits & b))
+            if c:
+                rows.append({"variable": v, "test": name, "values": c})
+    per_test = pd.DataFrame(rows, columns=["variable", "test", "values"])
+    st = observations["station_id"].to_numpy()
+    frames = []
+    for v, f in result.flags.items():
+        frames.append(pd.DataFrame({"station_id": st, "variable": v, "flag": f}))
+    if frames:
+        allf = pd.concat(frames, ignore_index=True)
+        per_station = (allf.assign(suspect=allf["flag"] == SUSPECT, bad=allf["flag"] == BAD)
+                       .groupby("station_id")[["suspect", "bad"]].sum().astype(int).reset_index())
+    else:
+        per_station = pd.DataFrame(columns=["station_id", "suspect", "bad"])
+    return {"per_test": per_test, "per_station": per_station}
+
+
+def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = "2h") -> pd.DataFrame:
+    """Contiguous periods of non-good values per station and variable (for the check summary)."""
+    t = flag_table(observations, result)
+    if t.empty:
+        return pd.DataFrame(columns=["station_id", "variable", "start", "end", "values", "flag", "tests"])
+    t = t.sort_values(["station_id", "variable", "time"], kind="stable")
+    key = t["station_id"] + "\x00" + t["variable"]
+    new = (key != key.shift()) | (t["time"].diff() > pd.Timedelta(gap))
+    t["period"] = new.cumsum()
+    agg = t.groupby("period").agg(station_id=("station_id", "first"), variable=("variable", "first"),
+                                  start=("time", "min"), end=("time", "max"), values=("time", "size"),
+                                  flag=("flag", lambda s: "bad" if (s == "bad").any() else "suspect"),
+                                  tests=("tests", lambda s: "+".join(sorted(set("+".join(s).split("+"))))))
+    return agg.reset_index(drop=True)

@@ -1,0 +1,12 @@
+"""Reports: tables (CSV, Parquet, JSON), CF-style NetCDF, PNG figures and a self-contained HTML page.
+
+Every file is written atomically: to a temporary file in the target folder,
+then renamed, so an interrupted run never leaves a half-written file under
+the final name.
+"""
+
+from .files import (atomic_write, write_csv, write_json, write_netcdf, write_parquet, write_rejected,
+                    write_qc_flags)
+
+__all__ = ["atomic_write", "write_csv", "write_json", "write_netcdf", "write_parquet", "write_rejected",
+           "write_qc_flags"]

@@ -1,0 +1,117 @@
+"""Atomic writers for the output files."""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Callable, Iterator
+
+import numpy as np
+import pandas as pd
+
+
+@contextlib.contextmanager
+def atomic_write(path: str | Path) -> Iterator[Path]:
+    """Yield a temporary path next to ``path``; rename it onto ``path`` on success.
+
+    On any error the temporary file is removed and ``path`` is untouched.
+    """
+    target = Path(path)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        os.replace(tmp_path, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            tmp_path.unlink()
+        raise
+
+
+def _iso_utc(series: pd.Series) -> pd.Series:
+    t = pd.DatetimeIndex(series)
+    if t.tz is None:
+        t = t.tz_localize("UTC")
+    return pd.Series(t.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"), index=series.index)
+
+
+def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str, ...] = ("time",), float_format: str = "%.6g") -> Path:
+    """Write a CSV with ISO 8601 UTC times (``Z``)."""
+    out = frame.copy()
+    for c in time_columns:
+        if c in out and len(out):
+            out[c] = _iso_utc(out[c])
+    with atomic_write(path) as tmp:
+        out.to_csv(tmp, index=False, float_format=float_format, lineterminator="\n")
+    return Path(path)
+
+
+def write_parquet(frame: pd.DataFrame, path: str | Path) -> Path:
+    """Write a Parquet file (pyarrow)."""
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    table = pa.Table.from_pandas(frame, preserve_index=False)
+    with atomic_write(path) as tmp:
+        pq.write_table(table, tmp, compression="zstd")
+    return Path(path)
+
+
+def _jsonable(obj):
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating,)):
+        return float(obj)
+    if isinstance(obj, (pd.Timestamp,)):
+        return obj.isoformat()
+    if isinstance(obj, (pd.Timedelta,)):
+        return str(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+def write_json(data: dict, path: str | Path) -> Path:
+    """Write pretty JSON."""
+    with atomic_write(path) as tmp:
+        tmp.write_text(json.dumps(data, indent=2, default=_jsonable) + "\n", encoding="utf-8")
+    return Path(path)
+
+
+def write_rejected(rejected: pd.DataFrame, path: str | Path) -> Path:
+    """``rejected_rows.csv``: file, line, reason."""
+    cols = ["file", "line", "reason"]
+    return write_csv(rejected[cols] if len(rejected) else pd.DataFrame(columns=cols), path, time_columns=())
+
+
+def write_qc_flags(flags: pd.DataFrame, path: str | Path) -> Path:
+    """``qc_flags.csv``: station_id, time, variable, flag, tests."""
+    return write_csv(flags[["station_id", "time", "variable", "flag", "tests"]], path)
+
+
+def write_netcdf(ds, path: str | Path) -> Path:
+    """CF-style NetCDF (netCDF4 format)."""
+    enc = {}
+    for name, var in ds.data_vars.items():
+        if var.dtype.kind == "f":
+            enc[name] = {"zlib": True, "complevel": 4, "_FillValue": np.nan}
+        elif var.dtype.kind in "OUS":
+            enc[name] = {"dtype": str}
+    enc["time"] = {"units": "seconds since 1970-01-01 00:00:00", "calendar": "standard", "dtype": "float64"}
+    with atomic_write(path) as tmp:
+        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
+    return Path(path)
+
+
+def write_with(path: str | Path, writer: Callable[[Path], None]) -> Path:
+    """Atomically write ``path`` with ``writer(tmp_path)``."""
+    with atomic_write(path) as tmp:
+        writer(tmp)
+    return Path(path)

@@ -1,0 +1,215 @@
+"""Write the contract's output files for ``check``, ``network`` and ``budget``."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+from importlib import metadata
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .. import __version__
+from ..budget import describe_period
+from ..geometry import cluster_table
+from . import files
+
+CSV_ROW_LIMIT = 1_000_000
+PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
+
+
+def versions() -> dict[str, str]:
+    """Versions of Python and the packages the run used."""
+    out = {"python": platform.python_version(), "stationflow": __version__}
+    for p in PACKAGES:
+        try:
+            out[p] = metadata.version(p)
+        except metadata.PackageNotFoundError:
+            out[p] = "not installed"
+    return out
+
+
+def run_record(command: str, inputs: dict, config, accounting: dict, extra: dict | None = None) -> dict:
+    """The run.json content."""
+    rec = {
+        "stationflow_version": __version__,
+        "command": command,
+        "created_utc": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
+        "inputs": {k: (str(v) if v is not None else None) for k, v in inputs.items()},
+        "config": config.to_dict(),
+        "config_file": config.source,
+        "versions": versions(),
+        "accounting": {k: int(v) for k, v in accounting.items()},
+    }
+    if extra:
+        rec.update(extra)
+    return rec
+
+
+def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure: bool = True) -> list[Path]:
+    """run.json, rejected_rows.csv, qc_flags.csv, qc_summary.csv and qc_overview.png."""
+    from . import plots
+
+    out.mkdir(parents=True, exist_ok=True)
+    written = [files.write_rejected(chk.data.rejected, out / "rejected_rows.csv"),
+               files.write_qc_flags(chk.flags, out / "qc_flags.csv")]
+    written.append(files.write_csv(chk.periods, out / "qc_periods.csv", time_columns=("start", "end")))
+    if figure:
+        written.append(plots.qc_overview(chk.data.observations, chk.qc.flags, out / "qc_overview.png"))
+    qc_counts = {f"{r.variable}:{r.test}": int(r.values) for r in chk.per_test.itertuples()}
+    extra = {"qc": {"tests_fired": qc_counts, "flags": _flag_counts(chk)},
+             "stations": int(len(chk.data.stations)), "variables": chk.data.variables,
+             "units": chk.data.units, "ignored_columns": chk.data.ignored_columns}
+    if command == "check":
+        rec = run_record(command, inputs, chk.config, chk.data.accounting, extra)
+        rec["outputs"] = [p.name for p in written] + ["run.json"]
+        written.append(files.write_json(rec, out / "run.json"))
+    return written
+
+
+def _flag_counts(chk) -> dict:
+    out = {}
+    for v, f in chk.qc.flags.items():
+        out[v] = {"good": int(np.sum(f == 0)), "suspect": int(np.sum(f == 1)), "bad": int(np.sum(f == 2)),
+                  "missing": int(np.sum(f == 3))}
+    return out
+
+
+def write_network(out: Path, network, *, inputs: dict, config, accounting: dict | None = None) -> list[Path]:
+    """clusters.csv, network_map.png and run.json."""
+    from . import plots
+
+    out.mkdir(parents=True, exist_ok=True)
+    written = [files.write_csv(cluster_table(network), out / "clusters.csv", time_columns=(), float_format="%.6g"),
+               plots.network_map(network, out / "network_map.png", title="Network: usable and rejected clusters")]
+    rec = run_record("network", inputs, config, accounting or {"rows_read": 0, "rows_accepted": 0, "rows_rejected": 0},
+                     {"projection": network.crs, "clusters": {"total": int(len(network.clusters)),
+                                                              "usable": int(len(network.usable))}})
+    rec["outputs"] = [p.name for p in written] + ["run.json"]
+    written.append(files.write_json(rec, out / "run.json"))
+    return written
+
+
+def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: bool = True) -> tuple[list[Path], list[str]]:
+    """Every budget output. Returns (paths, notes for the user)."""
+    from . import plots
+    from .html import write_report
+
+    out.mkdir(parents=True, exist_ok=True)
+    notes: list[str] = []
+    written = write_check(out, run.check, inputs=inputs, command="budget")
+    table = run.table
+    written.append(files.write_parquet(table, out / "budget.parquet"))
+    if len(table) <= CSV_ROW_LIMIT or csv:
+        written.append(files.write_csv(table, out / "budget.csv"))
+    else:
+        notes.append(f"budget.csv not written: {len(table):,} rows > {CSV_ROW_LIMIT:,}; use budget.parquet or pass --csv")
+    written.append(files.write_netcdf(run.dataset, out / "budget.nc"))
+    written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
+    lines = [describe_period(p, variable=run.quantity) for p in run.periods]
+    figs: list[tuple[str, Path]] = []
+    if report:
+        ts = plots.budget_timeseries(table, out / "budget_timeseries.png", unit=run.unit)
+        dominant = _dominant(table)
+        arrows = _arrows(table)
+        mp = plots.network_map(run.network, out / "budget_map.png", colour_by=dominant, arrows=arrows,
+                               title="Clusters by dominant regime; mean wind and gradient")
+        figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
+                ("Quality control overview", out / "qc_overview.png")]
+        written += [ts, mp]
+    rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
+        "variable": run.variable, "quantity": run.quantity, "unit": run.unit,
+        "interval": str(run.interval), "window": str(run.window),
+        "sensor_uncertainty": run.settings.sigma, "wind_uncertainty": run.settings.wind_sigma,
+        "projection": run.network.crs,
+        "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
+        "regimes": {k: int(v) for k, v in table["regime"].value_counts().items()},
+        "main_periods": lines,
+        "qc": {"flags": _flag_counts(run.check)},
+    })
+    if report:
+        written.append(_report(out, run, table, lines, figs, inputs))
+    rec["outputs"] = sorted({p.name for p in written} | {"run.json"})
+    written.append(files.write_json(rec, out / "run.json"))
+    return written, notes
+
+
+def _dominant(table: pd.DataFrame) -> dict[str, str]:
+    det = table[table["regime"].isin(["advective", "in_situ", "mixed"])]
+    if det.empty:
+        return {c: "steady" for c in table["cluster"].unique()}
+    dom = det.groupby("cluster")["regime"].agg(lambda s: s.value_counts().index[0]).to_dict()
+    for c in table["cluster"].unique():
+        dom.setdefault(c, "steady")
+    return dom
+
+
+def _arrows(table: pd.DataFrame) -> dict:
+    det = table[table["regime"] != "undetermined"]
+    g = det.groupby("cluster")[["u", "v", "grad_x", "grad_y"]].mean()
+    return {"cluster": list(g.index), "u": g["u"].to_numpy(), "v": g["v"].to_numpy(), "gx": g["grad_x"].to_numpy(),
+            "gy": g["grad_y"].to_numpy()}
+
+
+def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs: dict) -> Path:
+    from .html import write_report
+
+    data = run.check.data
+    obs = data.observations
+    t0, t1 = obs["time"].min(), obs["time"].max()
+    quantity = run.quantity.replace("_", " ")
+    summary = [
+        ("Question", f"How much of the observed change of {run.variable.replace('_', ' ')} was carried in by the wind "
+                     "(advection) and how much was made in place (in-situ residual)?"),
+        ("Data", f"{inputs.get('observations')} ({data.accounting['rows_read']:,} rows read, "
+                 f"{data.accounting['rows_accepted']:,} accepted, {data.accounting['rows_rejected']:,} rejected)"),
+        ("Stations", f"{len(data.stations)} stations; {len(run.network.usable)} of {len(run.network.clusters)} "
+                     "clusters usable"),
+        ("Period", f"{pd.Timestamp(t0):%Y-%m-%d %H:%M} to {pd.Timestamp(t1):%Y-%m-%d %H:%M} UTC"),
+        ("Quantity fitted", f"{quantity} [{run.unit}]"),
+        ("Analysis step / window", f"{run.interval} / {run.window} (centred)"),
+        ("Sensor uncertainty", f"{run.settings.sigma:g} {run.unit} per reading; wind components "
+                               f"{run.settings.wind_sigma:g} m/s"),
+    ]
+    det = table[table["regime"] != "undetermined"]
+    counts = table["regime"].value_counts()
+    quality = [
+        f"Regimes over all clusters and times: " + ", ".join(f"{k.replace('_', ' ')} {int(v)}" for k, v in counts.items()) + ".",
+        (f"Median standard error of the advection {np.nanmedian(det['advection_se']):.3g} and of the residual "
+         f"{np.nanmedian(det['residual_se']):.3g} {run.unit}/h." if len(det) else "No cluster could be evaluated."),
+        f"Quality control flagged {int(sum(np.sum(f == 1) for f in run.check.qc.flags.values()))} values suspect and "
+        f"{int(sum(np.sum(f == 2) for f in run.check.qc.flags.values()))} bad (see qc_flags.csv); the estimator used "
+        f"{'good and suspect' if run.check.config['qc']['use_suspect'] else 'only good'} values.",
+        "'undetermined' means too few good stations in the cluster for a plane, or gaps at the window ends.",
+    ]
+    for p in run.check.periods.head(8).itertuples():
+        quality.append(f"QC: {p.station_id} {p.variable} {p.flag} ({p.tests}) {pd.Timestamp(p.start):%m-%d %H:%M}"
+                       f" to {pd.Timestamp(p.end):%m-%d %H:%M} UTC, {p.values} values")
+    if "inversion" in run.extras:
+        inv = run.extras["inversion"]
+        if np.isfinite(inv).any():
+            quality.append(f"Mast inversion (upper minus surface sensor): max {np.nanmax(inv):+.2f} K, "
+                           f"min {np.nanmin(inv):+.2f} K; positive values mean warmer air aloft (radiative cooling).")
+    ct = cluster_table(run.network)[["cluster", "stations", "area_km2", "min_angle", "noise_amplification", "status", "reason"]]
+    reg = table.groupby("cluster")["regime"].value_counts().unstack(fill_value=0)
+    ct = ct.merge(reg, left_on="cluster", right_index=True, how="left")
+    method = [
+        "Stations are projected with a local azimuthal equidistant projection (WGS84) centred on the network.",
+        "Clusters (Delaunay triangles by default) with poor shape are rejected; a weighted least-squares plane is "
+        "fitted per cluster and time to the good values, giving the centre value and the horizontal gradient with its covariance.",
+        "Tendency: centred difference of the centre value over the window. Advection: -(u dT/dx + v dT/dy) with "
+        "the cluster-mean wind, averaged over the same window. Residual (in situ) = tendency - advection.",
+        "Uncertainty: first-order propagation of sensor noise (gradient covariance, wind error, tendency error). "
+        "Sensor offsets that are constant in time are not in the error bars unless uncertainty.calibration is set.",
+        f"Regime: a term counts when it exceeds {run.settings.significance:g} standard errors"
+        f"{f' and {run.settings.min_rate:g} {run.unit}/h' if run.settings.min_rate else ''}; the advective share "
+        f"|A|/(|A|+|R|) >= {run.settings.dominance:g} is advective, <= {1 - run.settings.dominance:.2f} in situ, between: mixed.",
+    ]
+    if run.quantity == "potential_temperature":
+        method.append("Air temperature was converted to potential temperature (pressure observed or from the standard "
+                      "atmosphere at the station elevation) so that height differences do not pose as horizontal gradients.")
+    file_list = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
+    title = f"stationflow budget: {run.variable.replace('_', ' ')}"
+    return write_report(out / "report.html", title=title, summary=summary, periods=lines, quality=quality,
+                        cluster_table=ct, figures=figs, method=method, files=sorted(set(file_list) | {"report.html"}))

@@ -1,0 +1,194 @@
+"""PNG figures: QC overview, network map, budget over time.
+
+matplotlib is imported inside the functions (Agg backend), so importing
+stationflow stays fast.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .files import write_with
+
+REGIME_COLOURS = {
+    "advective": "#2f6db5",
+    "in_situ": "#d4622a",
+    "mixed": "#8b68b5",
+    "steady": "#b9b9b9",
+    "undetermined": "#efefef",
+}
+STATUS_COLOURS = {"ok": "#3a8f5c", "rejected": "#c9503c"}
+FLAG_COLOURS = ["#d8e8d0", "#f2b33d", "#c62f2f", "#ffffff"]  # good, suspect, bad, missing
+
+
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    return plt
+
+
+def _save(fig, path: str | Path) -> Path:
+    plt = _plt()
+
+    def writer(tmp: Path) -> None:
+        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
+
+    try:
+        return write_with(path, writer)
+    finally:
+        plt.close(fig)
+
+
+def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: str | Path, *, max_bins: int = 400) -> Path:
+    """Stations by time, coloured by the worst flag of any variable in each time bin."""
+    plt = _plt()
+    from matplotlib.colors import ListedColormap
+    from matplotlib.patches import Patch
+
+    worst = np.full(len(observations), 3, np.int8)
+    present_any = np.zeros(len(observations), bool)
+    for f in flags.values():
+        present = f != 3
+        present_any |= present
+        worst = np.where(present & ((worst == 3) | (f > worst)), f, worst)
+    stations = sorted(observations["station_id"].unique())
+    t = pd.DatetimeIndex(observations["time"])
+    t0, t1 = t.min(), t.max()
+    nb = int(min(max_bins, max(1, observations.groupby("station_id").size().max())))
+    span = max((t1 - t0).total_seconds(), 1.0)
+    b = np.minimum(((t - t0).total_seconds() / span * nb).astype(int), nb - 1)
+    s = pd.Index(stations).get_indexer(observations["station_id"])
+    img = np.full((len(stations), nb), -1, np.int8)
+    # worst flag per cell, missing only where nothing was present
+    order = np.argsort(np.where(worst == 3, -1, worst), kind="stable")
+    img[s[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
+    img = np.where(img < 0, 3, img)
+    fig, ax = plt.subplots(figsize=(10, max(2.5, 0.22 * len(stations) + 1.2)))
+    ax.imshow(img, aspect="auto", interpolation="nearest", cmap=ListedColormap(FLAG_COLOURS), vmin=0, vmax=3,
+              extent=(0, nb, len(stations) - 0.5, -0.5))
+    ax.set_yticks(range(len(stations)))
+    ax.set_yticklabels(stations, fontsize=7)
+    ticks = np.linspace(0, nb, 6)
+    ax.set_xticks(ticks)
+    ax.set_xticklabels([(t0 + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in ticks], fontsize=7)
+    ax.set_xlabel("time (UTC)")
+    ax.set_title("Quality control: worst flag per station and time")
+    ax.legend(handles=[Patch(color=c, label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
+              loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
+    return _save(fig, path)
+
+
+def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
+                title: str = "Network and clusters") -> Path:
+    """Stations and clusters on the local grid [km].
+
+    ``colour_by`` maps cluster id -> regime (budget map); without it clusters
+    are coloured by status (usable or rejected).  ``arrows`` may hold
+    per-cluster ``u``, ``v`` [m s-1] and ``gx``, ``gy`` (gradient, any unit)
+    drawn at the cluster centroids.
+    """
+    plt = _plt()
+    from matplotlib.patches import Patch, Polygon
+
+    st = network.stations
+    x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
+    fig, ax = plt.subplots(figsize=(7.5, 6.5))
+    for i, row in network.clusters.iterrows():
+        m = network.members[i]
+        pts = np.column_stack([x[m], y[m]])
+        if len(m) > 3:
+            c = pts.mean(axis=0)
+            pts = pts[np.argsort(np.arctan2(pts[:, 1] - c[1], pts[:, 0] - c[0]))]
+        if colour_by is not None:
+            reg = colour_by.get(row["cluster"])
+            face = REGIME_COLOURS.get(reg, "#ffffff") if row["status"] == "ok" else "#ffffff"
+            alpha = 0.75 if row["status"] == "ok" else 0.3
+        else:
+            face = STATUS_COLOURS[row["status"]]
+            alpha = 0.35 if row["status"] == "ok" else 0.2
+        ax.add_patch(Polygon(pts, closed=True, facecolor=face, edgecolor="#555555", alpha=alpha, lw=0.8,
+                             ls="-" if row["status"] == "ok" else ":"))
+        if row["status"] == "ok":
+            ax.text(row["centroid_x"] / 1000, row["centroid_y"] / 1000, row["cluster"], fontsize=6.5, ha="center",
+                    va="center", color="#222222")
+    surface = (st["role"] == "surface").to_numpy()
+    ax.scatter(x[surface], y[surface], s=18, color="#111111", zorder=3)
+    ax.scatter(x[~surface], y[~surface], s=50, facecolor="none", edgecolor="#111111", zorder=3)
+    for xi, yi, sid in zip(x[surface], y[surface], st["station_id"][surface]):
+        ax.annotate(str(sid), (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
+    if arrows:
+        cx = network.clusters.set_index("cluster")
+        ids = [c for c in arrows.get("cluster", []) if c in cx.index]
+        if ids:
+            px = cx.loc[ids, "centroid_x"].to_numpy() / 1000
+            py = cx.loc[ids, "centroid_y"].to_numpy() / 1000
+            ax.quiver(px, py, arrows["u"], arrows["v"], color="#1b3a6b", scale_units="inches", scale=8, width=0.004,
+                      label="wind (m/s)")
+            g = np.hypot(arrows["gx"], arrows["gy"])
+            gmax = np.nanmax(g) if np.isfinite(g).any() and np.nanmax(g) > 0 else 1.0
+            ax.quiver(px, py, arrows["gx"] / gmax, arrows["gy"] / gmax, color="#b02a1e", scale_units="inches",
+                      scale=3, width=0.003, label="gradient (toward higher values)")
+            ax.legend(loc="lower left", fontsize=7, frameon=False)
+    ax.set_aspect("equal")
+    ax.autoscale_view()
+    ax.set_xlabel("x (km, grid east)")
+    ax.set_ylabel("y (km, grid north)")
+    ax.set_title(title)
+    if colour_by is not None:
+        handles = [Patch(color=c, label=k.replace("_", " ")) for k, c in REGIME_COLOURS.items()]
+    else:
+        handles = [Patch(color=c, alpha=0.5, label=k) for k, c in STATUS_COLOURS.items()]
+    ax.legend(handles=handles + ([] if not arrows else ax.get_legend_handles_labels()[0]),
+              loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
+    return _save(fig, path)
+
+
+def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clusters: list[str] | None = None,
+                      max_panels: int = 8, tz: str | None = None) -> Path:
+    """Tendency, advection and residual with 95 % bands per cluster, regimes shaded."""
+    plt = _plt()
+    from matplotlib.patches import Patch
+
+    if clusters is None:
+        det = table[table["regime"] != "undetermined"].groupby("cluster").size().sort_values(ascending=False)
+        clusters = list(det.index[:max_panels]) or list(table["cluster"].unique()[:max_panels])
+    n = len(clusters)
+    fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
+    for ax, c in zip(axes[:, 0], clusters):
+        d = table[table["cluster"] == c].sort_values("time")
+        t = pd.DatetimeIndex(d["time"])
+        t = t.tz_convert(tz) if tz else t.tz_convert("UTC")
+        tt = t.tz_localize(None)
+        for name, colour in (("tendency", "#222222"), ("advection", REGIME_COLOURS["advective"]),
+                             ("residual", REGIME_COLOURS["in_situ"])):
+            val = d[name].to_numpy(float)
+            se = d[f"{name}_se"].to_numpy(float)
+            ax.plot(tt, val, color=colour, lw=1.3, label=name if name != "residual" else "residual (in situ)")
+            ax.fill_between(tt, val - 1.96 * se, val + 1.96 * se, color=colour, alpha=0.15, lw=0)
+        reg = d["regime"].to_numpy()
+        if len(tt) > 1:
+            step = (tt[1:] - tt[:-1]).median()
+            for r in ("advective", "in_situ", "mixed"):
+                on = reg == r
+                for k in np.flatnonzero(on):
+                    ax.axvspan(tt[k] - step / 2, tt[k] + step / 2, color=REGIME_COLOURS[r], alpha=0.12, lw=0)
+        ax.axhline(0, color="#888888", lw=0.6)
+        ax.set_ylabel(f"{c}\n{unit}/h", fontsize=8)
+        ax.tick_params(labelsize=7)
+        stations = d["stations"].iloc[0] if len(d) else ""
+        ax.set_title(f"cluster {c}  ({stations})", fontsize=8, loc="left")
+    axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
+    handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
+    axes[-1, 0].legend(handles=handles, loc="lower right", fontsize=7, ncol=3, frameon=False, title="regime (shading)",
+                       title_fontsize=7)
+    axes[-1, 0].set_xlabel(f"time ({tz or 'UTC'})")
+    fig.suptitle("Budget per cluster: tendency = advection + residual (bands: 95 %)", fontsize=10)
+    fig.autofmt_xdate()
+    fig.tight_layout()
+    return _save(fig, path)
