@@ -33,6 +33,15 @@ def parse_duration(text: str) -> pd.Timedelta:
     return pd.Timedelta(seconds=seconds)
 
 
+def format_duration(td: pd.Timedelta) -> str:
+    """Short form of a duration: '5min', '1h', '90s', '7D'."""
+    sec = int(round(pd.Timedelta(td).total_seconds()))
+    for unit, n in (("D", 86400), ("h", 3600), ("min", 60)):
+        if sec % n == 0 and sec >= n:
+            return f"{sec // n}{unit}"
+    return f"{sec}s"
+
+
 def infer_interval(observations: pd.DataFrame) -> pd.Timedelta:
     """The typical reporting interval: median over stations of the median step."""
     obs = observations[["station_id", "time"]].sort_values(["station_id", "time"])

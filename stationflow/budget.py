@@ -135,6 +135,34 @@ def window_sum_sq_weights(var: np.ndarray, h: int, *, min_weight: float = 2.0 / 
         return np.where(wsum >= min_weight * total, acc / wsum ** 2, np.nan)
 
 
+def fill_short_gaps(a: np.ndarray, max_gap: int) -> np.ndarray:
+    """Linearly interpolate along axis 0 across runs of at most ``max_gap`` missing steps.
+
+    Leading and trailing gaps and longer gaps stay NaN.  Vectorised over
+    the other axes.
+    """
+    if max_gap < 1:
+        return a
+    n = a.shape[0]
+    ok = np.isfinite(a)
+    idx = np.arange(n).reshape((n,) + (1,) * (a.ndim - 1))
+    prev = np.maximum.accumulate(np.where(ok, idx, -1), axis=0)
+    nxt = np.flip(np.minimum.accumulate(np.flip(np.where(ok, idx, n), axis=0), axis=0), axis=0)
+    gap = (nxt - prev - 1)
+    fill = ~ok & (prev >= 0) & (nxt < n) & (gap <= max_gap)
+    if not fill.any():
+        return a
+    p = np.clip(prev, 0, n - 1)
+    q = np.clip(nxt, 0, n - 1)
+    ap = np.take_along_axis(a, p, axis=0)
+    aq = np.take_along_axis(a, q, axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = (idx - prev) / np.maximum(nxt - prev, 1)
+    out = a.copy()
+    out[fill] = (ap + w * (aq - ap))[fill]
+    return out
+
+
 def shift(a: np.ndarray, k: int) -> np.ndarray:
     """``out[t] = a[t + k]`` along axis 0, NaN outside."""
     out = np.full_like(a, np.nan)
@@ -234,7 +262,12 @@ def compute_budget(
     var_adv = (um * um * vx + vm * vm * vy + 2 * um * vm * cxy + gx * gx * se2_u + gy * gy * se2_v) * hour ** 2
     h = max(1, int(s.half_window))
     span = 2 * h * s.interval_s
-    a_plus, a_minus = shift(fit.value, h), shift(fit.value, -h)
+    # bridge short gaps (a station missing for a step or two) so one gap does not void a whole window
+    gap = max(1, h // 2)
+    value = fill_short_gaps(fit.value, gap)
+    va = fill_short_gaps(va, gap)
+    filled = ~np.isfinite(fit.value) & np.isfinite(value)
+    a_plus, a_minus = shift(value, h), shift(value, -h)
     tendency = (a_plus - a_minus) / span * hour
     tendency_var = (shift(va, h) + shift(va, -h)) / span ** 2 * hour ** 2
     adv_mean = window_mean(adv, h)
@@ -246,7 +279,7 @@ def compute_budget(
     residual = tendency - adv_mean
     res_var = tendency_var + adv_var
     out = {
-        "value": fit.value, "value_se": np.sqrt(va),
+        "value": value, "value_se": np.sqrt(va),
         "tendency": tendency, "tendency_se": np.sqrt(tendency_var),
         "advection": adv_mean, "advection_se": np.sqrt(adv_var),
         "residual": residual, "residual_se": np.sqrt(res_var),
@@ -257,6 +290,7 @@ def compute_budget(
         "n_used": fit.n_used, "n_wind": n_w.astype(np.int32), "dof": fit.dof,
         "rms": fit.rms if fit.rms is not None else np.full_like(gx, np.nan),
         "cond": fit.cond,
+        "gap_filled": filled,
     }
     if fit.grad_z is not None:
         out["vertical_gradient"] = fit.grad_z * 100.0

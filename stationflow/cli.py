@@ -301,10 +301,13 @@ def budget(
 def _budget_summary(run, out: Path, notes: list[str]) -> str:
     from .budget import describe_period
 
+    from .align import format_duration
+
     t = run.table
     counts = t["regime"].value_counts()
-    lines = [f"{run.variable} ({run.quantity.replace('_', ' ')}) over {len(run.network.usable)} clusters, "
-             f"{t['time'].nunique()} times of {run.interval} (window {run.window})",
+    fitted = f" (fitted as {run.quantity})" if run.quantity != run.variable else ""
+    lines = [f"{run.variable}{fitted} over {len(run.network.usable)} clusters, "
+             f"{t['time'].nunique()} times of {format_duration(run.interval)} (window {format_duration(run.window)})",
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")

@@ -290,6 +290,7 @@ LONG_NAMES = {
     "gradient_bearing": "bearing toward higher values (true north)",
     "inversion": "mast temperature difference, upper minus surface sensor (network mean)",
     "regime": "advective, in_situ, mixed, steady or undetermined",
+    "gap_filled": "value interpolated across a short gap (no fit at this time)",
 }
 
 

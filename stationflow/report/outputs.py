@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
+from ..align import format_duration
 from ..budget import describe_period
 from ..geometry import cluster_table
 from . import files
@@ -120,7 +121,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         written += [ts, mp]
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit,
-        "interval": str(run.interval), "window": str(run.window),
+        "interval": format_duration(run.interval), "window": format_duration(run.window),
         "sensor_uncertainty": run.settings.sigma, "wind_uncertainty": run.settings.wind_sigma,
         "projection": run.network.crs,
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
@@ -158,7 +159,7 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
     data = run.check.data
     obs = data.observations
     t0, t1 = obs["time"].min(), obs["time"].max()
-    quantity = run.quantity.replace("_", " ")
+    quantity = run.quantity
     summary = [
         ("Question", f"How much of the observed change of {run.variable.replace('_', ' ')} was carried in by the wind "
                      "(advection) and how much was made in place (in-situ residual)?"),
@@ -168,7 +169,7 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
                      "clusters usable"),
         ("Period", f"{pd.Timestamp(t0):%Y-%m-%d %H:%M} to {pd.Timestamp(t1):%Y-%m-%d %H:%M} UTC"),
         ("Quantity fitted", f"{quantity} [{run.unit}]"),
-        ("Analysis step / window", f"{run.interval} / {run.window} (centred)"),
+        ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
         ("Sensor uncertainty", f"{run.settings.sigma:g} {run.unit} per reading; wind components "
                                f"{run.settings.wind_sigma:g} m/s"),
     ]
