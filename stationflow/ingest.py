@@ -146,7 +146,10 @@ def read_text_table(
         header_str = header_text.decode("utf-8")
     except UnicodeDecodeError:
         raise IngestError(f"{name}: line {h + 1} (header) is not valid UTF-8 text; set [{section}] encoding") from None
-    header = [c.strip() for c in next(csv.reader([header_str], delimiter=delimiter))]
+    try:
+        header = [c.strip() for c in next(csv.reader([header_str.rstrip("\r")], delimiter=delimiter))]
+    except (csv.Error, StopIteration):
+        raise IngestError(f"{name}: line {h + 1} (header) cannot be read as delimited text") from None
     if len(header) == 1:
         for other in (";", "\t", ",", "|"):
             if other != delimiter and other in header_str:
@@ -184,6 +187,11 @@ def read_text_table(
         is_delim[pos[inside]] = False
     delim_cum = np.concatenate([[0], np.cumsum(is_delim)])
     n_fields = delim_cum[ends_c] - delim_cum[starts] + 1
+    cr_cum = np.concatenate([[0], np.cumsum(arr == 13)])
+    stray_cr = is_row & ((cr_cum[ends_c] - cr_cum[starts]) > 0)
+    for i in np.flatnonzero(stray_cr):
+        rejected.append((name, int(i + 1), "a carriage-return character inside the line (mixed line endings?)"))
+    is_row &= ~stray_cr
     wrong = is_row & (n_fields != len(header))
     for i in np.flatnonzero(wrong):
         rejected.append((name, int(i + 1), f"expected {len(header)} fields, found {int(n_fields[i])} (check [{section}] delimiter)"))
@@ -225,9 +233,15 @@ def _parse_rows(data, arr, starts, ends, rows, header, delimiter) -> pd.DataFram
 
 
 def _parse_rows_python(data, starts, ends, rows, header, delimiter) -> pd.DataFrame:
-    text_lines = [data[starts[i]:ends[i]].decode("utf-8").rstrip("\r") for i in rows]
-    parsed = list(csv.reader(text_lines, delimiter=delimiter))
-    parsed = [(p + [""] * len(header))[: len(header)] for p in parsed]
+    """Slow path, one line at a time, used only when quoting defeats the fast parser."""
+    parsed = []
+    for i in rows:
+        line = data[starts[i]:ends[i]].decode("utf-8").rstrip("\r")
+        try:
+            cells = next(csv.reader([line], delimiter=delimiter))
+        except (csv.Error, StopIteration):
+            cells = line.split(delimiter)
+        parsed.append((cells + [""] * len(header))[: len(header)])
     return pd.DataFrame(parsed, columns=header, dtype="string")
 
 
@@ -336,7 +350,14 @@ def parse_times(
                 aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
     if getattr(naive.dt, "tz", None) is not None:
         naive = naive.dt.tz_localize(None)
-    naive = naive.astype("datetime64[ns]")
+    out_of_range = (naive.notna() & ((naive.dt.year < 1900) | (naive.dt.year > 2200))).to_numpy(bool)
+    if aware_mask.any():
+        aw = aware.notna() & ((aware.dt.year < 1900) | (aware.dt.year > 2200))
+        out_of_range = out_of_range | aw.to_numpy(bool)
+        aware = aware.where(~aw)
+    for i in np.flatnonzero(out_of_range):
+        reasons[i] = "time is outside the years 1900-2200"
+    naive = naive.where(~pd.Series(out_of_range, index=naive.index)).astype("datetime64[ns]")
     tz = _timezone(timezone)
     out = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
     nav = naive.notna().to_numpy() & ~aware_mask
@@ -459,7 +480,7 @@ def _validate_stations(out: pd.DataFrame, path: str, lines: np.ndarray) -> pd.Da
         if bad.any():
             i = int(np.flatnonzero(bad)[0])
             raise IngestError(
-                f"{path}: line {lines[i]}: {name} {x[i]!r} of station {out['station_id'].iloc[i]!r} "
+                f"{path}: line {lines[i]}: {name} {x[i]:g} of station {out['station_id'].iloc[i]!r} "
                 f"is outside [{lo}, {hi}] degrees (give decimal degrees, WGS84)"
             )
     out["longitude"] = ((out["longitude"] + 180.0) % 360.0) - 180.0
@@ -676,8 +697,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     for i in np.flatnonzero(empty_sid):
         reasons[i] = reasons[i] or "station_id is empty"
     missing = {str(m) for m in oc["missing_values"]}
-    out = pd.DataFrame({"station_id": station.astype(str).to_numpy(), "time": times.to_numpy()})
-    out["time"] = pd.DatetimeIndex(out["time"]).tz_convert("UTC") if len(out) else out["time"]
+    out = pd.DataFrame({"station_id": station.astype(str).to_numpy(),
+                        "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")})
     calm_codes = np.zeros(n, bool)
     for name in var_cols:
         col = frame[name]
