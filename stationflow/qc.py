@@ -181,7 +181,7 @@ def solar_elevation(times: pd.DatetimeIndex | np.ndarray, latitude: float, longi
     Accurate to a fraction of a degree: enough to tell day from night.
     """
     t = pd.DatetimeIndex(times)
-    doy = t.dayofyear.to_numpy()
+    doy = t.day_of_year.to_numpy()
     hours = t.hour.to_numpy() + t.minute.to_numpy() / 60.0 + t.second.to_numpy() / 3600.0
     g = 2 * np.pi / 365.0 * (doy - 1 + (hours - 12) / 24)
     decl = (0.006918 - 0.399912 * np.cos(g) + 0.070257 * np.sin(g) - 0.006758 * np.cos(2 * g)
@@ -293,20 +293,27 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
                            neighbours: int = 6, max_distance_m: float = 0.0, suspect_z: float = 3.0,
                            bad_z: float = 6.0, floor: float = 0.0, relaxed: np.ndarray | None = None,
                            relax: float = 2.0, sigma: float = 1.0,
-                           predictors: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                           predictors: np.ndarray | None = None, passes: int = 2) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spatial (buddy) test on a (n_times, n_stations) grid.
 
     Each station is predicted from its ``neighbours`` nearest stations by a
-    leave-one-out plane fit (with elevation as a regressor where the
-    neighbours span enough height), evaluated at the station.  Its residual
-    is compared with a robust spread of all stations' residuals at that time
-    (1.4826 MAD): beyond ``suspect_z`` it fails, beyond ``bad_z`` it is bad,
+    leave-one-out plane fit evaluated at the station, after adjusting all
+    values to the station's height with the vertical gradient fitted over
+    the whole network at that time (elevation-aware, and stable where a
+    local fit with elevation would not be).  Its residual
+    is studentised by the prediction's leverage (``r / sqrt(1 + h)``, h the
+    prediction variance in units of one reading's, large where the station
+    lies outside its neighbours) and compared with a robust spread of all
+    stations' residuals at that time (1.4826 MAD): beyond ``suspect_z`` it
+    fails, beyond ``bad_z`` it is bad,
     never below ``floor``.  Where ``relaxed`` (per time) is True, values
     *below* their prediction get thresholds multiplied by ``relax`` and are
     never made bad: a cold pool on a calm clear night is real.
     ``predictors`` (same shape) are the values the predictions are made
     from; default ``values`` (pass values already flagged as NaN here so a
-    faulty station does not spoil its neighbours' predictions).
+    faulty station does not spoil its neighbours' predictions).  With
+    ``passes = 2`` (default) the test is run again with the first pass's
+    failures removed from the predictors.
 
     Returns ``(passed, bad, residual)`` arrays of shape (n_times, n_stations).
     """
@@ -315,6 +322,12 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     from .gradient import fit_planes
 
     vals = np.asarray(values, float)
+    if passes > 1:
+        first, _, _ = agrees_with_neighbours(vals, x, y, z, neighbours=neighbours, max_distance_m=max_distance_m,
+                                             suspect_z=suspect_z, bad_z=bad_z, floor=floor, relaxed=relaxed,
+                                             relax=relax, sigma=sigma, predictors=predictors, passes=1)
+        base = vals if predictors is None else np.asarray(predictors, float)
+        predictors = np.where(first, base, np.nan)
     n_t, n_s = vals.shape
     k = min(neighbours, n_s - 1)
     passed = np.ones(vals.shape, bool)
@@ -328,27 +341,27 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     members = [nb[i] for i in range(n_s)]
     centres = np.column_stack([x, y])
     zz = np.asarray(z, float)
-    spread = np.nanmax(zz[nb], axis=1) - np.nanmin(zz[nb], axis=1) if np.isfinite(zz).any() else np.zeros(n_s)
-    with_z = (spread > 30.0) & (k >= 5) & np.isfinite(zz[nb]).all(axis=1) & np.isfinite(zz)
-    pred = np.full(vals.shape, np.nan)
-    for use_z in (False, True):
-        sel = np.flatnonzero(with_z == use_z)
-        if sel.size == 0:
-            continue
-        fit = fit_planes(vals if predictors is None else np.asarray(predictors, float), x, y,
-                         [members[i] for i in sel], z=zz if use_z else None, sigma=sigma,
-                         centres=centres[sel], min_stations=4 if use_z else 3, residuals=False)
-        p = fit.value
-        if use_z:
-            p = p + fit.grad_z * (zz[sel] - np.array([zz[members[i]].mean() for i in sel]))[None, :]
-        pred[:, sel] = p
+    src = vals if predictors is None else np.asarray(predictors, float)
+    # one vertical gradient per time from the whole network (stable), then a plain plane among
+    # the neighbours of the lapse-adjusted values: pred_s = plane(v - g z)(s) + g z_s
+    gamma = np.zeros(n_t)
+    if np.isfinite(zz).all() and np.ptp(zz) > 30.0 and n_s >= 6:
+        net = fit_planes(src, x, y, [np.arange(n_s)], z=zz, sigma=sigma, min_stations=5, residuals=False)
+        gamma = np.nan_to_num(net.grad_z[:, 0])
+    z0 = np.where(np.isfinite(zz), zz, 0.0)
+    adjusted = src - gamma[:, None] * z0[None, :]
+    fit = fit_planes(adjusted, x, y, members, sigma=sigma, centres=centres, residuals=False)
+    pred = fit.value + gamma[:, None] * z0[None, :]
+    leverage = fit.var_value / sigma ** 2  # prediction variance in units of one reading's
     if max_distance_m > 0:
         far = dist[:, 1:].max(axis=1) > max_distance_m
         pred[:, far] = np.nan
     r = vals - pred
-    med = np.nanmedian(r, axis=1, keepdims=True) if n_t else r
-    mad = 1.4826 * np.nanmedian(np.abs(r - med), axis=1, keepdims=True)
-    dev = r - med
+    # studentise: an extrapolated prediction (station outside its neighbours) is less certain
+    rs = r / np.sqrt(1.0 + leverage)
+    med = np.nanmedian(rs, axis=1, keepdims=True) if n_t else rs
+    mad = 1.4826 * np.nanmedian(np.abs(rs - med), axis=1, keepdims=True)
+    dev = rs - med
     # relaxed (night, light wind) only for values colder/lower than predicted: cold pools are real
     cold_relax = np.zeros(vals.shape, bool) if relaxed is None else (np.asarray(relaxed)[:, None] & (dev < 0))
     scale = np.where(cold_relax, relax, 1.0)
@@ -515,10 +528,7 @@ def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, 
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            # two passes: the second predicts from neighbours cleaned of first-pass failures
             passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, **opts)
-            cleaned = np.where(passed, data, np.nan)
-            passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, predictors=cleaned, **opts)
         fail = np.zeros(xv.size, bool)
         badm = np.zeros(xv.size, bool)
         fail[inside] = ~passed.reshape(-1)[flat[inside]]
