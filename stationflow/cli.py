@@ -66,8 +66,6 @@ def _progress(quiet: bool):
 
     def report(msg: str) -> None:
         prog.update(task, description=msg)
-        if not console.is_terminal:
-            console.print(f"[stationflow] {msg}", highlight=False, markup=False)
 
     return prog, report
 
@@ -108,16 +106,20 @@ def _check_paths(**paths: Optional[Path]) -> None:
             raise IngestError(f"{p}: file not found (given as --{name})")
 
 
+def _version(value: bool) -> None:
+    if value:
+        typer.echo(f"stationflow {__version__}")
+        raise typer.Exit(0)
+
+
 @app.callback()
 def main_options(
     verbose: Annotated[bool, typer.Option("--verbose", "-v", help="Show details, and tracebacks for unexpected faults.")] = False,
-    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.")] = False,
+    version: Annotated[bool, typer.Option("--version", help="Print the version and exit.", callback=_version,
+                                          is_eager=True)] = False,
 ) -> None:
     """Global options."""
     STATE["verbose"] = verbose
-    if version:
-        typer.echo(f"stationflow {__version__}")
-        raise typer.Exit(0)
     import logging
 
     logging.basicConfig(level=logging.INFO if verbose else logging.WARNING, format="%(levelname)s %(name)s: %(message)s",
@@ -147,7 +149,10 @@ def check(
 
     Example:
 
-        stationflow check --stations sample_data/frost/stations.csv --obs sample_data/frost/observations.csv --config sample_data/frost/config.toml --out check_out
+    \b
+        stationflow check --stations sample_data/frost/stations.csv \\
+            --obs sample_data/frost/observations.csv \\
+            --config sample_data/frost/config.toml --out check_out
     """
     from .pipeline import run_check
     from .report.outputs import write_check
@@ -220,6 +225,7 @@ def network(
 
     Example:
 
+    \b
         stationflow network --stations sample_data/frost/stations.csv --out network_out
     """
     from .ingest import read_observations, read_stations
@@ -272,7 +278,10 @@ def budget(
 
     Example:
 
-        stationflow budget --stations sample_data/frost/stations.csv --obs sample_data/frost/observations.csv --config sample_data/frost/config.toml --out frost_out
+    \b
+        stationflow budget --stations sample_data/frost/stations.csv \\
+            --obs sample_data/frost/observations.csv \\
+            --config sample_data/frost/config.toml --out frost_out
     """
     from .pipeline import run_budget
     from .report.outputs import write_budget
@@ -332,6 +341,7 @@ def demo(
 
     Example:
 
+    \b
         stationflow demo --scenario frost --out demo_output/frost
     """
     from . import synthetic

@@ -166,7 +166,7 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
         raise GeometryError(f"only {len(st_var)} station(s) have good {var} values; a plane needs at least 3")
     progress("building the network")
     net = geometry.build_network(st_var, config)
-    if vertical == "regression" and var == "air_temperature" and net.usable["n_stations"].min(initial=99) < 4:
+    if vertical == "regression" and var == "air_temperature" and len(net.usable) and net.usable["n_stations"].min() < 4:
         raise ConfigError("budget.vertical = 'regression' needs clusters of at least 4 stations; "
                           "set network.clusters = 'nearest' (with network.k >= 5) or use 'potential_temperature'")
     if net.usable.empty:
@@ -304,6 +304,7 @@ def _units(unit: str) -> dict[str, str]:
         "u": "m s-1", "v": "m s-1", "u_se": "m s-1", "v_se": "m s-1", "n_used": "1", "n_wind": "1", "dof": "1",
         "rms": unit, "cond": "1", "vertical_gradient": f"{unit} (100 m)-1", "vertical_gradient_se": f"{unit} (100 m)-1",
         "wind_speed": "m s-1", "wind_from_direction": "degree", "gradient_bearing": "degree", "inversion": "K",
+        "regime": "1", "gap_filled": "1",
     }
 
 

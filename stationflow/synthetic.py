@@ -312,6 +312,38 @@ class Scenario:
                 "value": f.value(X, Y, Z, T)}
 
 
+    def cluster_truth(self, table: pd.DataFrame, *, half_window: int, quantity: Field | None = None) -> pd.DataFrame:
+        """Known truth for a budget table, on the same terms as the estimator.
+
+        For each cluster and time: the tendency as the centred difference of
+        the member-station mean value over the window, the advection at the
+        member centroid averaged over the window, and their difference.
+        Returns ``time, cluster, tendency_true, advection_true, residual_true``.
+        """
+        st = self.stations.set_index("station_id")
+        times = pd.DatetimeIndex(sorted(pd.DatetimeIndex(table["time"]).unique()))
+        out = []
+        h = int(half_window)
+        for cluster, grp in table.groupby("cluster", sort=False):
+            ids = grp["stations"].iloc[0].split("+")
+            xs, ys, zs = (st.loc[ids, c].to_numpy(float) for c in ("x", "y", "elevation"))
+            members = self.truth_at(xs, ys, zs, times, quantity=quantity)
+            centre = self.truth_at(np.array([xs.mean()]), np.array([ys.mean()]), np.array([zs.mean()]), times,
+                                   quantity=quantity)
+            value = members["value"].mean(axis=1)
+            dt = (times[1] - times[0]).total_seconds() if len(times) > 1 else 1.0
+            ten = np.full(len(times), np.nan)
+            ten[h:-h] = (value[2 * h:] - value[:-2 * h]) / (2 * h * dt) * 3600
+            w = np.ones(2 * h + 1)
+            w[0] = w[-1] = 0.5
+            adv = np.convolve(centre["advection"][:, 0], w / w.sum(), mode="same")
+            adv[:h] = np.nan
+            adv[len(adv) - h:] = np.nan
+            out.append(pd.DataFrame({"time": times, "cluster": cluster, "tendency_true": ten,
+                                     "advection_true": adv, "residual_true": ten - adv}))
+        return pd.concat(out, ignore_index=True)
+
+
 # ---------------------------------------------------------------------------
 # faults
 # ---------------------------------------------------------------------------

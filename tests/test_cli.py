@@ -1,0 +1,200 @@
+"""The command line and the output contract: exit codes, messages, files, columns, units."""
+
+import hashlib
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from stationflow import docgen
+from stationflow.budget import REGIMES
+from stationflow.cli import app
+from stationflow.pipeline import TABLE_COLUMNS
+from stationflow.report import files
+
+from .conftest import ROOT
+
+FROST = ROOT / "sample_data" / "frost"
+
+
+def _sha(p: Path) -> str:
+    return hashlib.sha256(p.read_bytes()).hexdigest()
+
+
+@pytest.fixture(scope="module")
+def frost_out(tmp_path_factory):
+    from typer.testing import CliRunner
+
+    out = tmp_path_factory.mktemp("frost")
+    before = {p.name: _sha(p) for p in FROST.iterdir()}
+    res = CliRunner().invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                                   "--config", str(FROST / "config.toml"), "--out", str(out), "--quiet"])
+    assert res.exit_code == 0, res.output
+    assert {p.name: _sha(p) for p in FROST.iterdir()} == before  # inputs never modified
+    return out
+
+
+def test_budget_writes_the_contract_files(frost_out):
+    for name in ("run.json", "rejected_rows.csv", "qc_flags.csv", "budget.parquet", "budget.csv", "budget.nc",
+                 "report.html", "budget_timeseries.png", "budget_map.png", "qc_overview.png"):
+        assert (frost_out / name).stat().st_size > 0, name
+    assert not list(frost_out.glob(".*.part"))  # no temporary files left behind
+
+
+def test_budget_table_columns_units_and_regimes(frost_out):
+    csv = pd.read_csv(frost_out / "budget.csv")
+    assert list(csv.columns[: len(TABLE_COLUMNS)]) == TABLE_COLUMNS
+    assert csv["time"].str.match(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$").all()
+    assert set(csv["regime"]) <= set(REGIMES)
+    assert csv["stations"].str.count(r"\+").eq(2).all()
+    pq = pd.read_parquet(frost_out / "budget.parquet")
+    assert len(pq) == len(csv) and list(pq.columns) == list(csv.columns)
+    np.testing.assert_allclose(pq["advection"].to_numpy(), csv["advection"].to_numpy(), rtol=1e-5, equal_nan=True)
+
+
+def test_netcdf_is_cf_style(frost_out):
+    with xr.open_dataset(frost_out / "budget.nc") as ds:
+        assert set(ds.dims) == {"time", "cluster"}
+        for name, var in ds.data_vars.items():
+            assert "units" in var.attrs and "long_name" in var.attrs, name
+        assert ds["tendency"].attrs["units"] == "K h-1"
+        assert ds["grad_x"].attrs["units"] == "K km-1"
+        assert ds["u"].attrs["units"] == "m s-1"
+        assert ds["value"].attrs["standard_name"] == "air_potential_temperature"
+        assert ds["latitude"].attrs["units"] == "degrees_north"
+        assert set(np.unique(ds["regime"].values)) <= set(REGIMES)
+
+
+def test_run_json_accounting(frost_out):
+    run = json.loads((frost_out / "run.json").read_text())
+    acc = run["accounting"]
+    assert acc["rows_read"] == acc["rows_accepted"] + acc["rows_rejected"] == 2686
+    assert run["config"]["budget"]["window"] == "60min"
+    assert run["versions"]["numpy"] and run["variable"] == "air_temperature"
+    assert run["quantity"] == "potential_temperature"
+
+
+def test_qc_flags_csv_contract(frost_out):
+    f = pd.read_csv(frost_out / "qc_flags.csv")
+    assert list(f.columns) == ["station_id", "time", "variable", "flag", "tests"]
+    assert set(f["flag"]) <= {"suspect", "bad"}
+    assert {"HV04", "HV11"} <= set(f.loc[f["variable"] == "air_temperature", "station_id"])
+
+
+def test_report_is_self_contained_and_cautions(frost_out):
+    html = (frost_out / "report.html").read_text()
+    assert "data:image/png;base64," in html and "<img" in html
+    assert "src=\"http" not in html
+    assert "Decision aid only" in html and "extension service" in html
+    assert "advective cooling" in html and "in-situ cooling" in html
+
+
+def test_report_escapes_station_names(tmp_path, runner):
+    st = tmp_path / "stations.csv"
+    st.write_text("station_id,latitude,longitude,elevation\n<script>alert(1)</script>,45.0,10.0,100\nB,45.0,10.1,100\n"
+                  "C,45.08,10.05,100\nD,45.06,9.95,100\n", encoding="utf-8")
+    rows = ["station_id,time,air_temperature,wind_speed,wind_from_direction"]
+    for k in range(12):
+        t = pd.Timestamp("2026-01-01T00:00Z") + pd.Timedelta(minutes=10 * k)
+        for i, sid in enumerate(["<script>alert(1)</script>", "B", "C", "D"]):
+            rows.append(f"{sid},{t:%Y-%m-%dT%H:%M}Z,{270 + 0.1 * i + 0.05 * k},3,270")
+    obs = tmp_path / "obs.csv"
+    obs.write_text("\n".join(rows) + "\n", encoding="utf-8")
+    res = runner.invoke(app, ["budget", "--stations", str(st), "--obs", str(obs), "--out", str(tmp_path / "o"), "--quiet"])
+    assert res.exit_code == 0, res.stderr
+    html = (tmp_path / "o" / "report.html").read_text()
+    assert "<script>alert(1)</script>" not in html
+    assert "&lt;script&gt;alert(1)&lt;/script&gt;" in html
+
+
+def test_atomic_write_leaves_old_file_on_failure(tmp_path):
+    target = tmp_path / "budget.csv"
+    target.write_text("old\n")
+    with pytest.raises(RuntimeError):
+        with files.atomic_write(target) as tmp:
+            tmp.write_text("half writ")
+            raise RuntimeError("interrupted")
+    assert target.read_text() == "old\n"
+    assert list(tmp_path.iterdir()) == [target]
+
+
+def test_large_table_goes_to_parquet_only(tmp_path, runner, monkeypatch):
+    from stationflow.report import outputs
+
+    monkeypatch.setattr(outputs, "CSV_ROW_LIMIT", 100)
+    args = ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+            "--config", str(FROST / "config.toml")]
+    res = runner.invoke(app, args + ["--out", str(tmp_path / "a")])
+    assert res.exit_code == 0
+    assert not (tmp_path / "a" / "budget.csv").exists() and (tmp_path / "a" / "budget.parquet").exists()
+    assert "budget.csv not written" in res.stdout
+    res = runner.invoke(app, args + ["--out", str(tmp_path / "b"), "--csv", "--quiet"])
+    assert res.exit_code == 0 and (tmp_path / "b" / "budget.csv").exists()
+
+
+def test_unknown_variable_is_exit_2(tmp_path, runner):
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(FROST / "config.toml"), "--out", str(tmp_path), "--variable", "ozone"])
+    assert res.exit_code == 2
+    assert res.stderr.startswith("error: variable 'ozone' is not in the observations; available: air_temperature")
+
+
+def test_regression_needs_bigger_clusters(tmp_path, runner):
+    cfg = tmp_path / "c.toml"
+    cfg.write_text((FROST / "config.toml").read_text().replace('vertical = "potential_temperature"', 'vertical = "regression"'))
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(cfg), "--out", str(tmp_path / "o")])
+    assert res.exit_code == 2 and "needs clusters of at least 4 stations" in res.stderr
+    cfg.write_text(cfg.read_text() + '\n[network]\nclusters = "nearest"\nk = 6\n')
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(cfg), "--out", str(tmp_path / "o2"), "--quiet"])
+    assert res.exit_code == 0, res.stderr
+    t = pd.read_parquet(tmp_path / "o2" / "budget.parquet")
+    assert "vertical_gradient" in t.columns
+    night = t[(t["time"] > "2026-04-15T07:00Z") & (t["time"] < "2026-04-15T12:00Z")]
+    assert night["vertical_gradient"].median() > 0  # an inversion: warmer with height
+
+
+def test_network_command(tmp_path, runner):
+    res = runner.invoke(app, ["network", "--stations", str(FROST / "stations.csv"), "--out", str(tmp_path)])
+    assert res.exit_code == 0, res.stderr
+    c = pd.read_csv(tmp_path / "clusters.csv")
+    assert list(c.columns[:5]) == ["cluster", "stations", "n_stations", "latitude", "longitude"]
+    assert set(c["status"]) == {"ok", "rejected"}
+    assert c.loc[c["status"] == "rejected", "reason"].str.len().gt(0).all()
+    assert (tmp_path / "network_map.png").exists()
+    assert "rejected" in res.stdout
+
+
+def test_check_command_summary(tmp_path, runner):
+    res = runner.invoke(app, ["check", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(FROST / "config.toml"), "--out", str(tmp_path)])
+    assert res.exit_code == 0, res.stderr
+    assert "rows read 2,686, accepted 2,686, rejected 0" in res.stdout
+    assert "HV11 air_temperature: suspect (persistence)" in res.stdout
+    assert "HV04 air_temperature" in res.stdout
+    assert (tmp_path / "qc_overview.png").exists()
+
+
+def test_every_command_has_help_with_an_example_and_docs():
+    assert "Decision aid only" in docgen.help_text("")
+    for c in docgen.COMMANDS[1:]:
+        assert "Example:" in docgen.help_text(c), c
+    budget_help = docgen.help_text("budget")
+    assert "CAUTION: a decision aid only" in budget_help and "extension services" in budget_help
+
+
+def test_cli_reference_is_current():
+    assert (ROOT / "docs" / "cli.md").read_text(encoding="utf-8") == docgen.cli_reference(), \
+        "docs/cli.md is stale: run python -m stationflow.docgen"
+
+
+def test_python_dash_m_works():
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, "-m", "stationflow", "--version"], capture_output=True, text=True, check=True)
+    assert out.stdout.startswith("stationflow ")

@@ -1,0 +1,109 @@
+"""The bundled scenarios: regenerate identically, recover their known truth, label their phases."""
+
+import hashlib
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stationflow import config, pipeline, qc, synthetic
+
+from .conftest import ROOT
+
+
+def _digest(folder: Path) -> dict[str, str]:
+    return {p.relative_to(folder).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file() and p.suffix in (".csv", ".toml")}
+
+
+def test_sample_data_regenerates_byte_for_byte(tmp_path):
+    synthetic.write_sample_data(tmp_path)
+    assert _digest(tmp_path) == _digest(ROOT / "sample_data")
+
+
+def test_sample_data_is_small():
+    total = sum(p.stat().st_size for p in (ROOT / "sample_data").rglob("*") if p.is_file())
+    assert total < 2 * 1024 * 1024
+
+
+@pytest.fixture(scope="module")
+def frost_run():
+    folder = ROOT / "sample_data" / "frost"
+    cfg = config.load(folder / "config.toml")
+    return pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.frost_valley()
+
+
+@pytest.fixture(scope="module")
+def town_run():
+    folder = ROOT / "sample_data" / "town"
+    cfg = config.load(folder / "config.toml")
+    return pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.smoke_town()
+
+
+def _joined(run, sc, quantity=None):
+    truth = sc.cluster_truth(run.table, half_window=run.settings.half_window, quantity=quantity)
+    d = run.table.merge(truth, on=["time", "cluster"])
+    return d.dropna(subset=["advection", "advection_true", "residual", "residual_true"])
+
+
+def _phase(d, phase):
+    return d[(d["time"] >= phase["start"]) & (d["time"] <= phase["end"])]
+
+
+def test_frost_phases_and_truth(frost_run):
+    run, sc = frost_run
+    d = _joined(run, sc, synthetic.potential_temperature_field(sc.field))
+    front, calm = sc.phases
+    f = _phase(d, front)
+    # the evening front: carried in. Truth about -1.9 K/h of advection; recovered to 0.2 K/h (median)
+    assert (f["regime"] == "advective").mean() > 0.9
+    assert np.median(np.abs(f["advection"] - f["advection_true"])) < 0.2
+    assert np.mean(np.abs(f["advection"] - f["advection_true"]) <= 1.96 * f["advection_se"]) > 0.9
+    c = _phase(d, calm)
+    # the calm night: made in place; the plane model is weakest here (cold pool), so looser tolerances
+    assert (c["regime"] == "in_situ").mean() > 0.7
+    assert np.median(np.abs(c["residual"] - c["residual_true"])) < 0.4
+    assert c["residual"].median() < -0.5
+
+
+def test_frost_faulty_sensors_named_and_cold_pool_left_alone(frost_run):
+    run, sc = frost_run
+    periods = run.check.periods
+    t = periods[periods["variable"] == "air_temperature"]
+    assert set(t.loc[t["values"] >= 10, "station_id"]) == {"HV04", "HV11"}
+    assert "persistence" in t.loc[t["station_id"] == "HV11", "tests"].iloc[0]
+    assert "spatial" in t.loc[t["station_id"] == "HV04", "tests"].iloc[0]
+    st = run.check.data.stations
+    lowest = st.loc[st["elevation"].idxmin(), "station_id"]
+    obs = run.check.data.observations
+    flags = run.check.qc.flags["air_temperature"][(obs["station_id"] == lowest).to_numpy()]
+    assert not (flags == qc.BAD).any()
+
+
+def test_frost_mast_shows_the_inversion(frost_run):
+    run, sc = frost_run
+    inv = pd.Series(run.extras["inversion"], index=pd.DatetimeIndex(run.dataset["time"].values).tz_localize("UTC"))
+    front, calm = sc.phases
+    assert abs(inv[front["start"]:front["end"]].mean()) < 0.3
+    assert inv[calm["start"]:calm["end"]].mean() > 1.5  # 10 m warmer than 2 m: radiative cooling below
+
+
+def test_town_phases_and_truth(town_run):
+    run, sc = town_run
+    d = _joined(run, sc)
+    arrive, leave, evening = sc.phases
+    for phase in (arrive, leave):
+        p = _phase(d, phase)
+        assert (p["regime"] == "advective").mean() > 0.7, phase["name"]
+        rel = np.median(np.abs(p["advection"] - p["advection_true"])) / np.median(np.abs(p["advection_true"]))
+        assert rel < 0.25, (phase["name"], rel)
+    assert _phase(d, arrive)["advection"].median() > 10 and _phase(d, leave)["advection"].median() < -10
+    e = _phase(d, evening)
+    assert (e["regime"] == "in_situ").mean() > 0.6
+    assert e["residual"].median() > 5
+    # the bearing toward higher PM2.5 during the arrival points back upwind (west, about 270 degrees)
+    b = _phase(run.table, arrive)["gradient_bearing"].dropna()
+    ang = np.deg2rad(b)
+    mean_bearing = np.rad2deg(np.arctan2(np.sin(ang).mean(), np.cos(ang).mean())) % 360
+    assert abs(mean_bearing - 270) < 25
