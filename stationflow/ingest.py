@@ -130,9 +130,12 @@ def read_text_table(
     ends_c = ends - cr
     n_lines = starts.size
     lineno = np.arange(1, n_lines + 1)
-    # blank lines: nothing but spaces/tabs
-    nonspace = np.concatenate([[0], np.cumsum((arr != 32) & (arr != 9) & (arr != 13))])
-    blank = (nonspace[ends_c] - nonspace[starts]) == 0
+    # blank lines: nothing but spaces/tabs (only lines that start with one need a closer look)
+    length = ends_c - starts
+    blank = length == 0
+    first = np.where(length > 0, arr[np.minimum(starts, arr.size - 1)], 0)
+    for i in np.flatnonzero((first == 32) | (first == 9)):
+        blank[i] = not data[starts[i]:ends_c[i]].strip()
     skip = np.zeros(n_lines, bool)
     if skip_lines:
         idx = np.asarray([n - 1 for n in skip_lines if 0 < n <= n_lines], dtype=int)
@@ -175,20 +178,22 @@ def read_text_table(
             except UnicodeDecodeError:
                 is_row[i] = False
                 rejected.append((name, int(i + 1), f"not valid UTF-8 text (set [{section}] encoding)"))
-    # count fields, honouring double quotes
-    d = ord(delimiter)
-    is_delim = arr == d
-    if 34 in arr:
-        quote_cum = np.concatenate([[0], np.cumsum(arr == 34)])
-        pos = np.flatnonzero(is_delim)
-        line_of = np.searchsorted(starts, pos, side="right") - 1
-        inside = (quote_cum[pos] - quote_cum[starts[line_of]]) % 2 == 1
-        is_delim = is_delim.copy()
-        is_delim[pos[inside]] = False
-    delim_cum = np.concatenate([[0], np.cumsum(is_delim)])
-    n_fields = delim_cum[ends_c] - delim_cum[starts] + 1
-    cr_cum = np.concatenate([[0], np.cumsum(arr == 13)])
-    stray_cr = is_row & ((cr_cum[ends_c] - cr_cum[starts]) > 0)
+    # count fields per line from the delimiter positions, honouring double quotes
+    pos = np.flatnonzero(arr == ord(delimiter))
+    line_of = np.searchsorted(starts, pos, side="right") - 1
+    if data.find(b'"') >= 0:
+        qpos = np.flatnonzero(arr == 34)
+        # quotes before each delimiter within its line: odd means the delimiter is inside a quoted field
+        before = np.searchsorted(qpos, pos) - np.searchsorted(qpos, starts[line_of])
+        keep = before % 2 == 0
+        pos, line_of = pos[keep], line_of[keep]
+    n_fields = np.bincount(line_of, minlength=n_lines) + 1
+    crpos = np.flatnonzero(arr == 13)
+    cr_line = np.searchsorted(starts, crpos, side="right") - 1
+    inner_cr = crpos < ends_c[cr_line]
+    stray = np.zeros(n_lines, bool)
+    stray[cr_line[inner_cr]] = True
+    stray_cr = is_row & stray
     for i in np.flatnonzero(stray_cr):
         rejected.append((name, int(i + 1), "a carriage-return character inside the line (mixed line endings?)"))
     is_row &= ~stray_cr
@@ -210,11 +215,14 @@ def _parse_rows(data, arr, starts, ends, rows, header, delimiter) -> pd.DataFram
     if rows.size == 0:
         return pd.DataFrame({c: pd.Series([], dtype="str") for c in header})
     # keep the bytes of the selected lines, each with its newline
-    keep_line = np.zeros(starts.size, bool)
-    keep_line[rows] = True
-    lengths = np.minimum(ends + 1, arr.size) - starts
-    keep = np.repeat(keep_line, lengths)
-    body = arr[: keep.size][keep].tobytes()
+    if rows[-1] - rows[0] + 1 == rows.size:  # one contiguous block of lines: no copy by mask
+        body = data[starts[rows[0]]:min(ends[rows[-1]] + 1, arr.size)]
+    else:
+        keep_line = np.zeros(starts.size, bool)
+        keep_line[rows] = True
+        lengths = np.minimum(ends + 1, arr.size) - starts
+        keep = np.repeat(keep_line, lengths)
+        body = arr[: keep.size][keep].tobytes()
     if not body.endswith(b"\n"):
         body += b"\n"
     try:

@@ -141,9 +141,45 @@ def run_budget(obs: str | Path, stations: str | Path | None, config: Config, *, 
     return budget_from_check(chk, config, variable=variable, progress=progress)
 
 
-def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
-                      progress: Progress = _noop, times: pd.DatetimeIndex | None = None) -> BudgetRun:
-    """The budget stages on an already checked data set."""
+@dataclass
+class BudgetPlan:
+    """Everything the budget of one variable needs besides the observations themselves.
+
+    Computed once from the checked data set and shared by every time
+    partition (in a chunked local run or on Dask workers).  ``frame`` holds
+    the rows the estimator may use, with unusable values already set to NaN:
+    ``station_id``, ``time``, ``q`` (the fitted quantity), ``u``/``v`` (true
+    axes, calm as zero), ``wind_speed`` and ``t_air`` (for the mast inversion).
+    """
+
+    variable: str
+    quantity: str
+    unit: str
+    network: geometry.Network
+    clusters: pd.DataFrame
+    members: list[np.ndarray]
+    ids: list[str]
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    convergence: np.ndarray
+    masts: tuple[np.ndarray, np.ndarray] | None
+    settings: BudgetSettings
+    interval: pd.Timedelta
+    window: pd.Timedelta
+    times: pd.DatetimeIndex
+    frame: pd.DataFrame
+
+    @property
+    def halo(self) -> int:
+        """Analysis steps needed on each side of a partition for identical results."""
+        h = self.settings.half_window
+        return 2 * h + 1
+
+
+def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None,
+                progress: Progress = _noop) -> BudgetPlan:
+    """Choose the variable and quantity, build the network and the settings, mask unusable values."""
     bc = config["budget"]
     var = variable or bc["variable"]
     data = chk.data
@@ -154,10 +190,8 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
     vertical = bc["vertical"]
     usable = chk.qc.usable(use_suspect=config["qc"]["use_suspect"])
     obs = data.observations
-    progress("aligning to the analysis grid")
+    progress("preparing the budget")
     quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
-    frame = obs[["station_id", "time"]].copy()
-    frame["__q__"] = quantity_values
     mask_q = usable.get(var, np.ones(len(obs), bool))
     has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
     st_all = data.stations.reset_index(drop=True)
@@ -173,28 +207,8 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
         raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
                             "and relax [network] min_angle/min_shape/max_side_km")
     interval, window, h = _durations(config, obs)
-    for name in ("wind_speed", "wind_from_direction"):
-        if name in obs:
-            frame[name] = obs[name].to_numpy()
-    use = {"__q__": mask_q}
-    for name in ("wind_speed", "wind_from_direction"):
-        if name in usable:
-            use[name] = usable[name]
     ids = st_all["station_id"].tolist()
-    start = times[0] if times is not None else None
-    end = times[-1] if times is not None else None
-    grid = align.to_grid(frame, ids, ["__q__"], interval=interval, usable=use, start=start, end=end,
-                         calm_speed=config["qc"]["calm_speed"])
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
-    values = grid.values["__q__"]
-    n_t = len(grid.times)
-    if "u" in grid.values:
-        ug, vg = geometry.rotate_to_grid(grid.values["u"], grid.values["v"], conv[None, :])
-        speed = grid.values.get("wind_speed")
-    else:
-        log.warning("no wind observations: advection cannot be estimated")
-        ug = vg = np.full(values.shape, np.nan)
-        speed = None
     index = {s: i for i, s in enumerate(ids)}
     ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
     members = [np.array([index[net.stations["station_id"].iloc[j]] for j in net.members[i]]) for i in ok_rows]
@@ -208,55 +222,139 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
     z = st_all["elevation"].to_numpy(float)
     if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
         raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
-    progress("fitting planes and computing the budget")
-    terms = compute_budget(values, ug, vg, x_all, y_all, members, settings, z=z, wind_speed=speed)
-    extras = {}
-    inv = mast_inversion(obs, st_all, x_all, y_all, usable, interval, grid.times)
-    if inv is not None:
-        terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
-        extras["inversion"] = inv
+    # the rows and values the estimator may use
+    frame = pd.DataFrame({"station_id": obs["station_id"].to_numpy(), "time": obs["time"].to_numpy()})
+    frame["q"] = np.where(mask_q, quantity_values, np.nan)
+    if "wind_speed" in obs and "wind_from_direction" in obs:
+        from .variables import wind_components
+
+        spd = obs["wind_speed"].to_numpy(float)
+        dirn = obs["wind_from_direction"].to_numpy(float)
+        calm = spd < config["qc"]["calm_speed"]
+        u, v = wind_components(np.where(calm, 0.0, spd), np.where(calm, 0.0, dirn))
+        ok_w = usable.get("wind_speed", np.ones(len(obs), bool)) & (usable.get("wind_from_direction", np.ones(len(obs), bool)) | calm)
+        frame["u"] = np.where(ok_w, u, np.nan)
+        frame["v"] = np.where(ok_w, v, np.nan)
+        frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
+    else:
+        log.warning("no wind observations: advection cannot be estimated")
+    masts = _masts(st_all, x_all, y_all)
+    if masts is not None and "air_temperature" in obs:
+        frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
+                                  obs["air_temperature"].to_numpy(float), np.nan)
+    else:
+        masts = None
+    frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
+    t = frame["time"]
+    first = pd.Timestamp(t.min()).ceil(interval)
+    n_t = int(np.ceil((pd.Timestamp(t.max()).value - first.value) / interval.value)) + 1
+    times = pd.date_range(first, periods=max(n_t, 1), freq=interval)
     clusters = net.clusters.iloc[ok_rows].reset_index(drop=True)
     unit = si_unit(var, data.units.get(var))
-    ds = to_dataset(terms, grid.times, clusters, conv_at=lambda la, lo: _convergence(la, lo, net.crs), unit=unit,
-                    variable=var, quantity=quantity)
-    table = to_table(ds)
-    periods = main_periods(table, unit=f"{unit} h-1")
-    del n_t
-    return BudgetRun(chk, net, ds, table, periods, var, quantity, unit, interval, window, settings, extras)
+    return BudgetPlan(var, quantity, unit, net, clusters, members, ids, x_all, y_all, z, conv, masts, settings,
+                      interval, window, times, frame)
 
 
-def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:
-    _, _, g, _ = geometry.project(lat, lon, crs)
-    return g
-
-
-def mast_inversion(obs: pd.DataFrame, stations: pd.DataFrame, x: np.ndarray, y: np.ndarray, usable: dict,
-                   interval: pd.Timedelta, times: pd.DatetimeIndex) -> np.ndarray | None:
-    """Mean temperature difference upper minus surface sensor over all masts [K] per time.
-
-    A positive value is an inversion (warmer air above), a sign of
-    radiative cooling at the surface; ``None`` when there is no mast.
-    """
-    if "air_temperature" not in obs:
-        return None
+def _masts(stations: pd.DataFrame, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
     roles = geometry.assign_roles(stations, x, y)
     upper = np.flatnonzero(roles == "upper")
     if upper.size == 0:
         return None
     surf = np.flatnonzero(roles == "surface")
     d = np.hypot(x[upper, None] - x[None, surf], y[upper, None] - y[None, surf])
-    partner = surf[np.argmin(d, axis=1)]
-    ids = stations["station_id"].tolist()
-    frame = obs[["station_id", "time", "air_temperature"]]
-    grid = align.to_grid(frame, ids, ["air_temperature"], interval=interval, start=times[0], end=times[-1],
-                         usable={"air_temperature": usable.get("air_temperature", np.ones(len(obs), bool))})
-    t = grid.values["air_temperature"]
-    diff = t[:, upper] - t[:, partner]
-    import warnings
+    return upper, surf[np.argmin(d, axis=1)]
 
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(diff, axis=1)
+
+def partition_rows(plan: BudgetPlan, first: int, last: int) -> pd.DataFrame:
+    """Rows of ``plan.frame`` that fall in the analysis bins ``first .. last`` (inclusive)."""
+    t = plan.frame["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    lo = plan.times[first].value - plan.interval.value
+    hi = plan.times[last].value
+    a = np.searchsorted(t, lo, side="right")
+    b = np.searchsorted(t, hi, side="right")
+    return plan.frame.iloc[a:b]
+
+
+def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: int) -> dict[str, np.ndarray]:
+    """Budget terms for the analysis bins ``first .. last`` from the rows in them.
+
+    Pure: the same inputs give the same numbers whether run here, in a
+    chunked run or on a Dask worker.
+    """
+    times = plan.times[first:last + 1]
+    names = [c for c in ("q", "u", "v", "wind_speed", "t_air") if c in rows]
+    grid = align.to_grid(rows, plan.ids, names, interval=plan.interval, start=times[0], end=times[-1])
+    values = grid.values["q"]
+    if "u" in grid.values:
+        ug, vg = geometry.rotate_to_grid(grid.values["u"], grid.values["v"], plan.convergence[None, :])
+        speed = grid.values.get("wind_speed")
+    else:
+        ug = vg = np.full(values.shape, np.nan)
+        speed = None
+    terms = compute_budget(values, ug, vg, plan.x, plan.y, plan.members, plan.settings, z=plan.z, wind_speed=speed)
+    if plan.masts is not None and "t_air" in grid.values:
+        upper, partner = plan.masts
+        t = grid.values["t_air"]
+        import warnings
+
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            inv = np.nanmean(t[:, upper] - t[:, partner], axis=1)
+        terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
+    return terms
+
+
+def partitions(n_times: int, steps: int) -> list[tuple[int, int]]:
+    """(first, last) bin index of consecutive partitions of ``steps`` bins."""
+    steps = max(1, steps)
+    return [(a, min(n_times, a + steps) - 1) for a in range(0, n_times, steps)]
+
+
+def run_partition(plan: BudgetPlan, first: int, last: int, rows: pd.DataFrame | None = None) -> dict[str, np.ndarray]:
+    """Terms for bins ``first .. last``, computed with a halo so edges match an unpartitioned run."""
+    n = len(plan.times)
+    a = max(0, first - plan.halo)
+    b = min(n - 1, last + plan.halo)
+    if rows is None:
+        rows = partition_rows(plan, a, b)
+    terms = compute_partition(plan, rows, a, b)
+    core = slice(first - a, last - a + 1)
+    return {k: v[core] for k, v in terms.items()}
+
+
+def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckResult) -> BudgetRun:
+    """Join partition results into the dataset, table and main periods."""
+    keys = pieces[0].keys()
+    terms = {k: np.concatenate([p[k] for p in pieces], axis=0) for k in keys}
+    extras = {}
+    if "inversion" in terms:
+        extras["inversion"] = terms["inversion"][:, 0].copy()
+    net = plan.network
+    ds = to_dataset(terms, plan.times, plan.clusters, conv_at=lambda la, lo: _convergence(la, lo, net.crs),
+                    unit=plan.unit, variable=plan.variable, quantity=plan.quantity)
+    table = to_table(ds)
+    periods = main_periods(table, unit=f"{plan.unit} h-1")
+    return BudgetRun(chk, net, ds, table, periods, plan.variable, plan.quantity, plan.unit, plan.interval, plan.window,
+                     plan.settings, extras)
+
+
+def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
+                      progress: Progress = _noop) -> BudgetRun:
+    """The budget stages on an already checked data set (in time chunks when ``budget.chunk`` is set)."""
+    plan = plan_budget(chk, config, variable=variable, progress=progress)
+    progress("fitting planes and computing the budget")
+    chunk = config["budget"]["chunk"]
+    n = len(plan.times)
+    steps = int(align.parse_duration(chunk) / plan.interval) if chunk else n
+    pieces = []
+    for first, last in partitions(n, steps):  # a few large partitions: memory stays bounded
+        pieces.append(run_partition(plan, first, last))
+    return assemble(plan, pieces, chk)
+
+
+def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:
+    _, _, g, _ = geometry.project(lat, lon, crs)
+    return g
 
 
 LONG_NAMES = {
@@ -363,7 +461,7 @@ def to_table(ds) -> pd.DataFrame:
     """Tidy table, one row per cluster and time: the contract columns first, then the extras."""
     n_t, n_c = ds.sizes["time"], ds.sizes["cluster"]
     cols: dict[str, np.ndarray] = {
-        "time": np.repeat(pd.DatetimeIndex(ds["time"].values).tz_localize("UTC"), n_c),
+        "time": pd.DatetimeIndex(ds["time"].values).tz_localize("UTC").repeat(n_c),
         "cluster": np.tile(ds["cluster"].values, n_t),
         "stations": np.tile(ds["stations"].values, n_t),
         "latitude": np.tile(ds["latitude"].values, n_t),

@@ -34,20 +34,31 @@ def atomic_write(path: str | Path) -> Iterator[Path]:
 
 
 def _iso_utc(series: pd.Series) -> pd.Series:
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
     t = pd.DatetimeIndex(series)
     if t.tz is None:
         t = t.tz_localize("UTC")
-    return pd.Series(t.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"), index=series.index)
+    arr = pa.array(t.tz_convert("UTC").tz_localize(None).as_unit("s"))
+    return pd.Series(pc.strftime(arr, "%Y-%m-%dT%H:%M:%SZ").to_numpy(zero_copy_only=False), index=series.index)
 
 
 def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str, ...] = ("time",), float_format: str = "%.6g") -> Path:
-    """Write a CSV with ISO 8601 UTC times (``Z``)."""
+    """Write a CSV with ISO 8601 UTC times (``Z``), fast (pyarrow's writer, shortest float repr)."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
     out = frame.copy()
     for c in time_columns:
         if c in out and len(out):
             out[c] = _iso_utc(out[c])
+    for c in out.columns:
+        if out[c].dtype == object:
+            out[c] = out[c].astype(str)
+    table = pa.Table.from_pandas(out, preserve_index=False)
     with atomic_write(path) as tmp:
-        out.to_csv(tmp, index=False, float_format=float_format, lineterminator="\n")
+        pacsv.write_csv(table, tmp, pacsv.WriteOptions(quoting_style="needed"))
     return Path(path)
 
 
@@ -101,7 +112,7 @@ def write_netcdf(ds, path: str | Path) -> Path:
     enc = {}
     for name, var in ds.data_vars.items():
         if var.dtype.kind == "f":
-            enc[name] = {"zlib": True, "complevel": 4, "_FillValue": np.nan}
+            enc[name] = {"zlib": True, "complevel": 1, "shuffle": True, "_FillValue": np.nan}
         elif var.dtype.kind in "OUS":
             enc[name] = {"dtype": str}
     enc["time"] = {"units": "seconds since 1970-01-01 00:00:00", "calendar": "standard", "dtype": "float64"}

@@ -69,11 +69,14 @@ def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: 
     order = np.argsort(np.where(worst == 3, -1, worst), kind="stable")
     img[s[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
     img = np.where(img < 0, 3, img)
-    fig, ax = plt.subplots(figsize=(10, max(2.5, 0.22 * len(stations) + 1.2)))
+    fig, ax = plt.subplots(figsize=(10, min(14.0, max(2.5, 0.22 * len(stations) + 1.2))))
     ax.imshow(img, aspect="auto", interpolation="nearest", cmap=ListedColormap(FLAG_COLOURS), vmin=0, vmax=3,
               extent=(0, nb, len(stations) - 0.5, -0.5))
-    ax.set_yticks(range(len(stations)))
-    ax.set_yticklabels(stations, fontsize=7)
+    if len(stations) <= 60:
+        ax.set_yticks(range(len(stations)))
+        ax.set_yticklabels(stations, fontsize=7)
+    else:
+        ax.set_ylabel(f"{len(stations)} stations (sorted by id)")
     ticks = np.linspace(0, nb, 6)
     ax.set_xticks(ticks)
     ax.set_xticklabels([(t0 + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in ticks], fontsize=7)
@@ -99,29 +102,40 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     st = network.stations
     x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
     fig, ax = plt.subplots(figsize=(7.5, 6.5))
-    for i, row in network.clusters.iterrows():
-        m = network.members[i]
+    from matplotlib.collections import PolyCollection
+
+    polys, faces, alphas, styles = [], [], [], []
+    ok = (network.clusters["status"] == "ok").to_numpy()
+    names = network.clusters["cluster"].to_numpy()
+    for i, m in enumerate(network.members):  # drawing only: one polygon per cluster
         pts = np.column_stack([x[m], y[m]])
         if len(m) > 3:
             c = pts.mean(axis=0)
             pts = pts[np.argsort(np.arctan2(pts[:, 1] - c[1], pts[:, 0] - c[0]))]
+        polys.append(pts)
         if colour_by is not None:
-            reg = colour_by.get(row["cluster"])
-            face = REGIME_COLOURS.get(reg, "#ffffff") if row["status"] == "ok" else "#ffffff"
-            alpha = 0.75 if row["status"] == "ok" else 0.3
+            faces.append(REGIME_COLOURS.get(colour_by.get(names[i]), "#ffffff") if ok[i] else "#ffffff")
+            alphas.append(0.75 if ok[i] else 0.3)
         else:
-            face = STATUS_COLOURS[row["status"]]
-            alpha = 0.35 if row["status"] == "ok" else 0.2
-        ax.add_patch(Polygon(pts, closed=True, facecolor=face, edgecolor="#555555", alpha=alpha, lw=0.8,
-                             ls="-" if row["status"] == "ok" else ":"))
-        if row["status"] == "ok":
+            faces.append(STATUS_COLOURS["ok" if ok[i] else "rejected"])
+            alphas.append(0.35 if ok[i] else 0.2)
+        styles.append("-" if ok[i] else ":")
+    from matplotlib.colors import to_rgba
+
+    coll = PolyCollection(polys, facecolors=[to_rgba(f, a) for f, a in zip(faces, alphas)], edgecolors="#555555",
+                          linewidths=0.8 if len(polys) < 300 else 0.2, linestyles=styles)
+    ax.add_collection(coll)
+    if ok.sum() <= 150:
+        for i in np.flatnonzero(ok):
+            row = network.clusters.iloc[i]
             ax.text(row["centroid_x"] / 1000, row["centroid_y"] / 1000, row["cluster"], fontsize=6.5, ha="center",
                     va="center", color="#222222")
     surface = (st["role"] == "surface").to_numpy()
-    ax.scatter(x[surface], y[surface], s=18, color="#111111", zorder=3)
+    ax.scatter(x[surface], y[surface], s=18 if len(x) < 300 else 2, color="#111111", zorder=3)
     ax.scatter(x[~surface], y[~surface], s=50, facecolor="none", edgecolor="#111111", zorder=3)
-    for xi, yi, sid in zip(x[surface], y[surface], st["station_id"][surface]):
-        ax.annotate(str(sid), (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
+    if len(x) <= 80:
+        for xi, yi, sid in zip(x[surface], y[surface], st["station_id"][surface]):
+            ax.annotate(str(sid), (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
     if arrows:
         cx = network.clusters.set_index("cluster")
         ids = [c for c in arrows.get("cluster", []) if c in cx.index]
@@ -172,12 +186,9 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
             ax.plot(tt, val, color=colour, lw=1.3, label=name if name != "residual" else "residual (in situ)")
             ax.fill_between(tt, val - 1.96 * se, val + 1.96 * se, color=colour, alpha=0.15, lw=0)
         reg = d["regime"].to_numpy()
-        if len(tt) > 1:
-            step = (tt[1:] - tt[:-1]).median()
-            for r in ("advective", "in_situ", "mixed"):
-                on = reg == r
-                for k in np.flatnonzero(on):
-                    ax.axvspan(tt[k] - step / 2, tt[k] + step / 2, color=REGIME_COLOURS[r], alpha=0.12, lw=0)
+        for r in ("advective", "in_situ", "mixed"):
+            ax.fill_between(tt, 0, 1, where=reg == r, step="mid", transform=ax.get_xaxis_transform(),
+                            color=REGIME_COLOURS[r], alpha=0.14, lw=0)
         ax.axhline(0, color="#888888", lw=0.6)
         ax.set_ylabel(f"{c}\n{unit}/h", fontsize=8)
         ax.tick_params(labelsize=7)

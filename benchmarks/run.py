@@ -1,0 +1,220 @@
+"""Benchmarks: the fitting core and the whole `stationflow budget` run against the physical floor.
+
+Run with ``make bench`` (or ``python benchmarks/run.py [size ...]``).  For each size it generates a
+synthetic network (a linear field carried by a turning wind, 0.1 K noise, 5 % of values missing at
+random) as a long CSV and as Parquet under ``benchmarks/output/``, then reports:
+
+- the fitting core (`gradient.fit_planes` on Delaunay triangles) with complete data and with 5 %
+  missing: station-values per second (input values) and member-values per second (values entering
+  the fits: each station is in about six triangles);
+- the physical floor: a bare pyarrow parse of the input CSV plus a bare pyarrow write of the output
+  table to Parquet;
+- the whole run, ``stationflow budget --quiet`` in a fresh process (imports included): wall time,
+  peak memory (max RSS) and the ratio to the floor.
+
+Nothing here is asserted; ``tests/test_scale.py`` only checks that the harness runs on ``tiny``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+ROOT = Path(__file__).resolve().parent.parent
+SIZES = {
+    # name: (stations, days, minutes)
+    "tiny": (20, 1, 10),
+    "100": (100, 7, 5),
+    "300x30d": (300, 30, 5),
+    "1000": (1000, 7, 10),
+    "10000": (10000, 7, 10),
+}
+DEFAULT = ["100", "300x30d", "1000", "10000"]
+
+
+def generate(name: str, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Path]:
+    """Write stations.csv, observations.csv and observations.parquet for a size (cached)."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    from stationflow import synthetic
+
+    n, days, minutes = SIZES[name]
+    folder.mkdir(parents=True, exist_ok=True)
+    st_path, csv_path, pq_path = folder / "stations.csv", folder / "observations.csv", folder / "observations.parquet"
+    if csv_path.exists() and pq_path.exists() and st_path.exists():
+        return st_path, csv_path, pq_path
+    radius = 10.0 * np.sqrt(n)  # about 17 km between neighbours
+    st = synthetic.network(n, radius_km=radius, seed=seed, prefix="B")
+    st[["station_id", "latitude", "longitude", "elevation", "sensor_height"]].to_csv(st_path, index=False)
+    f = synthetic.LinearField(base=285.0, gx=synthetic._const(2e-5), gy=synthetic._const(-1e-5),
+                              u=synthetic.ramp([(0, 3.0), (24 * days, -2.0)]), v=synthetic.ramp([(0, 1.0), (24 * days, 4.0)]),
+                              source=synthetic.ramp([(0, -0.5 / 3600), (24 * days, 0.5 / 3600)]), horizon_s=days * 86400 + 7200)
+    times = pd.date_range("2026-01-01", periods=days * 24 * 60 // minutes, freq=f"{minutes}min", tz="UTC")
+    rng = np.random.default_rng(seed)
+    parts = []
+    for k in range(0, len(times), 288):  # bounded memory while generating
+        block = synthetic.sample(f, st, times[k:k + 288], noise=0.1, wind_noise=0.3, seed=seed + k)
+        keep = rng.random(len(block)) >= 0.05
+        block = block[keep]
+        parts.append(pa.table({
+            "station_id": pa.array(block["station_id"].to_numpy(), pa.string()),
+            "time": pa.array(pd.DatetimeIndex(block["time"]).strftime("%Y-%m-%dT%H:%M:%SZ"), pa.string()),
+            "air_temperature": pa.array(np.round(block["air_temperature"].to_numpy(), 2)),
+            "wind_speed": pa.array(np.round(block["wind_speed"].to_numpy(), 2)),
+            "wind_from_direction": pa.array(np.round(block["wind_from_direction"].to_numpy(), 1)),
+        }))
+    table = pa.concat_tables(parts)
+    pacsv.write_csv(table, csv_path, pacsv.WriteOptions(quoting_style="none"))
+    typed = table.set_column(1, "time", pa.compute.cast(pa.compute.strptime(table["time"], "%Y-%m-%dT%H:%M:%SZ", "s", error_is_null=True),
+                                                         pa.timestamp("ns", tz="UTC")))
+    pq.write_table(typed, pq_path)
+    return st_path, csv_path, pq_path
+
+
+def bench_core(name: str, *, repeats: int = 3) -> dict:
+    """fit_planes throughput on triangles: complete data and 5 % missing."""
+    from stationflow import synthetic
+    from stationflow.geometry import delaunay_clusters
+    from stationflow.gradient import fit_planes
+
+    n, days, minutes = SIZES[name]
+    n_t = days * 24 * 60 // minutes
+    st = synthetic.network(n, radius_km=10.0 * np.sqrt(n), seed=1)
+    x, y = st["x"].to_numpy(), st["y"].to_numpy()
+    tri = delaunay_clusters(x, y)
+    rng = np.random.default_rng(2)
+    vals = 280 + 2e-5 * x[None, :] + rng.normal(0, 0.1, (n_t, n))
+    fit_planes(vals[:50], x, y, tri, residuals=False)  # warm-up (first-call set-up costs)
+    out = {"clusters": len(tri), "times": n_t}
+    for label, miss in (("complete", 0.0), ("missing5", 0.05)):
+        v = vals.copy()
+        if miss:
+            v[rng.random(v.shape) < miss] = np.nan
+        best = np.inf
+        for _ in range(repeats):
+            t0 = time.perf_counter()
+            fit_planes(v, x, y, tri, residuals=False)
+            best = min(best, time.perf_counter() - t0)
+        out[f"core_{label}_s"] = best
+        out[f"core_{label}_station_values_per_s"] = n * n_t / best
+        out[f"core_{label}_member_values_per_s"] = 3 * len(tri) * n_t / best
+    out["core_member_values_per_s"] = out["core_complete_member_values_per_s"]
+    return out
+
+
+def bench_floor(csv_path: Path, out_table: Path) -> float:
+    """Bare pyarrow CSV parse of the input plus bare pyarrow Parquet write of the output table."""
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(out_table)
+    t0 = time.perf_counter()
+    pacsv.read_csv(csv_path)
+    t1 = time.perf_counter()
+    pq.write_table(table, out_table.with_suffix(".floor.parquet"))
+    t2 = time.perf_counter()
+    out_table.with_suffix(".floor.parquet").unlink()
+    return t2 - t0
+
+
+_RUNNER = r"""
+import resource, sys, time
+t0 = time.perf_counter()
+from stationflow.cli import main
+sys.argv = ["stationflow"] + sys.argv[1:]
+try:
+    main()
+except SystemExit as e:
+    code = e.code or 0
+else:
+    code = 0
+print("__bench__", time.perf_counter() - t0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, code, file=sys.stderr)
+"""
+
+
+def bench_run(st_path: Path, obs_path: Path, out: Path, extra: list[str] | None = None) -> dict:
+    """The whole CLI run in a fresh process: wall time (process start included) and peak RSS."""
+    cmd = [sys.executable, "-c", _RUNNER, "budget", "--stations", str(st_path), "--obs", str(obs_path),
+           "--out", str(out), "--quiet"] + (extra or [])
+    t0 = time.perf_counter()
+    res = subprocess.run(cmd, capture_output=True, text=True, env={**os.environ, "PYTHONWARNINGS": "ignore"})
+    wall = time.perf_counter() - t0
+    line = [ln for ln in res.stderr.splitlines() if ln.startswith("__bench__")]
+    if res.returncode != 0 or not line:
+        raise RuntimeError(f"benchmark run failed ({res.returncode}): {res.stderr[-2000:]}")
+    _, _, rss_kb, _ = line[-1].split()
+    return {"run_s": wall, "peak_mb": int(rss_kb) / 1024}
+
+
+def run_suite(names: list[str], folder: Path, *, repeats: int = 3) -> list[dict]:
+    """Generate, benchmark and return one row per size."""
+    rows = []
+    for name in names:
+        n, days, minutes = SIZES[name]
+        st_path, csv_path, pq_path = generate(name, folder / name)
+        row = {"size": name, "stations": n, "days": days, "minutes": minutes,
+               "input_rows": sum(1 for _ in open(csv_path, "rb")) - 1, "csv_mb": csv_path.stat().st_size / 1e6}
+        row.update(bench_core(name, repeats=repeats))
+        extra = ["--config", str(_config(folder / name, n))]
+        out = folder / name / "out"
+        row.update(bench_run(st_path, csv_path, out, extra))
+        row["floor_s"] = bench_floor(csv_path, out / "budget.parquet")
+        row["ratio"] = row["run_s"] / row["floor_s"]
+        row["output_rows"] = _rows(out / "budget.parquet")
+        row["run_station_values_per_s"] = row["input_rows"] / row["run_s"]
+        pq_run = bench_run(st_path, pq_path, folder / name / "out_pq", extra)
+        row["run_parquet_s"] = pq_run["run_s"]
+        row["peak_parquet_mb"] = pq_run["peak_mb"]
+        rows.append(row)
+        print(_line(row), flush=True)
+    return rows
+
+
+def _config(folder: Path, n: int) -> Path:
+    p = folder / "bench.toml"
+    chunk = 'chunk = "1D"\n' if n >= 5000 else ""
+    p.write_text(f'[budget]\nvertical = "none"\nwindow = "30min"\n{chunk}[qc]\nspatial = {"false" if n >= 5000 else "true"}\n')
+    return p
+
+
+def _rows(path: Path) -> int:
+    import pyarrow.parquet as pq
+
+    return pq.ParquetFile(path).metadata.num_rows
+
+
+HEADER = ("| size | stations x days @ step | input rows | output rows | core M member-values/s (complete / 5 % missing) "
+          "| core M station-values/s | run s (CSV) | floor s | run/floor | peak MB | run s (Parquet) |")
+
+
+def _line(r: dict) -> str:
+    return (f"| {r['size']} | {r['stations']} x {r['days']} d @ {r['minutes']} min | {r['input_rows']:,} | {r['output_rows']:,} | "
+            f"{r['core_complete_member_values_per_s'] / 1e6:.0f} / {r['core_missing5_member_values_per_s'] / 1e6:.0f} | "
+            f"{r['core_complete_station_values_per_s'] / 1e6:.1f} | {r['run_s']:.1f} | {r['floor_s']:.2f} | {r['ratio']:.1f} | "
+            f"{r['peak_mb']:.0f} | {r['run_parquet_s']:.1f} |")
+
+
+def main(argv: list[str]) -> None:
+    names = argv or DEFAULT
+    folder = ROOT / "benchmarks" / "output"
+    print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
+          f"{time.strftime('%Y-%m-%d')}")
+    print(HEADER)
+    print("|" + "---|" * 11)
+    rows = run_suite(names, folder)
+    (folder / "results.json").write_text(json.dumps(rows, indent=2))
+
+
+if __name__ == "__main__":
+    main(sys.argv[1:])
