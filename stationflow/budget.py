@@ -236,7 +236,9 @@ def compute_budget(
     Returns a dict of (n_times, n_clusters) arrays: value, tendency,
     advection, residual and their standard errors [unit h-1], grad_x,
     grad_y [unit km-1] and errors, u, v [m s-1] and errors, n_used, dof,
-    rms, regime, and (with regression) vertical_gradient [unit per 100 m].
+    rms, regime, divergence and vorticity [s-1] with errors (plane fits of u
+    and v over the same clusters), and (with regression) vertical_gradient
+    [unit per 100 m].
     """
     s = settings
     if fit is None:
@@ -298,39 +300,76 @@ def compute_budget(
     if wind_speed is not None:
         sp, _, _ = cluster_mean(wind_speed, memb)
         out["wind_speed"] = sp
+    if np.isfinite(u).any():
+        from .kinematics import fit_wind, kinematics
+
+        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations))
+        for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
+            out[name] = kin[name]
     out["regime"] = classify(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
                              significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
     return out
 
 
-def main_periods(table: pd.DataFrame, *, unit: str, min_steps: int = 3, max_lines: int = 12) -> list[dict]:
+def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: dict[str, np.ndarray], *, unit: str,
+                        min_steps: int = 3, max_lines: int = 12) -> list[dict]:
     """Runs of one regime (advective, in_situ, mixed) per cluster, longest first.
 
-    Each period: cluster, regime, start, end, steps and mean tendency,
-    advection and residual with their mean standard errors.
+    ``terms`` holds (n_times, n_clusters) arrays ``regime``, ``tendency``,
+    ``advection``, ``residual`` and their ``_se``.  Vectorised over the
+    whole record; only the selected periods are averaged one by one.
     """
-    t = table[table["regime"].isin(["advective", "in_situ", "mixed"])]
-    if t.empty:
+    reg = np.asarray(terms["regime"])
+    n_t, n_c = reg.shape
+    if n_t == 0 or n_c == 0:
         return []
-    t = table.sort_values(["cluster", "time"], kind="stable")
-    new = (t["cluster"] != t["cluster"].shift()) | (t["regime"] != t["regime"].shift())
-    t = t.assign(run=new.cumsum())
-    g = t.groupby("run")
-    agg = g.agg(cluster=("cluster", "first"), regime=("regime", "first"), start=("time", "min"), end=("time", "max"),
-                steps=("time", "size"), tendency=("tendency", "mean"), advection=("advection", "mean"),
-                residual=("residual", "mean"), advection_se=("advection_se", "mean"),
-                residual_se=("residual_se", "mean"), tendency_se=("tendency_se", "mean"))
-    agg = agg[agg["regime"].isin(["advective", "in_situ", "mixed"]) & (agg["steps"] >= min_steps)]
-    agg = agg.sort_values(["steps", "start"], ascending=[False, True]).head(max_lines)
+    codes = pd.Categorical(reg.T.reshape(-1), categories=list(REGIMES)).codes.astype(np.int16)  # cluster-major
+    new = np.ones(codes.size, bool)
+    new[1:] = codes[1:] != codes[:-1]
+    new[::n_t] = True  # a run never crosses clusters
+    starts = np.flatnonzero(new)
+    lengths = np.diff(np.append(starts, codes.size))
+    kind = codes[starts]
+    good = (kind >= 0) & (kind <= 2) & (lengths >= min_steps)
+    if not good.any():
+        return []
+    cand = np.flatnonzero(good)
+    first_t = starts[cand] % n_t
+    order = np.lexsort((first_t, -lengths[cand]))[:max_lines]
+    chosen = cand[order]
     out = []
-    for r in agg.sort_values(["cluster", "start"]).itertuples():
-        term, se = (r.advection, r.advection_se) if r.regime == "advective" else (r.residual, r.residual_se)
-        if r.regime == "mixed":
-            term, se = r.tendency, r.tendency_se
-        out.append({"cluster": r.cluster, "regime": r.regime, "start": r.start, "end": r.end, "steps": int(r.steps),
-                    "rate": float(term), "rate_se": float(se), "tendency": float(r.tendency),
-                    "advection": float(r.advection), "residual": float(r.residual), "unit": unit})
-    return out
+    cols = ("tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se")
+    flat = {k: np.asarray(terms[k]).T.reshape(-1) for k in cols}
+    for r in chosen:  # at most max_lines periods
+        sl = slice(starts[r], starts[r] + lengths[r])
+        c = starts[r] // n_t
+        with np.errstate(invalid="ignore"):
+            m = {k: float(np.nanmean(flat[k][sl])) for k in cols}
+        regime = REGIMES[kind[r]]
+        key = {"advective": "advection", "in_situ": "residual", "mixed": "tendency"}[regime]
+        out.append({"cluster": str(clusters[c]), "regime": regime, "start": times[starts[r] % n_t],
+                    "end": times[starts[r] % n_t + lengths[r] - 1], "steps": int(lengths[r]),
+                    "rate": m[key], "rate_se": m[f"{key}_se"], "tendency": m["tendency"],
+                    "advection": m["advection"], "residual": m["residual"], "unit": unit})
+    return sorted(out, key=lambda p: (p["cluster"], p["start"]))
+
+
+def main_periods(table: pd.DataFrame, *, unit: str, min_steps: int = 3, max_lines: int = 12) -> list[dict]:
+    """:func:`periods_from_arrays` for a tidy table (one row per cluster and time)."""
+    if table.empty:
+        return []
+    times = pd.DatetimeIndex(sorted(pd.DatetimeIndex(table["time"]).unique()))
+    clusters = pd.unique(table["cluster"])
+    cols = ("regime", "tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se")
+    ti = times.get_indexer(pd.DatetimeIndex(table["time"]))
+    ci = pd.Index(clusters).get_indexer(table["cluster"])
+    terms = {}
+    for k in cols:
+        arr = np.full((len(times), len(clusters)), "undetermined" if k == "regime" else np.nan,
+                      dtype=object if k == "regime" else float)
+        arr[ti, ci] = table[k].to_numpy()
+        terms[k] = arr
+    return periods_from_arrays(times, clusters, terms, unit=unit, min_steps=min_steps, max_lines=max_lines)
 
 
 def describe_period(p: dict, *, variable: str) -> str:

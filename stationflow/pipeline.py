@@ -17,7 +17,7 @@ import numpy as np
 import pandas as pd
 
 from . import align, geometry, ingest, qc
-from .budget import BudgetSettings, compute_budget, main_periods
+from .budget import REGIMES, BudgetSettings, compute_budget, periods_from_arrays
 from .config import Config
 from .errors import ConfigError, GeometryError
 from .thermo import KAPPA, P_REF, standard_pressure
@@ -72,7 +72,7 @@ def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, p
     progress("quality control")
     result = qc.run_qc(data.observations, data.stations, config)
     flags = qc.flag_table(data.observations, result)
-    periods = qc.flagged_periods(data.observations, result)
+    periods = qc.flagged_periods(data.observations, result, table=flags)
     s = qc.summary(data.observations, result)
     return CheckResult(data, result, flags, periods, s["per_test"], s["per_station"], config)
 
@@ -333,7 +333,7 @@ def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckRe
     ds = to_dataset(terms, plan.times, plan.clusters, conv_at=lambda la, lo: _convergence(la, lo, net.crs),
                     unit=plan.unit, variable=plan.variable, quantity=plan.quantity)
     table = to_table(ds)
-    periods = main_periods(table, unit=f"{plan.unit} h-1")
+    periods = periods_from_arrays(plan.times, plan.clusters["cluster"].to_numpy(), terms, unit=f"{plan.unit} h-1")
     return BudgetRun(chk, net, ds, table, periods, plan.variable, plan.quantity, plan.unit, plan.interval, plan.window,
                      plan.settings, extras)
 
@@ -389,6 +389,10 @@ LONG_NAMES = {
     "inversion": "mast temperature difference, upper minus surface sensor (network mean)",
     "regime": "advective, in_situ, mixed, steady or undetermined",
     "gap_filled": "value interpolated across a short gap (no fit at this time)",
+    "divergence": "horizontal divergence of the wind (plane fits of u and v)",
+    "divergence_se": "standard error of divergence",
+    "vorticity": "vertical vorticity of the wind (plane fits of u and v)",
+    "vorticity_se": "standard error of vorticity",
 }
 
 
@@ -403,6 +407,7 @@ def _units(unit: str) -> dict[str, str]:
         "rms": unit, "cond": "1", "vertical_gradient": f"{unit} (100 m)-1", "vertical_gradient_se": f"{unit} (100 m)-1",
         "wind_speed": "m s-1", "wind_from_direction": "degree", "gradient_bearing": "degree", "inversion": "K",
         "regime": "1", "gap_filled": "1",
+        "divergence": "s-1", "divergence_se": "s-1", "vorticity": "s-1", "vorticity_se": "s-1",
     }
 
 
@@ -460,15 +465,19 @@ TABLE_COLUMNS = ["time", "cluster", "stations", "n_used", "latitude", "longitude
 def to_table(ds) -> pd.DataFrame:
     """Tidy table, one row per cluster and time: the contract columns first, then the extras."""
     n_t, n_c = ds.sizes["time"], ds.sizes["cluster"]
-    cols: dict[str, np.ndarray] = {
+    code = np.tile(np.arange(n_c, dtype=np.int32), n_t)
+    cols: dict[str, object] = {
         "time": pd.DatetimeIndex(ds["time"].values).tz_localize("UTC").repeat(n_c),
-        "cluster": np.tile(ds["cluster"].values, n_t),
-        "stations": np.tile(ds["stations"].values, n_t),
+        "cluster": pd.Categorical.from_codes(code, categories=pd.Index(ds["cluster"].values.astype(str))),
+        "stations": pd.Categorical.from_codes(code, categories=pd.Index(ds["stations"].values.astype(str))),
         "latitude": np.tile(ds["latitude"].values, n_t),
         "longitude": np.tile(ds["longitude"].values, n_t),
     }
     for name in ds.data_vars:
-        cols[name] = ds[name].values.reshape(-1)
-    t = pd.DataFrame(cols)
+        if name == "regime":
+            cols[name] = pd.Categorical(ds[name].values.reshape(-1), categories=list(REGIMES))
+        else:
+            cols[name] = ds[name].values.reshape(-1)
+    t = pd.DataFrame(cols, copy=False)
     extra = [c for c in t.columns if c not in TABLE_COLUMNS]
     return t[TABLE_COLUMNS + extra]

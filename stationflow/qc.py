@@ -585,9 +585,10 @@ def summary(observations: pd.DataFrame, result: QCResult) -> dict[str, pd.DataFr
     return {"per_test": per_test, "per_station": per_station}
 
 
-def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = "2h") -> pd.DataFrame:
+def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = "2h",
+                    table: pd.DataFrame | None = None) -> pd.DataFrame:
     """Contiguous periods of non-good values per station and variable (for the check summary)."""
-    t = flag_table(observations, result)
+    t = (flag_table(observations, result) if table is None else table).copy()
     if t.empty:
         return pd.DataFrame(columns=["station_id", "variable", "start", "end", "values", "flag", "tests"])
     t = t.sort_values(["station_id", "variable", "time"], kind="stable")

@@ -26,6 +26,9 @@ def atomic_write(path: str | Path) -> Iterator[Path]:
     tmp_path = Path(tmp)
     try:
         yield tmp_path
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp_path, 0o666 & ~umask)  # mkstemp creates 0600; give the usual permissions
         os.replace(tmp_path, target)
     except BaseException:
         with contextlib.suppress(FileNotFoundError):
@@ -54,7 +57,7 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str,
         if c in out and len(out):
             out[c] = _iso_utc(out[c])
     for c in out.columns:
-        if out[c].dtype == object:
+        if out[c].dtype == object or isinstance(out[c].dtype, pd.CategoricalDtype):
             out[c] = out[c].astype(str)
     table = pa.Table.from_pandas(out, preserve_index=False)
     with atomic_write(path) as tmp:
@@ -110,9 +113,13 @@ def write_qc_flags(flags: pd.DataFrame, path: str | Path) -> Path:
 def write_netcdf(ds, path: str | Path) -> Path:
     """CF-style NetCDF (netCDF4 format)."""
     enc = {}
+    big = ds.sizes.get("time", 0) * ds.sizes.get("cluster", 0) > 1_000_000
     for name, var in ds.data_vars.items():
         if var.dtype.kind == "f":
-            enc[name] = {"zlib": True, "complevel": 1, "shuffle": True, "_FillValue": np.nan}
+            # float32 keeps 7 significant digits, plenty for budget terms; compress only small files
+            enc[name] = {"dtype": "float32", "_FillValue": np.float32(np.nan)}
+            if not big:
+                enc[name].update({"zlib": True, "complevel": 1, "shuffle": True})
         elif var.dtype.kind in "OUS":
             enc[name] = {"dtype": str}
     enc["time"] = {"units": "seconds since 1970-01-01 00:00:00", "calendar": "standard", "dtype": "float64"}

@@ -176,6 +176,14 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
     fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
     for ax, c in zip(axes[:, 0], clusters):
         d = table[table["cluster"] == c].sort_values("time")
+        if len(d) > 1500:  # long records: plot block means so the figure stays legible and fast
+            k = int(np.ceil(len(d) / 1000))
+            blk = np.arange(len(d)) // k
+            num = d[["tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se"]].groupby(blk).mean()
+            num["time"] = d["time"].groupby(blk).first().to_numpy()
+            num["regime"] = d["regime"].astype(str).groupby(blk).agg(lambda r: r.value_counts().index[0]).to_numpy()
+            num["stations"] = d["stations"].iloc[0]
+            d = num
         t = pd.DatetimeIndex(d["time"])
         t = t.tz_convert(tz) if tz else t.tz_convert("UTC")
         tt = t.tz_localize(None)
