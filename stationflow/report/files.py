@@ -72,7 +72,7 @@ def write_parquet(frame: pd.DataFrame, path: str | Path) -> Path:
 
     table = pa.Table.from_pandas(frame, preserve_index=False)
     with atomic_write(path) as tmp:
-        pq.write_table(table, tmp, compression="zstd")
+        pq.write_table(table, tmp, compression="snappy")
     return Path(path)
 
 

@@ -137,13 +137,14 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
 
 
 def _dominant(table: pd.DataFrame) -> dict[str, str]:
-    det = table[table["regime"].isin(["advective", "in_situ", "mixed"])]
-    if det.empty:
-        return {c: "steady" for c in table["cluster"].unique()}
-    dom = det.groupby("cluster")["regime"].agg(lambda s: s.value_counts().index[0]).to_dict()
-    for c in table["cluster"].unique():
-        dom.setdefault(c, "steady")
-    return dom
+    """The most frequent of advective / in_situ / mixed per cluster (steady when none)."""
+    counts = pd.crosstab(table["cluster"], table["regime"])
+    cols = [c for c in ("advective", "in_situ", "mixed") if c in counts.columns]
+    if not cols:
+        return {str(c): "steady" for c in pd.unique(table["cluster"])}
+    sub = counts[cols]
+    best = sub.idxmax(axis=1).where(sub.max(axis=1) > 0, "steady")
+    return {str(k): str(v) for k, v in best.items()}
 
 
 def _arrows(table: pd.DataFrame) -> dict:

@@ -170,37 +170,39 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
     from matplotlib.patches import Patch
 
     if clusters is None:
-        det = table[table["regime"] != "undetermined"].groupby("cluster").size().sort_values(ascending=False)
-        clusters = list(det.index[:max_panels]) or list(table["cluster"].unique()[:max_panels])
+        det = table.loc[table["regime"] != "undetermined", "cluster"].value_counts(sort=True)
+        clusters = list(det.index[:max_panels]) or list(pd.unique(table["cluster"])[:max_panels])
     n = len(clusters)
     fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
+    names = ("tendency", "advection", "residual")
     for ax, c in zip(axes[:, 0], clusters):
-        d = table[table["cluster"] == c].sort_values("time")
-        if len(d) > 1500:  # long records: plot block means so the figure stays legible and fast
+        d = table[table["cluster"] == c]
+        tt = pd.DatetimeIndex(d["time"])
+        tt = (tt.tz_convert(tz) if tz else tt.tz_convert("UTC")).tz_localize(None)
+        cols = {k: d[k].to_numpy(float) for k in names + tuple(f"{k}_se" for k in names)}
+        reg = d["regime"].astype(str).to_numpy()
+        if len(d) > 1500:  # long records: block means keep the figure legible and fast
             k = int(np.ceil(len(d) / 1000))
-            blk = np.arange(len(d)) // k
-            num = d[["tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se"]].groupby(blk).mean()
-            num["time"] = d["time"].groupby(blk).first().to_numpy()
-            num["regime"] = d["regime"].astype(str).groupby(blk).agg(lambda r: r.value_counts().index[0]).to_numpy()
-            num["stations"] = d["stations"].iloc[0]
-            d = num
-        t = pd.DatetimeIndex(d["time"])
-        t = t.tz_convert(tz) if tz else t.tz_convert("UTC")
-        tt = t.tz_localize(None)
+            m = len(d) // k * k
+            import warnings
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                cols = {name: np.nanmean(v[:m].reshape(-1, k), axis=1) for name, v in cols.items()}
+            tt = tt[:m:k]
+            reg = reg[k // 2:m:k]  # the regime in the middle of each block
         for name, colour in (("tendency", "#222222"), ("advection", REGIME_COLOURS["advective"]),
                              ("residual", REGIME_COLOURS["in_situ"])):
-            val = d[name].to_numpy(float)
-            se = d[f"{name}_se"].to_numpy(float)
+            val, se = cols[name], cols[f"{name}_se"]
             ax.plot(tt, val, color=colour, lw=1.3, label=name if name != "residual" else "residual (in situ)")
             ax.fill_between(tt, val - 1.96 * se, val + 1.96 * se, color=colour, alpha=0.15, lw=0)
-        reg = d["regime"].to_numpy()
         for r in ("advective", "in_situ", "mixed"):
             ax.fill_between(tt, 0, 1, where=reg == r, step="mid", transform=ax.get_xaxis_transform(),
                             color=REGIME_COLOURS[r], alpha=0.14, lw=0)
         ax.axhline(0, color="#888888", lw=0.6)
         ax.set_ylabel(f"{c}\n{unit}/h", fontsize=8)
         ax.tick_params(labelsize=7)
-        stations = d["stations"].iloc[0] if len(d) else ""
+        stations = str(d["stations"].iloc[0]) if len(d) else ""
         ax.set_title(f"cluster {c}  ({stations})", fontsize=8, loc="left")
     axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
     handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
