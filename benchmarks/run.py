@@ -157,7 +157,7 @@ def bench_run(st_path: Path, obs_path: Path, out: Path, extra: list[str] | None 
     return {"run_s": wall, "peak_mb": int(rss_kb) / 1024}
 
 
-def run_suite(names: list[str], folder: Path, *, repeats: int = 3) -> list[dict]:
+def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large: bool = False) -> list[dict]:
     """Generate, benchmark and return one row per size."""
     rows = []
     for name in names:
@@ -168,14 +168,23 @@ def run_suite(names: list[str], folder: Path, *, repeats: int = 3) -> list[dict]
         row.update(bench_core(name, repeats=repeats))
         extra = ["--config", str(_config(folder / name, n))]
         out = folder / name / "out"
-        row.update(bench_run(st_path, csv_path, out, extra))
-        row["floor_s"] = bench_floor(csv_path, out / "budget.parquet")
-        row["ratio"] = row["run_s"] / row["floor_s"]
-        row["output_rows"] = _rows(out / "budget.parquet")
-        row["run_station_values_per_s"] = row["input_rows"] / row["run_s"]
-        pq_run = bench_run(st_path, pq_path, folder / name / "out_pq", extra)
-        row["run_parquet_s"] = pq_run["run_s"]
-        row["peak_parquet_mb"] = pq_run["peak_mb"]
+        try:
+            row.update(bench_run(st_path, csv_path, out, extra))
+            row["floor_s"] = bench_floor(csv_path, out / "budget.parquet")
+            row["ratio"] = row["run_s"] / row["floor_s"]
+            row["output_rows"] = _rows(out / "budget.parquet")
+            row["run_station_values_per_s"] = row["input_rows"] / row["run_s"]
+        except RuntimeError as exc:  # record the failure (for example out of memory) and go on
+            row.update({"run_s": float("nan"), "floor_s": float("nan"), "ratio": float("nan"), "peak_mb": float("nan"),
+                        "output_rows": 0, "error": str(exc)[:200]})
+        if n < 5000 or parquet_large:
+            try:
+                pq_run = bench_run(st_path, pq_path, folder / name / "out_pq", extra)
+                row["run_parquet_s"], row["peak_parquet_mb"] = pq_run["run_s"], pq_run["peak_mb"]
+            except RuntimeError as exc:
+                row.update({"run_parquet_s": float("nan"), "peak_parquet_mb": float("nan"), "error_parquet": str(exc)[:200]})
+        else:
+            row["run_parquet_s"] = row["peak_parquet_mb"] = float("nan")
         rows.append(row)
         print(_line(row), flush=True)
     return rows

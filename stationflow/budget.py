@@ -93,15 +93,10 @@ def membership_matrix(members: list[np.ndarray], n_stations: int):
     return csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n_stations, len(members)))
 
 
-def window_mean(a: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.ndarray:
-    """Trapezoid-weighted centred mean over ``t-h .. t+h`` along axis 0.
-
-    Missing samples are left out and the weights renormalised; at least
-    ``min_weight`` of the total weight must be present, else NaN.
-    """
+def _window_sums(a: np.ndarray, h: int, power: int) -> tuple[np.ndarray, np.ndarray, float]:
+    """Sums of ``w**power * a`` and of ``w`` over the present samples of each centred window."""
     w_full = np.ones(2 * h + 1)
     w_full[0] = w_full[-1] = 0.5
-    total = w_full.sum()
     acc = np.zeros_like(a)
     wsum = np.zeros_like(a)
     n = a.shape[0]
@@ -110,27 +105,25 @@ def window_mean(a: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.n
         dst = slice(max(0, -j), n - max(0, j))
         seg = a[src]
         ok = np.isfinite(seg)
-        acc[dst] += np.where(ok, seg * w, 0.0)
+        acc[dst] += np.where(ok, seg * w ** power, 0.0)
         wsum[dst] += np.where(ok, w, 0.0)
+    return acc, wsum, float(w_full.sum())
+
+
+def window_mean(a: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.ndarray:
+    """Trapezoid-weighted centred mean over ``t-h .. t+h`` along axis 0.
+
+    Missing samples are left out and the weights renormalised; at least
+    ``min_weight`` of the total weight must be present, else NaN.
+    """
+    acc, wsum, total = _window_sums(a, h, 1)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(wsum >= min_weight * total, acc / wsum, np.nan)
 
 
 def window_sum_sq_weights(var: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0) -> np.ndarray:
     """Variance of :func:`window_mean` for independent samples: sum(w_i^2 var_i) / (sum w_i)^2."""
-    w_full = np.ones(2 * h + 1)
-    w_full[0] = w_full[-1] = 0.5
-    total = w_full.sum()
-    acc = np.zeros_like(var)
-    wsum = np.zeros_like(var)
-    n = var.shape[0]
-    for j, w in zip(range(-h, h + 1), w_full):  # loop over the window's offsets, not over time
-        src = slice(max(0, j), n + min(0, j))
-        dst = slice(max(0, -j), n - max(0, j))
-        seg = var[src]
-        ok = np.isfinite(seg)
-        acc[dst] += np.where(ok, seg * w * w, 0.0)
-        wsum[dst] += np.where(ok, w, 0.0)
+    acc, wsum, total = _window_sums(var, h, 2)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(wsum >= min_weight * total, acc / wsum ** 2, np.nan)
 

@@ -324,8 +324,10 @@ def run_partition(plan: BudgetPlan, first: int, last: int, rows: pd.DataFrame | 
 
 def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckResult) -> BudgetRun:
     """Join partition results into the dataset, table and main periods."""
-    keys = pieces[0].keys()
-    terms = {k: np.concatenate([p[k] for p in pieces], axis=0) for k in keys}
+    keys = list(pieces[0].keys())
+    terms = {}
+    for k in keys:  # join one variable at a time and free the pieces as we go
+        terms[k] = np.concatenate([p.pop(k) for p in pieces], axis=0) if len(pieces) > 1 else pieces[0].pop(k)
     extras = {}
     if "inversion" in terms:
         extras["inversion"] = terms["inversion"][:, 0].copy()
@@ -431,8 +433,12 @@ def to_dataset(terms: dict, times: pd.DatetimeIndex, clusters: pd.DataFrame, *, 
         if name in units:
             attrs["units"] = units[name]
         if name == "regime":
-            attrs["flag_meanings"] = " ".join(("advective", "in_situ", "mixed", "steady", "undetermined"))
-            data_vars[name] = (("time", "cluster"), np.asarray(arr, dtype=object).astype(str), attrs)
+            # CF flags: small integer codes with flag_values / flag_meanings (compact for large runs)
+            a = np.asarray(arr)
+            codes = pd.Categorical(a.reshape(-1), categories=list(REGIMES)).codes.astype(np.int8).reshape(a.shape)
+            attrs["flag_values"] = np.arange(len(REGIMES), dtype=np.int8)
+            attrs["flag_meanings"] = " ".join(REGIMES)
+            data_vars[name] = (("time", "cluster"), codes, attrs)
         else:
             data_vars[name] = (("time", "cluster"), np.asarray(arr), attrs)
     ds = xr.Dataset(
@@ -475,7 +481,7 @@ def to_table(ds) -> pd.DataFrame:
     }
     for name in ds.data_vars:
         if name == "regime":
-            cols[name] = pd.Categorical(ds[name].values.reshape(-1), categories=list(REGIMES))
+            cols[name] = pd.Categorical.from_codes(ds[name].values.reshape(-1), categories=list(REGIMES))
         else:
             cols[name] = ds[name].values.reshape(-1)
     t = pd.DataFrame(cols, copy=False)

@@ -65,7 +65,12 @@ def test_netcdf_is_cf_style(frost_out):
         assert ds["u"].attrs["units"] == "m s-1"
         assert ds["value"].attrs["standard_name"] == "air_potential_temperature"
         assert ds["latitude"].attrs["units"] == "degrees_north"
-        assert set(np.unique(ds["regime"].values)) <= set(REGIMES)
+        # regime as CF flags: integer codes with flag_values and flag_meanings
+        assert ds["regime"].attrs["flag_meanings"].split() == list(REGIMES)
+        assert set(np.unique(ds["regime"].values)) <= set(range(len(REGIMES)))
+        csv = pd.read_csv(frost_out / "budget.csv")
+        decoded = np.array(REGIMES)[ds["regime"].values.reshape(-1)]
+        assert (decoded == csv["regime"].to_numpy()).all()
 
 
 def test_run_json_accounting(frost_out):

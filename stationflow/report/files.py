@@ -122,6 +122,8 @@ def write_netcdf(ds, path: str | Path) -> Path:
                 enc[name].update({"zlib": True, "complevel": 1, "shuffle": True})
         elif var.dtype.kind in "OUS":
             enc[name] = {"dtype": str}
+        elif name == "regime":
+            enc[name] = {"dtype": "int8"}
     enc["time"] = {"units": "seconds since 1970-01-01 00:00:00", "calendar": "standard", "dtype": "float64"}
     with atomic_write(path) as tmp:
         ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
