@@ -214,6 +214,31 @@ def _line(r: dict) -> str:
             f"{r['peak_mb']:.0f} | {r['run_parquet_s']:.1f} |")
 
 
+def plot(rows: list[dict], path: Path) -> Path:
+    """Scaling plot: wall time against stations x times (log-log), whole run and fitting core."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    import matplotlib.pyplot as plt
+
+    rows = sorted((r for r in rows if np.isfinite(r.get("run_s", np.nan))), key=lambda r: r["input_rows"])
+    size = np.array([r["stations"] * r["times"] for r in rows], float)
+    fig, ax = plt.subplots(figsize=(6, 4))
+    ax.loglog(size, [r["run_s"] for r in rows], "o-", label="whole budget run (CSV input)")
+    ax.loglog(size, [r["floor_s"] for r in rows], "s--", label="floor: pyarrow parse + Parquet write")
+    ax.loglog(size, [r["core_missing5_s"] for r in rows], "^-", label="fitting core, 5 % missing")
+    ref = size / size[0] * rows[0]["run_s"]
+    ax.loglog(size, ref, ":", color="grey", label="linear in stations x times")
+    ax.set_xlabel("stations x times")
+    ax.set_ylabel("seconds")
+    ax.legend(fontsize=7)
+    ax.set_title("stationflow scaling (2-core machine)", fontsize=9)
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return path
+
+
 def main(argv: list[str]) -> None:
     names = argv or DEFAULT
     folder = ROOT / "benchmarks" / "output"
@@ -222,7 +247,11 @@ def main(argv: list[str]) -> None:
     print(HEADER)
     print("|" + "---|" * 11)
     rows = run_suite(names, folder)
-    (folder / "results.json").write_text(json.dumps(rows, indent=2))
+    store = folder / "results.json"
+    old = {r["size"]: r for r in json.loads(store.read_text())} if store.exists() else {}
+    old.update({r["size"]: r for r in rows})
+    store.write_text(json.dumps(list(old.values()), indent=2))
+    print(f"scaling plot: {plot(list(old.values()), folder / 'scaling.png')}")
 
 
 if __name__ == "__main__":

@@ -223,6 +223,8 @@ def fit_planes(
     tables: list[dict[str, np.ndarray]] = []
     n_rows = 0
     vt = np.ascontiguousarray(values.T)  # (n_s, n_t)
+    present_st = ~np.isnan(vt)
+    all_present = bool(present_st.all())
     first = 0
     for k in np.unique(sizes):
         sel = order[first:first + int(np.sum(sizes == k))]
@@ -242,7 +244,29 @@ def fit_planes(
         n_rows += len(sel)
         full_code = (1 << k) - 1
         bits = (1 << np.arange(k, dtype=np.int64))
-        # time chunks sized to stay in cache; each chunk is one batched solve
+        # every distinct incomplete (cluster, pattern) pair of the whole record, solved once
+        if all_present and (zz is None or bool((W > 0).all())):
+            code_all = None  # complete data: every step uses the full pattern
+            uniq = np.zeros(0, np.int64)
+        else:
+            code_all = np.zeros((len(sel), n_t), np.int64)
+            for j in range(k):  # k is the cluster size (<= 62), not time or stations
+                code_all |= present_st[M[:, j]].astype(np.int64) << j
+            if zz is not None:
+                code_all &= ((W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None]
+            inc_c, inc_t = np.nonzero(code_all != full_code)
+            uniq = np.unique(inc_c.astype(np.int64) * (full_code + 1) + code_all[inc_c, inc_t])
+            del inc_c, inc_t
+        if uniq.size:
+            uc = uniq // (full_code + 1)
+            mask = ((uniq % (full_code + 1))[:, None] & bits[None, :]) > 0
+            Pu, Nu, cu, oku = _operators(A[uc], W[uc] * mask, max_cond)
+            nu = mask.sum(axis=1)
+            oku &= nu >= min_n
+            tables.append(_table_rows(Nu, cu, oku, nu, p))
+            base_row = n_rows
+            n_rows += uniq.size
+        # time chunks sized to stay in cache; each chunk is one batched product
         step = max(16, chunk_elements // max(1, len(sel) * k))
         for t0 in range(0, n_t, step):
             t1 = min(n_t, t0 + step)
@@ -251,7 +275,8 @@ def fit_planes(
             present = ~np.isnan(X)
             if zz is not None:
                 present &= (W > 0)[:, :, None]
-            complete = present.all(axis=1)  # (C, T)
+            complete = (np.ones((len(sel), t1 - t0), bool) if code_all is None
+                        else code_all[:, ts] == full_code)  # (C, T)
             all_complete = bool(complete.all())
             if not all_complete:
                 X = np.where(present, X, 0.0)
@@ -261,19 +286,9 @@ def fit_planes(
             pat[...] = full_rows[:, None]
             if not all_complete:
                 ci, ti = np.nonzero(~complete)
-                code = np.zeros(ci.size, np.int64)
-                for j in range(k):  # k is the cluster size (<= 62), not time or stations
-                    code |= present[ci, j, ti].astype(np.int64) << j
-                key = ci.astype(np.int64) * (full_code + 1) + code
-                uniq, inv = np.unique(key, return_inverse=True)
-                uc = uniq // (full_code + 1)
-                mask = ((uniq % (full_code + 1))[:, None] & bits[None, :]) > 0
-                Pu, Nu, cu, oku = _operators(A[uc], W[uc] * mask, max_cond)
-                nu = mask.sum(axis=1)
-                oku &= nu >= min_n
-                tables.append(_table_rows(Nu, cu, oku, nu, p))
-                pat[ci, ti] = n_rows + inv
-                n_rows += uniq.size
+                key = ci.astype(np.int64) * (full_code + 1) + code_all[ci, ti + t0]
+                inv = np.searchsorted(uniq, key)
+                pat[ci, ti] = base_row + inv
                 ce = np.einsum("epk,ek->ep", Pu[inv], X[ci, :, ti])
                 ce[~oku[inv]] = np.nan
                 coef[ci, :, ti] = ce
