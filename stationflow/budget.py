@@ -328,8 +328,15 @@ def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: di
         return []
     cand = np.flatnonzero(good)
     first_t = starts[cand] % n_t
-    order = np.lexsort((first_t, -lengths[cand]))[:max_lines]
-    chosen = cand[order]
+    ranked = cand[np.lexsort((first_t, -lengths[cand]))]
+    # take the longest periods of each regime in turn, so a short plume passage is not crowded
+    # out by a long quiet night
+    by_kind = [list(ranked[kind[ranked] == k]) for k in (0, 1, 2)]
+    chosen = []
+    while len(chosen) < max_lines and any(by_kind):
+        for lst in by_kind:
+            if lst and len(chosen) < max_lines:
+                chosen.append(lst.pop(0))
     out = []
     cols = ("tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se")
     flat = {k: np.asarray(terms[k]).T.reshape(-1) for k in cols}
@@ -377,4 +384,7 @@ def describe_period(p: dict, *, variable: str) -> str:
     end_fmt = "%H:%M" if pd.Timestamp(p["start"]).date() == pd.Timestamp(p["end"]).date() else "%Y-%m-%d %H:%M"
     end = pd.Timestamp(p["end"]).strftime(end_fmt)
     unit = p["unit"].replace(" h-1", "/h")
-    return f"cluster {p['cluster']}, {start}-{end} UTC: {label} {word} {p['rate']:+.2f} +/- {p['rate_se']:.2f} {unit}"
+    head = f"cluster {p['cluster']}, {start}-{end} UTC:"
+    if p["regime"] == "mixed":
+        return f"{head} mixed: advection {p['advection']:+.2f}, in situ {p['residual']:+.2f} {unit}"
+    return f"{head} {label} {word} {p['rate']:+.2f} +/- {p['rate_se']:.2f} {unit}"
