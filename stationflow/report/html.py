@@ -81,7 +81,7 @@ def write_report(path: str | Path, *, title: str, summary: list[tuple[str, str]]
         parts.append("<ul>" + "".join(items) + "</ul>")
         parts.append('<p class="muted">A period is a run of at least three analysis steps with the same regime. '
                      "The rate given is the dominant term (advection for advective periods, the in-situ residual for "
-                     "in-situ periods, the tendency for mixed ones) with its mean standard error.</p>")
+                     "in-situ periods) with its mean standard error; mixed periods give both terms.</p>")
     else:
         parts.append("<p>No period of three or more steps had a clear regime.</p>")
     parts.append("<h2>How good is it</h2><ul>" + "".join(f"<li>{esc(q)}</li>" for q in quality) + "</ul>")

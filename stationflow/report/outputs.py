@@ -185,7 +185,7 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
         f"{'good and suspect' if run.check.config['qc']['use_suspect'] else 'only good'} values.",
         "'undetermined' means too few good stations in the cluster for a plane, or gaps at the window ends.",
     ]
-    for p in run.check.periods.head(8).itertuples():
+    for p in run.check.periods.sort_values("values", ascending=False, kind="stable").head(8).itertuples():
         quality.append(f"QC: {p.station_id} {p.variable} {p.flag} ({p.tests}) {pd.Timestamp(p.start):%m-%d %H:%M}"
                        f" to {pd.Timestamp(p.end):%m-%d %H:%M} UTC, {p.values} values")
     if "inversion" in run.extras:

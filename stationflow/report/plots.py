@@ -82,7 +82,7 @@ def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: 
     ax.set_xticklabels([(t0 + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in ticks], fontsize=7)
     ax.set_xlabel("time (UTC)")
     ax.set_title("Quality control: worst flag per station and time")
-    ax.legend(handles=[Patch(color=c, label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
+    ax.legend(handles=[Patch(facecolor=c, edgecolor="#999999", label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
               loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
     return _save(fig, path)
 
