@@ -65,14 +65,24 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str,
     return Path(path)
 
 
-def write_parquet(frame: pd.DataFrame, path: str | Path) -> Path:
-    """Write a Parquet file (pyarrow)."""
+def write_parquet(frame: pd.DataFrame, path: str | Path, *, rows_per_group: int = 1_000_000) -> Path:
+    """Write a Parquet file (pyarrow), converting and writing one row group at a time.
+
+    Only one slice of the table is ever held as Arrow data, so memory stays
+    close to the size of the frame itself.
+    """
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    table = pa.Table.from_pandas(frame, preserve_index=False)
+    n = len(frame)
     with atomic_write(path) as tmp:
-        pq.write_table(table, tmp, compression="snappy")
+        first = pa.Table.from_pandas(frame.iloc[: min(n, rows_per_group)], preserve_index=False)
+        with pq.ParquetWriter(tmp, first.schema, compression="snappy") as writer:
+            writer.write_table(first)
+            del first
+            for a in range(rows_per_group, n, rows_per_group):
+                part = pa.Table.from_pandas(frame.iloc[a:a + rows_per_group], preserve_index=False)
+                writer.write_table(part)
     return Path(path)
 
 
