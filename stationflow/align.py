@@ -60,12 +60,15 @@ def infer_interval(observations: pd.DataFrame) -> pd.Timedelta:
 
 @dataclass
 class Grid:
-    """Dense analysis arrays: ``values[name]`` has shape (n_times, n_stations)."""
+    """Dense analysis arrays: ``values[name]`` has shape (n_times, n_stations).
+
+    ``counts[name]`` is the number of reports averaged into each bin.
+    """
 
     times: pd.DatetimeIndex
     stations: list[str]
     values: dict[str, np.ndarray]
-    counts: np.ndarray  # reports per bin of the budget variable (n_times, n_stations)
+    counts: dict[str, np.ndarray]
     interval: pd.Timedelta
 
 
@@ -96,57 +99,49 @@ def to_grid(
     stations
         Station order of the output columns.
     variables
-        Scalars to average.  ``"u"``/``"v"`` are produced when both
-        ``wind_speed`` and ``wind_from_direction`` are present (vector means;
-        calm reports count as zero wind).
+        Scalars to average.  When the frame has ``wind_speed`` and
+        ``wind_from_direction``, ``u`` and ``v`` [m s-1] are added as vector
+        means (calm reports count as zero wind).
     usable
         Optional per-variable boolean masks (aligned with ``observations``)
-        of values the estimator may use (from QC); others are ignored.
+        of values that may be used (from QC); others are ignored.
     """
     t = observations["time"]
-    tmin = t.min() if start is None else start
-    tmax = t.max() if end is None else end
-    first = pd.Timestamp(tmin).ceil(interval) if start is None else start
-    step = interval.value
-    n_t = int(np.ceil((pd.Timestamp(tmax).value - first.value) / step)) + 1
-    times = pd.date_range(first, periods=max(n_t, 1), freq=interval)
+    first = pd.Timestamp(t.min()).ceil(interval) if start is None else pd.Timestamp(start)
+    last = pd.Timestamp(t.max()) if end is None else pd.Timestamp(end)
+    n_t = max(int(np.ceil((last.value - first.value) / interval.value)) + 1, 1)
+    times = pd.date_range(first, periods=n_t, freq=interval)
+    n_s = len(stations)
     col = pd.Index(stations).get_indexer(observations["station_id"])
     row = bin_index(t, first, interval)
-    inside = (col >= 0) & (row >= 0) & (row < len(times))
-    flat = row * len(stations) + col
-    size = len(times) * len(stations)
-    out: dict[str, np.ndarray] = {}
-    counts = np.zeros(size)
+    inside = (col >= 0) & (row >= 0) & (row < n_t)
+    flat = row * n_s + col
+    size = n_t * n_s
+    everything = np.ones(len(observations), bool)
 
     def mean_of(x: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         sel = ok & inside & np.isfinite(x)
         s = np.bincount(flat[sel], weights=x[sel], minlength=size)
         n = np.bincount(flat[sel], minlength=size).astype(float)
         with np.errstate(invalid="ignore", divide="ignore"):
-            m = s / n
-        return m.reshape(len(times), len(stations)), n.reshape(len(times), len(stations))
+            return (s / n).reshape(n_t, n_s), n.reshape(n_t, n_s)
 
-    true = np.ones(len(observations), bool)
+    def mask(name: str) -> np.ndarray:
+        return usable.get(name, everything) if usable else everything
+
+    values: dict[str, np.ndarray] = {}
+    counts: dict[str, np.ndarray] = {}
     for name in variables:
-        if name not in observations:
-            continue
-        ok = usable.get(name, true) if usable else true
-        out[name], n = mean_of(observations[name].to_numpy(float), ok)
-        if name == variables[0]:
-            counts = n
-    if "wind_speed" in observations and "wind_from_direction" in observations:
+        if name in observations:
+            values[name], counts[name] = mean_of(observations[name].to_numpy(float), mask(name))
+    if "wind_speed" in observations and "wind_from_direction" in observations and "u" not in values:
         from .variables import wind_components
 
         s = observations["wind_speed"].to_numpy(float)
         d = observations["wind_from_direction"].to_numpy(float)
         calm = s < calm_speed
         u, v = wind_components(np.where(calm, 0.0, s), np.where(calm, 0.0, d))
-        ok = true
-        if usable:
-            ok = usable.get("wind_speed", true) & (usable.get("wind_from_direction", true) | calm)
-        out["u"], _ = mean_of(u, ok)
-        out["v"], _ = mean_of(v, ok)
-        out["wind_speed"], _ = mean_of(s, usable.get("wind_speed", true) if usable else true)
-    return Grid(times=times, stations=list(stations), values=out,
-                counts=counts if isinstance(counts, np.ndarray) and counts.ndim == 2 else np.zeros((len(times), len(stations))),
-                interval=interval)
+        ok = mask("wind_speed") & (mask("wind_from_direction") | calm)
+        values["u"], counts["u"] = mean_of(u, ok)
+        values["v"], counts["v"] = mean_of(v, ok)
+    return Grid(times=times, stations=list(stations), values=values, counts=counts, interval=interval)

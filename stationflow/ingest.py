@@ -335,7 +335,6 @@ def parse_times(
             naive = naive.where(~hour24, pd.to_datetime(c2.where(hour24), errors="coerce") + pd.Timedelta(days=1))
         aware_mask = np.zeros(n, bool)
         aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
-        text = None
     else:
         col = frame[time_column]
         if isinstance(col.dtype, pd.DatetimeTZDtype):
@@ -345,7 +344,6 @@ def parse_times(
             naive = col
             aware_mask = np.zeros(n, bool)
             aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
-            text = None
         else:
             text = _as_text(col)
             aware_mask = text.str.contains(_TZ_SUFFIX, regex=True).fillna(False).to_numpy(bool)
@@ -714,10 +712,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
                                               or not pd.api.types.is_numeric_dtype(col.dtype)):
             text = _as_text(col)
             absent = (text.isna() | (text == "") | text.isin(missing)).fillna(True).to_numpy(bool)
+            # compass names, numbers, and calm/variable codes are all understood here
             deg, calm, bad = V.compass_to_degrees(text.mask(absent).to_numpy(object))
-            if units_cfg.get(name, "degree") != "compass":
-                # numbers only, but calm/variable codes are still understood
-                pass
             calm_codes |= calm
             x = deg
         else:

@@ -1,0 +1,52 @@
+"""Alignment onto the analysis grid."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stationflow import align
+
+
+def _obs():
+    t = pd.to_datetime(["2026-01-01T00:00Z", "2026-01-01T00:05Z", "2026-01-01T00:10Z", "2026-01-01T00:12Z",
+                        "2026-01-01T00:10Z"])
+    return pd.DataFrame({"station_id": ["A", "A", "A", "A", "B"], "time": t,
+                         "air_temperature": [270.0, 271.0, 272.0, 280.0, 275.0],
+                         "wind_speed": [5.0, 5.0, 0.2, 5.0, 3.0], "wind_from_direction": [360.0, 180.0, 90.0, 270.0, 270.0]})
+
+
+def test_right_labelled_bins_and_means():
+    g = align.to_grid(_obs(), ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"))
+    assert list(g.times) == list(pd.date_range("2026-01-01T00:00Z", periods=3, freq="10min"))
+    a = g.values["air_temperature"][:, 0]
+    # bin 00:00 holds 00:00; bin 00:10 holds (00:00, 00:10] = 00:05 and 00:10; bin 00:20 holds 00:12
+    assert a.tolist() == [270.0, 271.5, 280.0]
+    assert g.counts["air_temperature"][:, 0].tolist() == [1, 2, 1]
+    assert np.isnan(g.values["air_temperature"][0, 1]) and g.values["air_temperature"][1, 1] == 275.0
+
+
+def test_vector_mean_winds_and_calm():
+    g = align.to_grid(_obs(), ["A", "B"], [], interval=pd.Timedelta("10min"))
+    # bin 00:10 at A: 5 m/s from the south and a calm report: vector mean v = (+5 + 0) / 2
+    assert g.values["u"][1, 0] == pytest.approx(0.0, abs=1e-12)
+    assert g.values["v"][1, 0] == pytest.approx(2.5)
+    assert g.values["u"][1, 1] == pytest.approx(3.0)  # from the west: blowing east
+
+
+def test_usable_masks_drop_values():
+    obs = _obs()
+    use = {"air_temperature": np.array([True, False, True, True, True])}
+    g = align.to_grid(obs, ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"), usable=use)
+    assert g.values["air_temperature"][1, 0] == 272.0
+
+
+def test_durations():
+    assert align.parse_duration("10min") == pd.Timedelta(minutes=10)
+    assert align.parse_duration("1.5h") == pd.Timedelta(minutes=90)
+    assert align.parse_duration("7D") == pd.Timedelta(days=7)
+    for bad in ("ten minutes", "0min", "5 parsecs"):
+        with pytest.raises(ValueError):
+            align.parse_duration(bad)
+    assert align.format_duration(pd.Timedelta("1h")) == "1h"
+    assert align.format_duration(pd.Timedelta("90s")) == "90s"
+    assert align.infer_interval(_obs()) == pd.Timedelta(minutes=5)
