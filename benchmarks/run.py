@@ -20,7 +20,6 @@ from __future__ import annotations
 import json
 import os
 import platform
-import resource
 import subprocess
 import sys
 import time
@@ -121,7 +120,6 @@ def bench_floor(csv_path: Path, out_table: Path) -> float:
     table = pq.read_table(out_table)
     t0 = time.perf_counter()
     pacsv.read_csv(csv_path)
-    t1 = time.perf_counter()
     pq.write_table(table, out_table.with_suffix(".floor.parquet"))
     t2 = time.perf_counter()
     out_table.with_suffix(".floor.parquet").unlink()

@@ -185,7 +185,7 @@ def _check_summary(chk, out: Path) -> str:
         common = step.mode().iloc[0] if len(step.dropna()) else None
         odd = step[step != common].dropna()
         lines.append(f"reporting interval: {common} at {int((step == common).sum())} stations"
-                     + (f"; others: " + ", ".join(f"{k} {v}" for k, v in odd.head(6).items()) if len(odd) else ""))
+                     + ("; others: " + ", ".join(f"{k} {v}" for k, v in odd.head(6).items()) if len(odd) else ""))
     lines.append("completeness (good / present / expected):")
     n_exp = max(1, len(d.stations)) * max(1, o["time"].nunique())
     for v in d.variables:

@@ -26,7 +26,7 @@ import numpy as np
 import pandas as pd
 
 from .thermo import KAPPA, P_REF, standard_pressure
-from .variables import wind_components, wind_direction
+from .variables import wind_direction
 
 Array = np.ndarray
 Profile = Callable[[Array], Array]  # a function of time [s since start]

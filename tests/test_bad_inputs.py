@@ -6,10 +6,8 @@ reason, the valid rows are kept, and the accounting adds up.
 """
 
 import json
-from pathlib import Path
 
 import pandas as pd
-import pytest
 
 from stationflow.cli import app
 

@@ -62,7 +62,7 @@ def test_triangle_fit_equals_bellamy_formula():
 def test_against_statsmodels_wls():
     # reference library: statsmodels WLS; coefficients and standard errors to 1e-10 relative
     rng = np.random.default_rng(11)
-    for trial in range(25):
+    for _ in range(25):
         n = rng.integers(4, 9)
         x, y = rng.uniform(-3e4, 3e4, n), rng.uniform(-3e4, 3e4, n)
         sigma = rng.uniform(0.1, 0.6, n)

@@ -9,7 +9,7 @@ import pytest
 from stationflow import config, ingest
 from stationflow.errors import ConfigError, IngestError
 
-from .conftest import STATIONS_CSV, utc, write_csv
+from .conftest import utc, write_csv
 
 MESSY = """Site;Timestamp;Temp_F;Wind_kt;Dir;Press_inHg;Note
 id;local;F;kt;compass;inHg;text

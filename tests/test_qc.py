@@ -7,7 +7,6 @@ import pytest
 from stationflow import qc, synthetic
 from stationflow.config import from_dict
 
-from .conftest import require_arm
 
 MIN = 60_000_000_000  # one minute in ns
 

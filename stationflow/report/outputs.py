@@ -95,7 +95,6 @@ def write_network(out: Path, network, *, inputs: dict, config, accounting: dict 
 def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: bool = True) -> tuple[list[Path], list[str]]:
     """Every budget output. Returns (paths, notes for the user)."""
     from . import plots
-    from .html import write_report
 
     out.mkdir(parents=True, exist_ok=True)
     notes: list[str] = []
@@ -177,7 +176,7 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
     det = table[table["regime"] != "undetermined"]
     counts = table["regime"].value_counts()
     quality = [
-        f"Regimes over all clusters and times: " + ", ".join(f"{k.replace('_', ' ')} {int(v)}" for k, v in counts.items()) + ".",
+        "Regimes over all clusters and times: " + ", ".join(f"{k.replace('_', ' ')} {int(v)}" for k, v in counts.items()) + ".",
         (f"Median standard error of the advection {np.nanmedian(det['advection_se']):.3g} and of the residual "
          f"{np.nanmedian(det['residual_se']):.3g} {run.unit}/h." if len(det) else "No cluster could be evaluated."),
         f"Quality control flagged {int(sum(np.sum(f == 1) for f in run.check.qc.flags.values()))} values suspect and "

@@ -97,7 +97,7 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     drawn at the cluster centroids.
     """
     plt = _plt()
-    from matplotlib.patches import Patch, Polygon
+    from matplotlib.patches import Patch
 
     st = network.stations
     x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
