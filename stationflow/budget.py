@@ -372,19 +372,35 @@ def main_periods(table: pd.DataFrame, *, unit: str, min_steps: int = 3, max_line
     return periods_from_arrays(times, clusters, terms, unit=unit, min_steps=min_steps, max_lines=max_lines)
 
 
-def describe_period(p: dict, *, variable: str) -> str:
-    """One line such as 'cluster T03, 21:40-01:10 UTC: advective cooling -1.9 +/- 0.2 K/h'."""
+def _span(start: pd.Timestamp, end: pd.Timestamp) -> str:
+    end_fmt = "%H:%M" if start.date() == end.date() else "%Y-%m-%d %H:%M"
+    return f"{start:%Y-%m-%d %H:%M}-{end.strftime(end_fmt)}"
+
+
+def describe_period(p: dict, *, variable: str, timezone: str | None = None) -> str:
+    """One line such as 'cluster T03, 2026-04-15 04:40-05:10 UTC: advective cooling -1.9 +/- 0.2 K/h'.
+
+    With a ``timezone`` other than UTC the period is given in local time
+    first, with UTC in brackets (frost staff think in local time).
+    """
     temp = variable in ("air_temperature", "potential_temperature")
     if temp:
         word = "cooling" if p["rate"] < 0 else "warming"
     else:
         word = "fall" if p["rate"] < 0 else "rise"
     label = {"advective": "advective", "in_situ": "in-situ", "mixed": "mixed"}[p["regime"]]
-    start = pd.Timestamp(p["start"]).strftime("%Y-%m-%d %H:%M")
-    end_fmt = "%H:%M" if pd.Timestamp(p["start"]).date() == pd.Timestamp(p["end"]).date() else "%Y-%m-%d %H:%M"
-    end = pd.Timestamp(p["end"]).strftime(end_fmt)
+    start, end = pd.Timestamp(p["start"]), pd.Timestamp(p["end"])
+    if start.tzinfo is None:
+        start, end = start.tz_localize("UTC"), end.tz_localize("UTC")
+    when = f"{_span(start, end)} UTC"
+    if timezone and timezone.strip().upper() not in ("UTC", "Z", "GMT", "+00:00"):
+        from .ingest import _timezone
+
+        tz = _timezone(timezone)
+        ls, le = start.tz_convert(tz), end.tz_convert(tz)
+        when = f"{_span(ls, le)} {ls.strftime('%Z') or timezone} ({start:%H:%M}-{end:%H:%M} UTC)"
     unit = p["unit"].replace(" h-1", "/h")
-    head = f"cluster {p['cluster']}, {start}-{end} UTC:"
+    head = f"cluster {p['cluster']}, {when}:"
     if p["regime"] == "mixed":
         return f"{head} mixed: advection {p['advection']:+.2f}, in situ {p['residual']:+.2f} {unit}"
     return f"{head} {label} {word} {p['rate']:+.2f} +/- {p['rate_se']:.2f} {unit}"

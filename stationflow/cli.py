@@ -320,7 +320,8 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")
-        lines += ["  " + describe_period(p, variable=run.quantity) for p in run.periods]
+        tz = run.check.config["observations"]["timezone"]
+        lines += ["  " + describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     acc = run.check.data.accounting
     lines.append(f"rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, rejected {acc['rows_rejected']:,}")
     lines += notes

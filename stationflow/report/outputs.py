@@ -107,10 +107,12 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         notes.append(f"budget.csv not written: {len(table):,} rows > {CSV_ROW_LIMIT:,}; use budget.parquet or pass --csv")
     written.append(files.write_netcdf(run.dataset, out / "budget.nc"))
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
-    lines = [describe_period(p, variable=run.quantity) for p in run.periods]
+    tz = run.check.config["observations"]["timezone"]
+    lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     figs: list[tuple[str, Path]] = []
     if report:
-        ts = plots.budget_timeseries(table, out / "budget_timeseries.png", unit=run.unit)
+        local = None if tz.strip().upper() in ("UTC", "Z", "GMT") else tz
+        ts = plots.budget_timeseries(table, out / "budget_timeseries.png", unit=run.unit, tz=local)
         dominant = _dominant(table)
         arrows = _arrows(table)
         mp = plots.network_map(run.network, out / "budget_map.png", colour_by=dominant, arrows=arrows,

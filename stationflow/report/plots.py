@@ -178,7 +178,13 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
     for ax, c in zip(axes[:, 0], clusters):
         d = table[table["cluster"] == c]
         tt = pd.DatetimeIndex(d["time"])
-        tt = (tt.tz_convert(tz) if tz else tt.tz_convert("UTC")).tz_localize(None)
+        if tz:
+            from ..ingest import _timezone
+
+            tt = tt.tz_convert(_timezone(tz))
+        else:
+            tt = tt.tz_convert("UTC")
+        tt = tt.tz_localize(None)
         cols = {k: d[k].to_numpy(float) for k in names + tuple(f"{k}_se" for k in names)}
         reg = d["regime"].astype(str).to_numpy()
         if len(d) > 1500:  # long records: block means keep the figure legible and fast
@@ -208,7 +214,7 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
     handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
     axes[-1, 0].legend(handles=handles, loc="lower right", fontsize=7, ncol=3, frameon=False, title="regime (shading)",
                        title_fontsize=7)
-    axes[-1, 0].set_xlabel(f"time ({tz or 'UTC'})")
+    axes[-1, 0].set_xlabel(f"local time ({tz})" if tz else "time (UTC)")
     fig.suptitle("Budget per cluster: tendency = advection + residual (bands: 95 %)", fontsize=10)
     fig.autofmt_xdate()
     fig.tight_layout()
