@@ -141,6 +141,10 @@ def run_budget(obs: str | Path, stations: str | Path | None, config: Config, *, 
     return budget_from_check(chk, config, variable=variable, progress=progress)
 
 
+#: cluster-steps per automatic time partition (when budget.chunk is not set)
+AUTO_CHUNK = 1_000_000
+
+
 @dataclass
 class BudgetPlan:
     """Everything the budget of one variable needs besides the observations themselves.
@@ -347,7 +351,10 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
     progress("fitting planes and computing the budget")
     chunk = config["budget"]["chunk"]
     n = len(plan.times)
-    steps = int(align.parse_duration(chunk) / plan.interval) if chunk else n
+    if chunk:
+        steps = int(align.parse_duration(chunk) / plan.interval)
+    else:  # automatic: partitions of about AUTO_CHUNK cluster-steps bound the intermediates (same results)
+        steps = max(4 * plan.halo, AUTO_CHUNK // max(1, len(plan.members)))
     pieces = []
     for first, last in partitions(n, steps):  # a few large partitions: memory stays bounded
         pieces.append(run_partition(plan, first, last))
