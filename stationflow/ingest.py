@@ -630,8 +630,9 @@ def _load_netcdf(p: Path, cfg: Config):
             for name in ("lat", "latitude", "lon", "longitude", "alt", "altitude", "elevation"):
                 if name in dset:
                     canon = {"lat": "latitude", "lon": "longitude", "alt": "elevation", "altitude": "elevation"}.get(name, name)
-                    vals = np.broadcast_to(np.asarray(dset[name].values, float).reshape(-1)[: max(nt, 1)] if dset[name].size == nt else np.asarray(dset[name].values, float).reshape(-1)[0], (nt,))
-                    data[canon] = vals
+                    raw = np.asarray(dset[name].values, float).reshape(-1)
+                    # a coordinate may be stored per record or once per file
+                    data[canon] = raw if raw.size == nt else np.full(nt, raw[0])
             for src, canon in mapping.items():
                 if src in dset and canon not in V.ID_COLUMNS:
                     data[canon] = np.asarray(dset[src].values, float).reshape(nt)
@@ -771,7 +772,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     good = out[keep].copy()
     good_lines = np.asarray(lines)[keep]
     good_files = np.asarray(files)[keep]
-    good, dup_rejects, collapsed = _deduplicate(good, good_lines, good_files, var_cols, wide=wide_rows is not None)
+    good, dup_rejects, collapsed = _deduplicate(good, good_lines, good_files, var_cols)
     rej_rows.extend(dup_rejects)
     rejected_all = list(rejected) + rej_rows
     rej = pd.DataFrame(rejected_all, columns=["file", "line", "reason"])
@@ -820,41 +821,39 @@ def _stations_from_rows(frame, out, lines, files, reasons) -> pd.DataFrame:
     return _validate_stations(res, str(files[0]) if len(files) else "observations", uniq["__line__"].to_numpy())
 
 
-def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_cols: list[str], *, wide: bool):
-    """Collapse identical (station, time) repeats; reject conflicting ones."""
+def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_cols: list[str]):
+    """Collapse identical (station, time) repeats; reject every row of a conflicting group.
+
+    Vectorised over rows; only the rejected rows are turned into messages.
+    """
     dup = good.duplicated(["station_id", "time"], keep=False).to_numpy()
     if not dup.any():
         return good, [], 0
-    sub = good[dup]
-    vals = sub[var_cols].to_numpy(float)
-    grp = sub.groupby(["station_id", "time"], sort=False).ngroup().to_numpy()
-    order = np.argsort(grp, kind="stable")
-    first_of = np.full(grp.max() + 1, -1)
-    first_of[grp[order][::-1]] = order[::-1]
+    sub_idx = np.flatnonzero(dup)
+    vals = good.iloc[sub_idx][var_cols].to_numpy(float)
+    grp = good.iloc[sub_idx].groupby(["station_id", "time"], sort=False).ngroup().to_numpy()
+    n_grp = grp.max() + 1
+    first_of = np.full(n_grp, -1)
+    first_of[grp[::-1]] = np.arange(len(grp))[::-1]  # first row of each group
     ref = vals[first_of[grp]]
     same = np.all((vals == ref) | (np.isnan(vals) & np.isnan(ref)), axis=1)
-    conflict_group = np.zeros(grp.max() + 1, bool)
-    np.logical_or.at(conflict_group, grp, ~same)
-    sub_idx = np.flatnonzero(dup)
+    conflict = np.zeros(n_grp, bool)
+    np.logical_or.at(conflict, grp, ~same)
+    in_conflict = conflict[grp]
+    is_repeat = ~in_conflict & (first_of[grp] != np.arange(len(grp)))
     drop = np.zeros(len(good), bool)
+    drop[sub_idx[in_conflict | is_repeat]] = True
     rejects = []
-    sub_lines = lines[dup]
-    sub_files = files[dup]
-    collapsed = 0
-    lines_by_group: dict[int, list[int]] = {}
-    for j in np.flatnonzero(conflict_group[grp]):
-        lines_by_group.setdefault(int(grp[j]), []).append(int(sub_lines[j]))
-    for j in range(len(sub_idx)):
-        g = int(grp[j])
-        if conflict_group[g]:
-            drop[sub_idx[j]] = True
-            others = [ln for ln in lines_by_group[g] if ln != sub_lines[j]]
+    c_rows = np.flatnonzero(in_conflict)
+    if c_rows.size:
+        sub_lines = np.asarray(lines)[sub_idx]
+        sub_files = np.asarray(files)[sub_idx]
+        by_group = pd.Series(sub_lines[c_rows]).groupby(grp[c_rows]).apply(list).to_dict()
+        for j in c_rows:  # one message per rejected row
+            others = [ln for ln in by_group[grp[j]] if ln != sub_lines[j]]
             rejects.append((sub_files[j], int(sub_lines[j]),
                             f"conflicts with line {', '.join(map(str, others[:5]))} (same station and time, different values)"))
-        elif first_of[g] != j:
-            drop[sub_idx[j]] = True
-            collapsed += 1
-    return good[~drop], rejects, collapsed
+    return good[~drop], rejects, int(is_repeat.sum())
 
 
 def read(
