@@ -173,6 +173,8 @@ def _check_summary(chk, out: Path) -> str:
     import numpy as np
     import pandas as pd
 
+    from .align import format_duration
+
     d = chk.data
     o = d.observations
     acc = d.accounting
@@ -181,11 +183,16 @@ def _check_summary(chk, out: Path) -> str:
                                                      if acc["duplicates_collapsed"] else "")]
     if len(o):
         lines.append(f"time span: {pd.Timestamp(o['time'].min()):%Y-%m-%d %H:%M} to {pd.Timestamp(o['time'].max()):%Y-%m-%d %H:%M} UTC")
-        step = o.sort_values(["station_id", "time"]).groupby("station_id")["time"].apply(lambda s: s.diff().median())
+        srt = o[["station_id", "time"]].sort_values(["station_id", "time"])
+        gaps = srt["time"].diff().where(srt["station_id"] == srt["station_id"].shift())
+        step = gaps.groupby(srt["station_id"]).median()
         common = step.mode().iloc[0] if len(step.dropna()) else None
         odd = step[step != common].dropna()
-        lines.append(f"reporting interval: {common} at {int((step == common).sum())} stations"
-                     + ("; others: " + ", ".join(f"{k} {v}" for k, v in odd.head(6).items()) if len(odd) else ""))
+        def fmt(td) -> str:
+            return format_duration(td) if pd.notna(td) else "single report"
+
+        lines.append(f"reporting interval: {fmt(common)} at {int((step == common).sum())} stations"
+                     + ("; others: " + ", ".join(f"{k} {fmt(v)}" for k, v in odd.head(6).items()) if len(odd) else ""))
     lines.append("completeness (good / present / expected):")
     n_exp = max(1, len(d.stations)) * max(1, o["time"].nunique())
     for v in d.variables:

@@ -293,7 +293,8 @@ def build_network(stations: pd.DataFrame, config: Config | None = None) -> Netwo
         unknown = [t for t in targets if t not in ids]
         if unknown:
             raise GeometryError(f"network.targets: {unknown[0]!r} is not a station in the stations file")
-        tidx = np.array([np.flatnonzero(surface == ids.index(t))[0] if ids.index(t) in surface else -1 for t in targets])
+        position = {ids[j]: k for k, j in enumerate(surface)}  # station id -> index among surface stations
+        tidx = np.array([position.get(t, -1) for t in targets])
         if np.any(tidx < 0):
             raise GeometryError("network.targets must be surface stations (not upper mast sensors)")
         if len(surface) < 3:

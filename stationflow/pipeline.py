@@ -215,7 +215,8 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
     index = {s: i for i, s in enumerate(ids)}
     ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
-    members = [np.array([index[net.stations["station_id"].iloc[j]] for j in net.members[i]]) for i in ok_rows]
+    to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
+    members = [to_full[net.members[i]] for i in ok_rows]
     settings = BudgetSettings(
         sigma=default_sigma(var, config), wind_sigma=float(config["uncertainty"]["wind_component"]),
         calibration=float(config["uncertainty"]["calibration"]), error_model=config["uncertainty"]["gradient_error"],
