@@ -467,7 +467,10 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
 
 
 def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, cfg: Config, th: dict) -> None:
-    from .align import bin_index, infer_interval
+    """Run the buddy test on bin means of the surface stations and map the result back to the rows."""
+    import warnings
+
+    from .align import bin_index, infer_interval, to_grid
     from .geometry import assign_roles, project
 
     qcfg = cfg["qc"]
@@ -480,61 +483,45 @@ def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, 
     interval = infer_interval(obs)
     t0 = obs["time"].min().ceil(interval)
     rows = bin_index(obs["time"], t0, interval)
-    n_t = int(rows.max()) + 1
     col = pd.Index(surface_ids).get_indexer(obs["station_id"])
     inside = (col >= 0) & (rows >= 0)
-    flat = rows * len(surface_ids) + col
-    size = n_t * len(surface_ids)
+    flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
     sx, sy = x[surface], y[surface]
     sz = st["elevation"].to_numpy(float)[surface]
-    times = pd.date_range(t0, periods=n_t, freq=interval)
-    lat0, lon0 = float(st["latitude"].mean()), float(st["longitude"].mean())
-    night = solar_elevation(times, lat0, lon0) < 0
-    light = np.ones(n_t, bool)
-    if "wind_speed" in arr:
-        s = arr["wind_speed"]
-        ok = inside & np.isfinite(s)
-        grid = np.full(size, np.nan)
-        sums = np.bincount(flat[ok], weights=s[ok], minlength=size)
-        cnt = np.bincount(flat[ok], minlength=size)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            grid = (sums / cnt).reshape(n_t, -1)
-        with np.errstate(all="ignore"):
-            import warnings
-
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                med = np.nanmedian(grid, axis=1)
-        light = ~(med >= qcfg["spatial_light_wind"])
-    relaxed = night & light
     names = [v for v in arr if v in SPATIAL_VARIABLES or _is_pm(v)]
+    frame = obs[["station_id", "time"] + [v for v in names + ["wind_speed"] if v in obs]]
+    start, end = t0, obs["time"].max()
+    lat0, lon0 = float(st["latitude"].mean()), float(st["longitude"].mean())
+    light = None
+    if "wind_speed" in arr:
+        wind = to_grid(frame, surface_ids, ["wind_speed"], interval=interval, start=start, end=end)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            light = ~(np.nanmedian(wind.values["wind_speed"], axis=1) >= qcfg["spatial_light_wind"])
     sigma = cfg["uncertainty"]["sensor"]
     for v in names:
-        xv = arr[v]
-        already = np.zeros(xv.size, bool)
+        already = np.zeros(len(obs), bool)
         for m in fired[v].values():
             already |= m
-        ok = inside & np.isfinite(xv) & ~already
-        sums = np.bincount(flat[ok], weights=xv[ok], minlength=size)
-        cnt = np.bincount(flat[ok], minlength=size)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            grid = (sums / cnt).reshape(n_t, -1)
-        data = np.log(np.fmax(grid, 0.5)) if _is_pm(v) else grid
+        grid = to_grid(frame, surface_ids, [v], interval=interval, start=start, end=end, usable={v: ~already})
+        night = solar_elevation(grid.times, lat0, lon0) < 0
+        relaxed = night & (light if light is not None else True)
+        data = grid.values[v]
+        data = np.log(np.fmax(data, 0.5)) if _is_pm(v) else data
         floor = th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
-        import warnings
-
         opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
                     suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed,
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
             passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, **opts)
-        fail = np.zeros(xv.size, bool)
-        badm = np.zeros(xv.size, bool)
+        finite = np.isfinite(arr[v])
+        fail = np.zeros(len(obs), bool)
+        badm = np.zeros(len(obs), bool)
         fail[inside] = ~passed.reshape(-1)[flat[inside]]
         badm[inside] = bad.reshape(-1)[flat[inside]]
-        fired[v]["spatial"] = fail & np.isfinite(xv)
-        fired[v]["spatial_bad"] = badm & np.isfinite(xv)
+        fired[v]["spatial"] = fail & finite
+        fired[v]["spatial_bad"] = badm & finite
 
 
 def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:
