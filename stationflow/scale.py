@@ -82,17 +82,4 @@ def run_budget_dask(obs: str | Path, stations: str | Path | None, config: Config
     return budget_on_dask(plan, chk, scheduler=scheduler, partition=partition, n_workers=n_workers, progress=progress)
 
 
-def run_chunked(obs: str | Path, stations: str | Path | None, config: Config, *, chunk: str, variable: str | None = None):
-    """A local run in time chunks of ``chunk`` (the same as ``budget.chunk``)."""
-    from .pipeline import budget_from_check, run_check
-
-    data = config.to_dict()
-    data["budget"]["chunk"] = chunk
-    from .config import from_dict
-
-    cfg = from_dict(data)
-    cfg.source = config.source
-    return budget_from_check(run_check(obs, stations, cfg), cfg, variable=variable)
-
-
-__all__ = ["budget_on_dask", "run_budget_dask", "run_chunked"]
+__all__ = ["budget_on_dask", "run_budget_dask"]

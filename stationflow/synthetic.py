@@ -177,8 +177,7 @@ class PlumeField(Field):
         ex, ey = u0 / nrm, v0 / nrm  # band moves along the initial wind
         s = (x - self.axis_start[0] - x0) * ex + (y - self.axis_start[1] - y0) * ey
         band = self.peak * np.exp(-0.5 * (s / self.width_m) ** 2)
-        _, _, _, si = self._lin._integrals()
-        tg = self._lin._integrals()[0]
+        tg, _, _, si = self._lin._integrals()
         blob = np.exp(-0.5 * ((x - self.blob_centre[0]) ** 2 + (y - self.blob_centre[1]) ** 2) / self.blob_width_m ** 2)
         return self.background(t) + band + np.interp(t, tg, si) * blob
 
