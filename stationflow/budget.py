@@ -178,22 +178,32 @@ def classify(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, 
     mixed).  One significant: that one, if it is also the larger; else mixed.
     Neither: steady (too small to tell).  Any term missing: undetermined.
     """
+    return np.asarray(REGIMES, dtype=object)[classify_codes(
+        tendency, advection, residual, advection_se, residual_se, significance=significance, dominance=dominance,
+        min_rate=min_rate)]
+
+
+def classify_codes(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, advection_se: np.ndarray,
+                   residual_se: np.ndarray, *, significance: float = 2.0, dominance: float = 0.67,
+                   min_rate: float = 0.0) -> np.ndarray:
+    """:func:`classify` as int8 codes into :data:`REGIMES` (compact for large runs)."""
     a, r = np.abs(advection), np.abs(residual)
-    with np.errstate(invalid="ignore"):
+    with np.errstate(invalid="ignore", divide="ignore"):
         sig_a = a > np.fmax(significance * advection_se, min_rate)
         sig_r = r > np.fmax(significance * residual_se, min_rate)
         share = a / (a + r)
-    out = np.full(np.shape(tendency), "steady", dtype=object)
+    adv, ins, mix, steady, undet = range(len(REGIMES))
     both = sig_a & sig_r
-    out[both & (share >= dominance)] = "advective"
-    out[both & (share <= 1 - dominance)] = "in_situ"
-    out[both & (share > 1 - dominance) & (share < dominance)] = "mixed"
+    out = np.full(np.shape(tendency), steady, dtype=np.int8)
+    out[both & (share >= dominance)] = adv
+    out[both & (share <= 1 - dominance)] = ins
+    out[both & (share > 1 - dominance) & (share < dominance)] = mix
     only_a = sig_a & ~sig_r
     only_r = sig_r & ~sig_a
-    out[only_a] = np.where(share[only_a] >= 0.5, "advective", "mixed")
-    out[only_r] = np.where(share[only_r] <= 0.5, "in_situ", "mixed")
+    out[only_a] = np.where(share[only_a] >= 0.5, adv, mix)
+    out[only_r] = np.where(share[only_r] <= 0.5, ins, mix)
     undetermined = ~(np.isfinite(tendency) & np.isfinite(advection) & np.isfinite(advection_se) & np.isfinite(residual_se))
-    out[undetermined] = "undetermined"
+    out[undetermined] = undet
     return out
 
 
@@ -229,7 +239,7 @@ def compute_budget(
     Returns a dict of (n_times, n_clusters) arrays: value, tendency,
     advection, residual and their standard errors [unit h-1], grad_x,
     grad_y [unit km-1] and errors, u, v [m s-1] and errors, n_used, dof,
-    rms, regime, divergence and vorticity [s-1] with errors (plane fits of u
+    rms, regime (int8 codes into :data:`REGIMES`), divergence and vorticity [s-1] with errors (plane fits of u
     and v over the same clusters), and (with regression) vertical_gradient
     [unit per 100 m].
     """
@@ -299,7 +309,7 @@ def compute_budget(
         kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations))
         for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
             out[name] = kin[name]
-    out["regime"] = classify(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
+    out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
                              significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
     return out
 
@@ -308,7 +318,8 @@ def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: di
                         min_steps: int = 3, max_lines: int = 12) -> list[dict]:
     """Runs of one regime (advective, in_situ, mixed) per cluster, longest first.
 
-    ``terms`` holds (n_times, n_clusters) arrays ``regime``, ``tendency``,
+    ``terms`` holds (n_times, n_clusters) arrays ``regime`` (names, or int8
+    codes into :data:`REGIMES`), ``tendency``,
     ``advection``, ``residual`` and their ``_se``.  Vectorised over the
     whole record; only the selected periods are averaged one by one.
     """
@@ -316,7 +327,10 @@ def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: di
     n_t, n_c = reg.shape
     if n_t == 0 or n_c == 0:
         return []
-    codes = pd.Categorical(reg.T.reshape(-1), categories=list(REGIMES)).codes.astype(np.int16)  # cluster-major
+    if reg.dtype.kind in "iu":  # int8 codes into REGIMES
+        codes = reg.T.reshape(-1).astype(np.int16)  # cluster-major
+    else:
+        codes = pd.Categorical(reg.T.reshape(-1), categories=list(REGIMES)).codes.astype(np.int16)
     new = np.ones(codes.size, bool)
     new[1:] = codes[1:] != codes[:-1]
     new[::n_t] = True  # a run never crosses clusters
@@ -339,12 +353,11 @@ def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: di
                 chosen.append(lst.pop(0))
     out = []
     cols = ("tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se")
-    flat = {k: np.asarray(terms[k]).T.reshape(-1) for k in cols}
     for r in chosen:  # at most max_lines periods
-        sl = slice(starts[r], starts[r] + lengths[r])
-        c = starts[r] // n_t
+        c, t0 = divmod(int(starts[r]), n_t)
+        sl = slice(t0, t0 + int(lengths[r]))
         with np.errstate(invalid="ignore"):
-            m = {k: float(np.nanmean(flat[k][sl])) for k in cols}
+            m = {k: float(np.nanmean(np.asarray(terms[k][sl, c], dtype=float))) for k in cols}
         regime = REGIMES[kind[r]]
         key = {"advective": "advection", "in_situ": "residual", "mixed": "tendency"}[regime]
         out.append({"cluster": str(clusters[c]), "regime": regime, "start": times[starts[r] % n_t],

@@ -290,24 +290,26 @@ def budget(
             --obs sample_data/frost/observations.csv \\
             --config sample_data/frost/config.toml --out frost_out
     """
-    from .pipeline import run_budget
+    from .pipeline import budget_to_files, run_check
     from .report.outputs import write_budget
 
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
         cfg = _config(config)
+        if scheduler and engine != Engine.dask:
+            from .errors import ConfigError
+
+            raise ConfigError("--scheduler goes with --engine dask")
+        chk = run_check(obs, stations, cfg, progress=report)
         if engine == Engine.dask:
-            from .scale import run_budget_dask
+            from .scale import budget_to_files_dask
 
-            run = run_budget_dask(obs, stations, cfg, variable=variable, scheduler=scheduler, progress=report)
+            run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
         else:
-            if scheduler:
-                from .errors import ConfigError
-
-                raise ConfigError("--scheduler goes with --engine dask")
-            run = run_budget(obs, stations, cfg, variable=variable, progress=report)
-        report("writing outputs")
-        _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv)
+            run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report)
+        report("writing the report")
+        _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
+                                tables_written=True)
         if not quiet:
             typer.echo(_budget_summary(run, out, notes))
 
@@ -319,11 +321,10 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
 
     from .align import format_duration
 
-    t = run.table
-    counts = t["regime"].value_counts()
+    counts = run.summary.regime_counts()
     fitted = f" (fitted as {run.quantity})" if run.quantity != run.variable else ""
     lines = [f"{run.variable}{fitted} over {len(run.network.usable)} clusters, "
-             f"{t['time'].nunique()} times of {format_duration(run.interval)} (window {format_duration(run.window)})",
+             f"{len(run.summary.times)} times of {format_duration(run.interval)} (window {format_duration(run.window)})",
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")
@@ -353,7 +354,7 @@ def demo(
         stationflow demo --scenario frost --out demo_output/frost
     """
     from . import synthetic
-    from .pipeline import run_budget
+    from .pipeline import budget_to_files, run_check
     from .report.outputs import write_budget
 
     def job(report):
@@ -364,10 +365,11 @@ def demo(
             make, write = synthetic.SCENARIOS[scenario.value]
             write(make(), folder)
         cfg = _config(folder / "config.toml")
-        run = run_budget(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
-        report("writing outputs")
+        chk = run_check(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
+        run = budget_to_files(chk, cfg, out, progress=report)
+        report("writing the report")
         _, notes = write_budget(out, run, inputs={"observations": folder / "observations.csv",
-                                                  "stations": folder / "stations.csv"})
+                                                  "stations": folder / "stations.csv"}, tables_written=True)
         if not quiet:
             typer.echo(f"scenario: {scenario.value} ({folder})")
             typer.echo(_budget_summary(run, out, notes))

@@ -17,9 +17,10 @@ import numpy as np
 import pandas as pd
 
 from . import align, geometry, ingest, qc
-from .budget import REGIMES, BudgetSettings, compute_budget, periods_from_arrays
+from .budget import REGIMES, BudgetSettings, compute_budget
 from .config import Config
 from .errors import ConfigError, GeometryError
+from .summary import BudgetSummary
 from .thermo import KAPPA, P_REF, standard_pressure
 from .variables import CANONICAL, si_unit
 
@@ -46,13 +47,25 @@ class CheckResult:
 
 
 @dataclass
+class Layout:
+    """The shape and labels of a budget: analysis times, clusters and what was budgeted."""
+
+    times: pd.DatetimeIndex
+    clusters: pd.DataFrame  # cluster, stations, latitude, longitude (centroid), ...
+    convergence: np.ndarray  # meridian convergence at each cluster centroid [degree]
+    unit: str
+    variable: str
+    quantity: str
+
+
+@dataclass
 class BudgetRun:
     """The budget of one variable: the xarray dataset, the tidy table and main periods."""
 
     check: CheckResult
     network: geometry.Network
-    dataset: object  # xarray.Dataset
-    table: pd.DataFrame
+    dataset: object  # xarray.Dataset; None when the budget was streamed to files
+    table: pd.DataFrame | None  # None when the budget was streamed to files
     periods: list[dict]
     variable: str
     quantity: str
@@ -61,6 +74,8 @@ class BudgetRun:
     window: pd.Timedelta
     settings: BudgetSettings
     extras: dict = field(default_factory=dict)
+    summary: BudgetSummary | None = None
+    layout: Layout | None = None
 
 
 def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, progress: Progress = _noop) -> CheckResult:
@@ -173,6 +188,12 @@ class BudgetPlan:
     window: pd.Timedelta
     times: pd.DatetimeIndex
     frame: pd.DataFrame
+
+    @property
+    def layout(self) -> Layout:
+        """Times, clusters and labels of this budget."""
+        conv = _convergence(self.clusters["latitude"].to_numpy(), self.clusters["longitude"].to_numpy(), self.network.crs)
+        return Layout(self.times, self.clusters, conv, self.unit, self.variable, self.quantity)
 
     @property
     def halo(self) -> int:
@@ -327,39 +348,126 @@ def run_partition(plan: BudgetPlan, first: int, last: int, rows: pd.DataFrame | 
     return {k: v[core] for k, v in terms.items()}
 
 
-def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckResult) -> BudgetRun:
-    """Join partition results into the dataset, table and main periods."""
-    keys = list(pieces[0].keys())
-    terms = {}
-    for k in keys:  # join one variable at a time and free the pieces as we go
-        terms[k] = np.concatenate([p.pop(k) for p in pieces], axis=0) if len(pieces) > 1 else pieces[0].pop(k)
-    extras = {}
-    if "inversion" in terms:
-        extras["inversion"] = terms["inversion"][:, 0].copy()
-    net = plan.network
-    ds = to_dataset(terms, plan.times, plan.clusters, conv_at=lambda la, lo: _convergence(la, lo, net.crs),
-                    unit=plan.unit, variable=plan.variable, quantity=plan.quantity)
-    table = to_table(ds)
-    periods = periods_from_arrays(plan.times, plan.clusters["cluster"].to_numpy(), terms, unit=f"{plan.unit} h-1")
-    return BudgetRun(chk, net, ds, table, periods, plan.variable, plan.quantity, plan.unit, plan.interval, plan.window,
-                     plan.settings, extras)
+class MemorySink:
+    """Collects partition results in memory for :func:`assemble` (the Python API's default)."""
+
+    def __init__(self) -> None:
+        self.pieces: list[dict[str, np.ndarray]] = []
+
+    def add(self, first: int, block: dict[str, np.ndarray]) -> None:
+        self.pieces.append(block)
 
 
-def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
-                      progress: Progress = _noop) -> BudgetRun:
-    """The budget stages on an already checked data set (in time chunks when ``budget.chunk`` is set)."""
-    plan = plan_budget(chk, config, variable=variable, progress=progress)
-    progress("fitting planes and computing the budget")
+def derive(terms: dict[str, np.ndarray], convergence: np.ndarray) -> dict[str, np.ndarray]:
+    """The output variables of a partition: the terms plus true-north directions, regime as int8 codes.
+
+    ``convergence`` is the meridian convergence at each cluster centroid; grid
+    bearings minus it are true bearings.
+    """
+    from .variables import wind_direction
+
+    out = dict(terms)
+    reg = np.asarray(out["regime"])
+    if reg.dtype.kind not in "iu":
+        out["regime"] = pd.Categorical(reg.reshape(-1), categories=list(REGIMES)).codes.astype(np.int8).reshape(reg.shape)
+    conv = np.asarray(convergence)[None, :]
+    out["wind_from_direction"] = (wind_direction(terms["u"], terms["v"]) - conv) % 360.0
+    with np.errstate(invalid="ignore"):
+        bearing = np.rad2deg(np.arctan2(terms["grad_x"], terms["grad_y"]))
+    out["gradient_bearing"] = (bearing - conv) % 360.0
+    return out
+
+
+def run_partitions(plan: BudgetPlan, sink, config: Config, *, progress: Progress = _noop) -> BudgetSummary:
+    """Compute every time partition of ``plan`` in order and hand it to ``sink.add(first, derived)``.
+
+    Partitions are ``budget.chunk`` long, or about :data:`AUTO_CHUNK`
+    cluster-steps when it is not set; results do not depend on the choice.
+    Returns the summary the report needs.
+    """
     chunk = config["budget"]["chunk"]
     n = len(plan.times)
     if chunk:
         steps = int(align.parse_duration(chunk) / plan.interval)
     else:  # automatic: partitions of about AUTO_CHUNK cluster-steps bound the intermediates (same results)
         steps = max(4 * plan.halo, AUTO_CHUNK // max(1, len(plan.members)))
-    pieces = []
-    for first, last in partitions(n, steps):  # a few large partitions: memory stays bounded
-        pieces.append(run_partition(plan, first, last))
-    return assemble(plan, pieces, chk)
+    layout = plan.layout
+    summary = BudgetSummary.allocate(plan.times, plan.clusters)
+    parts = partitions(n, steps)
+    for i, (first, last) in enumerate(parts):
+        block = derive(run_partition(plan, first, last), layout.convergence)
+        summary.add(first, block)
+        sink.add(first, block)
+        if len(parts) > 1:
+            progress(f"partition {i + 1} of {len(parts)}")
+    return summary
+
+
+def finish(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, pieces: list[dict[str, np.ndarray]] | None
+           ) -> BudgetRun:
+    """The :class:`BudgetRun`: with the dataset and table when ``pieces`` (all partitions) are given."""
+    layout = plan.layout
+    ds = table = None
+    if pieces is not None:
+        keys = list(pieces[0].keys())
+        terms = {}
+        for k in keys:  # join one variable at a time and free the pieces as we go
+            terms[k] = np.concatenate([p.pop(k) for p in pieces], axis=0) if len(pieces) > 1 else pieces[0].pop(k)
+        ds = to_dataset(terms, layout)
+        table = to_table(ds)
+    extras = {"inversion": summary.inversion.copy()} if summary.inversion is not None else {}
+    periods = summary.periods(f"{plan.unit} h-1")
+    return BudgetRun(chk, plan.network, ds, table, periods, plan.variable, plan.quantity, plan.unit, plan.interval,
+                     plan.window, plan.settings, extras, summary, layout)
+
+
+def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckResult) -> BudgetRun:
+    """Join partition results (raw terms, in time order) into the dataset, table and main periods."""
+    layout = plan.layout
+    summary = BudgetSummary.allocate(plan.times, plan.clusters)
+    derived, first = [], 0
+    for p in pieces:
+        block = derive(p, layout.convergence)
+        summary.add(first, block)
+        first += block["regime"].shape[0]
+        derived.append(block)
+    return finish(plan, chk, summary, derived)
+
+
+def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
+                      progress: Progress = _noop, sink=None) -> BudgetRun:
+    """The budget stages on an already checked data set, one time partition at a time.
+
+    Without ``sink`` the partitions are kept and joined into ``run.dataset``
+    and ``run.table``.  With a sink (for example
+    :class:`stationflow.report.stream.BudgetFiles`) each partition goes to
+    ``sink.add(first, derived)`` and is dropped; the run then carries only
+    the summary (``dataset`` and ``table`` are None), so memory stays bounded.
+    """
+    plan = plan_budget(chk, config, variable=variable, progress=progress)
+    progress("fitting planes and computing the budget")
+    memory = sink is None
+    target = MemorySink() if memory else sink
+    summary = run_partitions(plan, target, config, progress=progress)
+    return finish(plan, chk, summary, target.pieces if memory else None)
+
+
+def budget_to_files(chk: CheckResult, config: Config, out: str | Path, *, variable: str | None = None,
+                    csv: bool = False, progress: Progress = _noop) -> BudgetRun:
+    """The budget written partition by partition to ``out``/budget.parquet, budget.nc (and budget.csv).
+
+    Memory is bounded by one partition (plus the one being written); the
+    returned run has ``summary`` but no ``dataset`` or ``table``.  Use
+    :func:`stationflow.report.outputs.write_budget` with
+    ``tables_written=True`` for the report and figures.
+    """
+    from .report.stream import BudgetFiles
+
+    plan = plan_budget(chk, config, variable=variable, progress=progress)
+    progress("fitting planes and computing the budget")
+    with BudgetFiles(out, plan.layout, csv=csv) as sink:
+        summary = run_partitions(plan, sink, config, progress=progress)
+    return finish(plan, chk, summary, None)
 
 
 def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:
@@ -421,55 +529,55 @@ def _units(unit: str) -> dict[str, str]:
     }
 
 
-def to_dataset(terms: dict, times: pd.DatetimeIndex, clusters: pd.DataFrame, *, conv_at, unit: str, variable: str,
-               quantity: str):
-    """The budget as a CF-style ``xarray.Dataset`` with dims (time, cluster)."""
+def variable_attrs(name: str, layout: Layout) -> dict:
+    """CF attributes of one output variable (``long_name``, ``units``, flags, ``standard_name``)."""
+    units = _units(layout.unit)
+    attrs: dict = {"long_name": LONG_NAMES.get(name, name)}
+    if name in units:
+        attrs["units"] = units[name]
+    if name == "regime":  # CF flags: small integer codes with flag_values / flag_meanings
+        attrs["flag_values"] = np.arange(len(REGIMES), dtype=np.int8)
+        attrs["flag_meanings"] = " ".join(REGIMES)
+    if name == "value":
+        if layout.quantity == "potential_temperature":
+            attrs["long_name"] = "potential temperature at the cluster centre"
+            attrs["standard_name"] = "air_potential_temperature"
+        elif layout.variable in CANONICAL:
+            attrs["standard_name"] = layout.variable
+    return attrs
+
+
+TIME_ATTRS = {"long_name": "end of the analysis interval (UTC)", "standard_name": "time"}
+COORD_ATTRS = {
+    "cluster": {"long_name": "cluster id"},
+    "stations": {"long_name": "member station ids joined by +"},
+    "latitude": {"units": "degrees_north", "standard_name": "latitude", "long_name": "cluster centroid latitude"},
+    "longitude": {"units": "degrees_east", "standard_name": "longitude", "long_name": "cluster centroid longitude"},
+}
+
+
+def global_attrs(layout: Layout) -> dict:
+    """Global attributes of the NetCDF output."""
+    return {"Conventions": "CF-1.8", "title": f"stationflow budget of {layout.variable}", "variable": layout.variable,
+            "quantity": layout.quantity, "source": "stationflow"}
+
+
+def to_dataset(terms: dict, layout: Layout):
+    """The budget as a CF-style ``xarray.Dataset`` with dims (time, cluster); ``terms`` from :func:`derive`."""
     import xarray as xr
 
-    from .variables import wind_direction
-
-    units = _units(unit)
-    conv = conv_at(clusters["latitude"].to_numpy(), clusters["longitude"].to_numpy())
-    dirs = wind_direction(terms["u"], terms["v"])
-    terms = dict(terms)
-    terms["wind_from_direction"] = (dirs - conv[None, :]) % 360.0
-    bearing = np.rad2deg(np.arctan2(terms["grad_x"], terms["grad_y"]))
-    terms["gradient_bearing"] = (bearing - conv[None, :]) % 360.0
+    clusters = layout.clusters
     data_vars = {}
     for name, arr in terms.items():
-        attrs = {"long_name": LONG_NAMES.get(name, name)}
-        if name in units:
-            attrs["units"] = units[name]
-        if name == "regime":
-            # CF flags: small integer codes with flag_values / flag_meanings (compact for large runs)
-            a = np.asarray(arr)
-            codes = pd.Categorical(a.reshape(-1), categories=list(REGIMES)).codes.astype(np.int8).reshape(a.shape)
-            attrs["flag_values"] = np.arange(len(REGIMES), dtype=np.int8)
-            attrs["flag_meanings"] = " ".join(REGIMES)
-            data_vars[name] = (("time", "cluster"), codes, attrs)
-        else:
-            data_vars[name] = (("time", "cluster"), np.asarray(arr), attrs)
-    ds = xr.Dataset(
-        data_vars,
-        coords={
-            "time": ("time", pd.DatetimeIndex(times).tz_convert("UTC").tz_localize(None).to_numpy("datetime64[ns]"),
-                     {"long_name": "end of the analysis interval (UTC)", "standard_name": "time"}),
-            "cluster": ("cluster", clusters["cluster"].astype(str).to_numpy(), {"long_name": "cluster id"}),
-            "stations": ("cluster", clusters["stations"].astype(str).to_numpy(), {"long_name": "member station ids joined by +"}),
-            "latitude": ("cluster", clusters["latitude"].to_numpy(float), {"units": "degrees_north", "standard_name": "latitude",
-                                                                           "long_name": "cluster centroid latitude"}),
-            "longitude": ("cluster", clusters["longitude"].to_numpy(float), {"units": "degrees_east", "standard_name": "longitude",
-                                                                             "long_name": "cluster centroid longitude"}),
-        },
-        attrs={"Conventions": "CF-1.8", "title": f"stationflow budget of {variable}", "variable": variable,
-               "quantity": quantity, "source": "stationflow"},
-    )
-    if quantity == "potential_temperature":
-        ds["value"].attrs["long_name"] = "potential temperature at the cluster centre"
-        ds["value"].attrs["standard_name"] = "air_potential_temperature"
-    elif variable in CANONICAL:
-        ds["value"].attrs["standard_name"] = variable
-    return ds
+        arr = np.asarray(arr, dtype=np.int8) if name == "regime" else np.asarray(arr)
+        data_vars[name] = (("time", "cluster"), arr, variable_attrs(name, layout))
+    coords = {"time": ("time", pd.DatetimeIndex(layout.times).tz_convert("UTC").tz_localize(None).to_numpy("datetime64[ns]"),
+                       TIME_ATTRS)}
+    for name in ("cluster", "stations"):
+        coords[name] = ("cluster", clusters[name].astype(str).to_numpy(), COORD_ATTRS[name])
+    for name in ("latitude", "longitude"):
+        coords[name] = ("cluster", clusters[name].to_numpy(float), COORD_ATTRS[name])
+    return xr.Dataset(data_vars, coords=coords, attrs=global_attrs(layout))
 
 
 TABLE_COLUMNS = ["time", "cluster", "stations", "n_used", "latitude", "longitude", "value", "tendency", "advection",

@@ -6,7 +6,9 @@ clusters, settings: :func:`stationflow.pipeline.plan_budget`); the plan is
 broadcast to the workers once; every time partition, with a halo of
 ``2h + 1`` analysis steps on each side (h = half the window), is aligned,
 fitted and budgeted on a worker (:func:`stationflow.pipeline.run_partition`);
-the client joins the partitions in time order.  Because each partition is
+the client takes the results in time order as they finish and writes each
+partition straight to the output files (a few partitions in flight at a
+time, so neither the client nor the workers hold the whole record).  Because each partition is
 computed with the same pure function and the same grid alignment as a local
 run, the results are identical to the local engine.
 
@@ -45,35 +47,74 @@ def _client(scheduler: str | None, *, n_workers: int = 2):
     return Client(cluster), cluster
 
 
+def _results_in_order(plan, client, parts, *, ahead: int):
+    """Yield (first, terms) per partition in time order, keeping at most ``ahead`` partitions in flight."""
+    from collections import deque
+
+    from .pipeline import partition_rows, run_partition
+
+    light = dataclasses.replace(plan, frame=plan.frame.iloc[:0])  # the rows travel per partition
+    [plan_f] = client.scatter([light], broadcast=True)
+    n = len(plan.times)
+    queue: deque = deque()
+    todo = iter(parts)
+
+    def submit() -> bool:
+        part = next(todo, None)
+        if part is None:
+            return False
+        first, last = part
+        a, b = max(0, first - plan.halo), min(n - 1, last + plan.halo)
+        rows = partition_rows(plan, a, b)  # the partition's rows with their halo
+        queue.append((first, client.submit(run_partition, plan_f, first, last, rows, pure=False)))
+        return True
+
+    for _ in range(ahead):
+        if not submit():
+            break
+    while queue:
+        first, fut = queue.popleft()
+        terms = fut.result()
+        fut.release()
+        submit()
+        yield first, terms
+
+
 def budget_on_dask(plan, chk, *, scheduler: str | None = None, partition: str | None = None, n_workers: int = 2,
-                   progress=lambda _m: None):
-    """Run the partitions of ``plan`` on Dask and assemble the result (a :class:`~stationflow.pipeline.BudgetRun`)."""
-    from .pipeline import assemble, partition_rows, partitions, run_partition
+                   progress=lambda _m: None, sink=None):
+    """Run the partitions of ``plan`` on Dask; a :class:`~stationflow.pipeline.BudgetRun`.
+
+    Each partition's result goes, in time order and as soon as it is
+    ready, to ``sink.add(first, derived)`` (for example the file writer), so
+    results are written partition by partition; without a sink they are
+    joined in memory into ``run.dataset`` and ``run.table``.
+    """
+    from .pipeline import MemorySink, derive, finish, partitions
+    from .summary import BudgetSummary
 
     steps = max(1, int(align.parse_duration(partition or DEFAULT_PARTITION) / plan.interval))
     parts = partitions(len(plan.times), steps)
+    layout = plan.layout
+    summary = BudgetSummary.allocate(plan.times, plan.clusters)
+    target = MemorySink() if sink is None else sink
     client, cluster = _client(scheduler, n_workers=n_workers)
     try:
-        light = dataclasses.replace(plan, frame=plan.frame.iloc[:0])  # the rows travel per partition
-        [plan_f] = client.scatter([light], broadcast=True)
-        futures = []
-        n = len(plan.times)
-        for first, last in parts:
-            a, b = max(0, first - plan.halo), min(n - 1, last + plan.halo)
-            rows = partition_rows(plan, a, b)
-            futures.append(client.submit(run_partition, plan_f, first, last, rows, pure=False))
-        progress(f"computing {len(parts)} partitions on Dask")
-        pieces = client.gather(futures)
+        workers = max(1, len(client.scheduler_info().get("workers", {})) or n_workers)
+        progress(f"computing {len(parts)} partitions on Dask ({workers} workers)")
+        for first, terms in _results_in_order(plan, client, parts, ahead=2 * workers):
+            block = derive(terms, layout.convergence)
+            summary.add(first, block)
+            target.add(first, block)
     finally:
         client.close()
         if cluster is not None:
             cluster.close()
-    return assemble(plan, pieces, chk)
+    return finish(plan, chk, summary, target.pieces if sink is None else None)
 
 
 def run_budget_dask(obs: str | Path, stations: str | Path | None, config: Config, *, variable: str | None = None,
                     scheduler: str | None = None, progress=lambda _m: None, n_workers: int = 2):
-    """The main job with the numeric stages on Dask (``stationflow budget --engine dask``)."""
+    """The main job with the numeric stages on Dask, results in memory (``run.dataset``, ``run.table``)."""
     from .pipeline import plan_budget, run_check
 
     chk = run_check(obs, stations, config, progress=progress)
@@ -82,4 +123,17 @@ def run_budget_dask(obs: str | Path, stations: str | Path | None, config: Config
     return budget_on_dask(plan, chk, scheduler=scheduler, partition=partition, n_workers=n_workers, progress=progress)
 
 
-__all__ = ["budget_on_dask", "run_budget_dask"]
+def budget_to_files_dask(chk, config: Config, out: str | Path, *, variable: str | None = None, csv: bool = False,
+                         scheduler: str | None = None, progress=lambda _m: None, n_workers: int = 2):
+    """``stationflow budget --engine dask``: partitions on Dask, written to ``out`` as they arrive."""
+    from .pipeline import plan_budget
+    from .report.stream import BudgetFiles
+
+    plan = plan_budget(chk, config, variable=variable, progress=progress)
+    partition = config["budget"]["chunk"] or DEFAULT_PARTITION
+    with BudgetFiles(out, plan.layout, csv=csv) as sink:
+        return budget_on_dask(plan, chk, scheduler=scheduler, partition=partition, n_workers=n_workers,
+                              progress=progress, sink=sink)
+
+
+__all__ = ["budget_on_dask", "budget_to_files_dask", "run_budget_dask"]

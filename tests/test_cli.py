@@ -127,9 +127,9 @@ def test_atomic_write_leaves_old_file_on_failure(tmp_path):
 
 
 def test_large_table_goes_to_parquet_only(tmp_path, runner, monkeypatch):
-    from stationflow.report import outputs
+    from stationflow.report import stream
 
-    monkeypatch.setattr(outputs, "CSV_ROW_LIMIT", 100)
+    monkeypatch.setattr(stream, "CSV_ROW_LIMIT", 100)
     args = ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
             "--config", str(FROST / "config.toml")]
     res = runner.invoke(app, args + ["--out", str(tmp_path / "a")])

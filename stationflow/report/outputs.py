@@ -14,9 +14,7 @@ from .. import __version__
 from ..align import format_duration
 from ..budget import describe_period
 from ..geometry import cluster_table
-from . import files
-
-CSV_ROW_LIMIT = 1_000_000
+from . import files, stream
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
 
 
@@ -92,30 +90,40 @@ def write_network(out: Path, network, *, inputs: dict, config, accounting: dict 
     return written
 
 
-def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: bool = True) -> tuple[list[Path], list[str]]:
-    """Every budget output. Returns (paths, notes for the user)."""
+def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: bool = True,
+                 tables_written: bool = False) -> tuple[list[Path], list[str]]:
+    """Every budget output. Returns (paths, notes for the user).
+
+    ``tables_written``: budget.parquet / budget.nc / budget.csv were already
+    streamed by :class:`stationflow.report.stream.BudgetFiles` (the CLI
+    path); otherwise they are written here from ``run.dataset``.
+    """
     from . import plots
 
     out.mkdir(parents=True, exist_ok=True)
     notes: list[str] = []
     written = write_check(out, run.check, inputs=inputs, command="budget")
-    table = run.table
-    written.append(files.write_parquet(table, out / "budget.parquet"))
-    if len(table) <= CSV_ROW_LIMIT or csv:
-        written.append(files.write_csv(table, out / "budget.csv"))
+    summary = run.summary
+    if tables_written:
+        with_csv = stream.csv_wanted(summary.rows, csv)
+        written += [out / n for n in ["budget.parquet", "budget.nc"] + (["budget.csv"] if with_csv else [])]
+        if not with_csv:
+            notes.append(f"budget.csv not written: {summary.rows:,} rows > {stream.CSV_ROW_LIMIT:,}; "
+                         "use budget.parquet or pass --csv")
     else:
-        notes.append(f"budget.csv not written: {len(table):,} rows > {CSV_ROW_LIMIT:,}; use budget.parquet or pass --csv")
-    written.append(files.write_netcdf(run.dataset, out / "budget.nc"))
+        with stream.BudgetFiles(out, run.layout, csv=csv, background=False) as sink:
+            ds = run.dataset
+            sink.add(0, {name: ds[name].values for name in ds.data_vars})
+        written += sink.paths
+        notes += sink.notes
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
     tz = run.check.config["observations"]["timezone"]
     lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     figs: list[tuple[str, Path]] = []
     if report:
         local = None if tz.strip().upper() in ("UTC", "Z", "GMT") else tz
-        ts = plots.budget_timeseries(table, out / "budget_timeseries.png", unit=run.unit, tz=local)
-        dominant = _dominant(table)
-        arrows = _arrows(table)
-        mp = plots.network_map(run.network, out / "budget_map.png", colour_by=dominant, arrows=arrows,
+        ts = plots.budget_timeseries(summary, out / "budget_timeseries.png", unit=run.unit, tz=local)
+        mp = plots.network_map(run.network, out / "budget_map.png", colour_by=summary.dominant(), arrows=summary.arrows(),
                                title="Clusters by dominant regime; mean wind and gradient")
         figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
                 ("Quality control overview", out / "qc_overview.png")]
@@ -126,36 +134,18 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "sensor_uncertainty": run.settings.sigma, "wind_uncertainty": run.settings.wind_sigma,
         "projection": run.network.crs,
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
-        "regimes": {k: int(v) for k, v in table["regime"].value_counts().items()},
+        "regimes": summary.regime_counts(),
         "main_periods": lines,
         "qc": {"flags": _flag_counts(run.check)},
     })
     if report:
-        written.append(_report(out, run, table, lines, figs, inputs))
+        written.append(_report(out, run, lines, figs, inputs))
     rec["outputs"] = sorted({p.name for p in written} | {"run.json"})
     written.append(files.write_json(rec, out / "run.json"))
     return written, notes
 
 
-def _dominant(table: pd.DataFrame) -> dict[str, str]:
-    """The most frequent of advective / in_situ / mixed per cluster (steady when none)."""
-    counts = pd.crosstab(table["cluster"], table["regime"])
-    cols = [c for c in ("advective", "in_situ", "mixed") if c in counts.columns]
-    if not cols:
-        return {str(c): "steady" for c in pd.unique(table["cluster"])}
-    sub = counts[cols]
-    best = sub.idxmax(axis=1).where(sub.max(axis=1) > 0, "steady")
-    return {str(k): str(v) for k, v in best.items()}
-
-
-def _arrows(table: pd.DataFrame) -> dict:
-    det = table[table["regime"] != "undetermined"]
-    g = det.groupby("cluster")[["u", "v", "grad_x", "grad_y"]].mean()
-    return {"cluster": list(g.index), "u": g["u"].to_numpy(), "v": g["v"].to_numpy(), "gx": g["grad_x"].to_numpy(),
-            "gy": g["grad_y"].to_numpy()}
-
-
-def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs: dict) -> Path:
+def _report(out: Path, run, lines: list[str], figs, inputs: dict) -> Path:
     from .html import write_report
 
     data = run.check.data
@@ -175,12 +165,13 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
         ("Sensor uncertainty", f"{run.settings.sigma:g} {run.unit} per reading; wind components "
                                f"{run.settings.wind_sigma:g} m/s"),
     ]
-    det = table[table["regime"] != "undetermined"]
-    counts = table["regime"].value_counts()
+    bs = run.summary
+    counts = bs.regime_counts()
+    determined = bs.rows - counts.get("undetermined", 0)
     quality = [
         "Regimes over all clusters and times: " + ", ".join(f"{k.replace('_', ' ')} {int(v)}" for k, v in counts.items()) + ".",
-        (f"Median standard error of the advection {np.nanmedian(det['advection_se']):.3g} and of the residual "
-         f"{np.nanmedian(det['residual_se']):.3g} {run.unit}/h." if len(det) else "No cluster could be evaluated."),
+        (f"Median standard error of the advection {bs.median_se('advection_se'):.3g} and of the residual "
+         f"{bs.median_se('residual_se'):.3g} {run.unit}/h." if determined else "No cluster could be evaluated."),
         f"Quality control flagged {int(sum(np.sum(f == 1) for f in run.check.qc.flags.values()))} values suspect and "
         f"{int(sum(np.sum(f == 2) for f in run.check.qc.flags.values()))} bad (see qc_flags.csv); the estimator used "
         f"{'good and suspect' if run.check.config['qc']['use_suspect'] else 'only good'} values.",
@@ -195,7 +186,8 @@ def _report(out: Path, run, table: pd.DataFrame, lines: list[str], figs, inputs:
             quality.append(f"Mast inversion (upper minus surface sensor): max {np.nanmax(inv):+.2f} K, "
                            f"min {np.nanmin(inv):+.2f} K; positive values mean warmer air aloft (radiative cooling).")
     ct = cluster_table(run.network)[["cluster", "stations", "area_km2", "min_angle", "noise_amplification", "status", "reason"]]
-    reg = table.groupby("cluster")["regime"].value_counts().unstack(fill_value=0)
+    reg = bs.cluster_counts()
+    reg = reg.loc[:, reg.sum(axis=0) > 0]  # the regimes that occur
     ct = ct.merge(reg, left_on="cluster", right_index=True, how="left")
     method = [
         "Stations are projected with a local azimuthal equidistant projection (WGS84) centred on the network.",

@@ -163,20 +163,23 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     return _save(fig, path)
 
 
-def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clusters: list[str] | None = None,
+def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
                       max_panels: int = 8, tz: str | None = None) -> Path:
-    """Tendency, advection and residual with 95 % bands per cluster, regimes shaded."""
+    """Tendency, advection and residual with 95 % bands per cluster, regimes shaded.
+
+    ``summary`` is a :class:`stationflow.summary.BudgetSummary`; ``clusters``
+    are indices into its clusters (default: those with the most determined steps).
+    """
     plt = _plt()
     from matplotlib.patches import Patch
 
     if clusters is None:
-        det = table.loc[table["regime"] != "undetermined", "cluster"].value_counts(sort=True)
-        clusters = list(det.index[:max_panels]) or list(pd.unique(table["cluster"])[:max_panels])
+        clusters = summary.busiest(max_panels)
     n = len(clusters)
     fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
     names = ("tendency", "advection", "residual")
     for ax, c in zip(axes[:, 0], clusters):
-        d = table[table["cluster"] == c]
+        d = summary.series(c)
         tt = pd.DatetimeIndex(d["time"])
         if tz:
             from ..ingest import _timezone
@@ -206,10 +209,10 @@ def budget_timeseries(table: pd.DataFrame, path: str | Path, *, unit: str, clust
             ax.fill_between(tt, 0, 1, where=reg == r, step="mid", transform=ax.get_xaxis_transform(),
                             color=REGIME_COLOURS[r], alpha=0.14, lw=0)
         ax.axhline(0, color="#888888", lw=0.6)
-        ax.set_ylabel(f"{c}\n{unit}/h", fontsize=8)
         ax.tick_params(labelsize=7)
-        stations = str(d["stations"].iloc[0]) if len(d) else ""
-        ax.set_title(f"cluster {c}  ({stations})", fontsize=8, loc="left")
+        label, stations = summary.clusters["cluster"].iloc[c], summary.clusters["stations"].iloc[c]
+        ax.set_ylabel(f"{label}\n{unit}/h", fontsize=8)
+        ax.set_title(f"cluster {label}  ({stations})", fontsize=8, loc="left")
     axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
     handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
     axes[-1, 0].legend(handles=handles, loc="lower right", fontsize=7, ncol=3, frameon=False, title="regime (shading)",

@@ -1,0 +1,122 @@
+"""What the report needs from a budget, kept while the full table streams to disk.
+
+A run over months of a large network produces tens of millions of budget
+rows; they are written to Parquet and NetCDF one time partition at a time
+(:mod:`stationflow.report.stream`) and never held in memory together.  The
+:class:`BudgetSummary` keeps what the report, the figures and the console
+summary use: the regime code of every cluster and time (one byte each), the
+six budget terms as float32 (periods and the time-series figure), per-cluster
+sums for the map arrows and the mast inversion per time.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .budget import REGIMES, periods_from_arrays
+
+#: budget terms kept (float32) for periods and the time-series figure
+KEPT = ("tendency", "advection", "residual", "tendency_se", "advection_se", "residual_se")
+#: per-cluster means over determined times, for the map arrows
+ARROWS = ("u", "v", "grad_x", "grad_y")
+UNDETERMINED = np.int8(REGIMES.index("undetermined"))
+
+
+@dataclass
+class BudgetSummary:
+    """Regimes, kept terms and per-cluster sums of a budget, filled partition by partition."""
+
+    times: pd.DatetimeIndex
+    clusters: pd.DataFrame  # cluster, stations, latitude, longitude
+    regime: np.ndarray  # int8 codes into REGIMES, (n_times, n_clusters)
+    terms: dict[str, np.ndarray]  # KEPT, float32, (n_times, n_clusters)
+    sums: dict[str, np.ndarray] = field(default_factory=dict)
+    counts: dict[str, np.ndarray] = field(default_factory=dict)
+    inversion: np.ndarray | None = None  # per time
+
+    @classmethod
+    def allocate(cls, times: pd.DatetimeIndex, clusters: pd.DataFrame) -> "BudgetSummary":
+        """An empty summary for ``times`` x ``clusters`` (every value undetermined until added)."""
+        shape = (len(times), len(clusters))
+        return cls(times, clusters.reset_index(drop=True), np.full(shape, UNDETERMINED, np.int8),
+                   {k: np.full(shape, np.nan, np.float32) for k in KEPT},
+                   {k: np.zeros(shape[1]) for k in ARROWS}, {k: np.zeros(shape[1], np.int64) for k in ARROWS})
+
+    def add(self, first: int, block: dict[str, np.ndarray]) -> None:
+        """Take the derived arrays of the analysis steps ``first ..`` (see :func:`pipeline.derive`)."""
+        reg = np.asarray(block["regime"])
+        sl = slice(first, first + reg.shape[0])
+        self.regime[sl] = reg
+        for k in KEPT:
+            self.terms[k][sl] = block[k]
+        det = reg != UNDETERMINED
+        for k in ARROWS:
+            a = block[k]
+            ok = det & np.isfinite(a)
+            self.sums[k] += np.where(ok, a, 0.0).sum(axis=0)
+            self.counts[k] += ok.sum(axis=0)
+        if "inversion" in block:
+            if self.inversion is None:
+                self.inversion = np.full(len(self.times), np.nan)
+            self.inversion[sl] = block["inversion"][:, 0]
+
+    # ---- what the report asks --------------------------------------------------------
+
+    @property
+    def rows(self) -> int:
+        """Rows of the budget table (clusters x times)."""
+        return int(self.regime.size)
+
+    def regime_counts(self) -> dict[str, int]:
+        """Cluster-steps per regime, most frequent first (every regime listed)."""
+        n = np.bincount(self.regime.reshape(-1).astype(np.intp), minlength=len(REGIMES))
+        order = sorted(range(len(REGIMES)), key=lambda i: (-n[i], i))
+        return {REGIMES[i]: int(n[i]) for i in order}
+
+    def cluster_counts(self) -> pd.DataFrame:
+        """Steps per cluster (rows) and regime (columns)."""
+        n_c = self.regime.shape[1]
+        flat = self.regime.astype(np.intp) * n_c + np.arange(n_c)[None, :]
+        counts = np.bincount(flat.reshape(-1), minlength=len(REGIMES) * n_c).reshape(len(REGIMES), n_c).T
+        return pd.DataFrame(counts, index=pd.Index(self.clusters["cluster"].astype(str), name="cluster"),
+                            columns=list(REGIMES))
+
+    def dominant(self) -> dict[str, str]:
+        """The most frequent of advective / in_situ / mixed per cluster (steady when none)."""
+        counts = self.cluster_counts()[["advective", "in_situ", "mixed"]]
+        best = counts.idxmax(axis=1).where(counts.max(axis=1) > 0, "steady")
+        return {str(k): str(v) for k, v in best.items()}
+
+    def arrows(self) -> dict:
+        """Mean wind and gradient per cluster over its determined times."""
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = {k: self.sums[k] / self.counts[k] for k in ARROWS}
+        return {"cluster": list(self.clusters["cluster"].astype(str)), "u": mean["u"], "v": mean["v"],
+                "gx": mean["grad_x"], "gy": mean["grad_y"]}
+
+    def median_se(self, name: str) -> float:
+        """Median of ``name`` (a kept term) over determined cluster-steps (NaN when none)."""
+        vals = self.terms[name][self.regime != UNDETERMINED]
+        vals = vals[np.isfinite(vals)]
+        return float(np.median(vals)) if vals.size else float("nan")
+
+    def periods(self, unit: str, **kw) -> list[dict]:
+        """Main periods (runs of one regime), see :func:`stationflow.budget.periods_from_arrays`."""
+        return periods_from_arrays(self.times, self.clusters["cluster"].astype(str).to_numpy(),
+                                   {"regime": self.regime, **self.terms}, unit=unit, **kw)
+
+    def busiest(self, n: int) -> list[int]:
+        """Indices of the ``n`` clusters with the most determined steps (ties: first listed)."""
+        det = (self.regime != UNDETERMINED).sum(axis=0)
+        order = np.argsort(-det, kind="stable")
+        return [int(i) for i in order[:n]]
+
+    def series(self, c: int) -> pd.DataFrame:
+        """Time series of cluster ``c`` (index into the clusters): kept terms and regime names."""
+        frame = pd.DataFrame({k: v[:, c].astype(float) for k, v in self.terms.items()})
+        frame.insert(0, "time", self.times)
+        frame["regime"] = np.asarray(REGIMES, dtype=object)[self.regime[:, c]]
+        return frame
