@@ -549,16 +549,128 @@ def read_observations(
             frame, lines, rejected, n_rows, sources = _load_parquet(p, cfg)
             source_units = {}
         else:
-            table = read_text_table(p, delimiter=oc["delimiter"], skip_lines=oc["skip_lines"],
-                                    encoding=oc["encoding"], section="observations")
-            frame, lines, rejected = table.cells, table.lines, list(table.rejected)
-            n_rows = len(lines) + len(rejected)
             sources = [str(p)]
             source_units = {}
-            if oc["layout"] == "wide":
-                frame, lines = _melt_wide(frame, lines, cfg, str(p))
+            typed = _read_typed_csv(p, cfg, stations)
+            if typed is not None:  # a clean file: typed columns straight from pyarrow
+                frame, lines, rejected = typed, np.arange(2, len(typed) + 2), []
+                n_rows = len(frame)
+            else:
+                table = read_text_table(p, delimiter=oc["delimiter"], skip_lines=oc["skip_lines"],
+                                        encoding=oc["encoding"], section="observations")
+                frame, lines, rejected = table.cells, table.lines, list(table.rejected)
+                n_rows = len(lines) + len(rejected)
+                if oc["layout"] == "wide":
+                    frame, lines = _melt_wide(frame, lines, cfg, str(p))
         files = np.full(len(frame), str(sources[0]) if sources else str(p), dtype=object)
     return _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations)
+
+
+def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.DataFrame | None:
+    """Fast path for a clean long CSV: one pyarrow pass with typed columns, or None.
+
+    Taken only when the general reader could not reject anything for the
+    way the text is written: UTF-8, no quotes after the header, no carriage
+    returns or blank lines (so row ``i`` is on line ``i + 2``), one time
+    column with a zone suffix (or naive times in UTC / a fixed offset),
+    plain numbers, a stations file.  Any parse failure falls back to the
+    general reader, which then names the file, line and reason.  Values
+    that the rules below would reject (infinite numbers, times outside
+    1900-2200, empty or padded station ids) also send the file there.
+    """
+    import pyarrow as pa
+    import pyarrow.compute as pc
+    import pyarrow.csv as pacsv
+
+    oc = cfg["observations"]
+    enc = oc["encoding"].lower().replace("_", "-")
+    if (stations is None or oc["layout"] != "long" or oc["time_columns"] or oc["skip_lines"] or oc["time_format"]
+            or enc not in ("utf-8", "utf8") or len(oc["delimiter"]) != 1):
+        return None
+    data = _read_bytes(p)
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    head_end = data.find(b"\n")
+    if head_end <= 0 or b"\r" in data or b"\n\n" in data or data.find(b'"', head_end) >= 0:
+        return None
+    try:
+        header = [c.strip() for c in next(csv.reader([data[:head_end].decode("utf-8")], delimiter=oc["delimiter"]))]
+    except (UnicodeDecodeError, csv.Error, StopIteration):
+        return None
+    if len(header) < 3 or len(set(header)) != len(header) or any(c == "" for c in header):
+        return None
+    names = _rename(header, oc["columns"])
+    canon = list(names.values())
+    if "station_id" not in canon or "time" not in canon or {"latitude", "longitude"} & set(canon):
+        return None
+    var_cols, _ = _variable_columns(canon, oc)
+    if not var_cols or ("wind_from_direction" in var_cols and oc["units"].get("wind_from_direction", "degree") == "compass"):
+        return None
+    src = {v: k for k, v in names.items()}
+    tz = _timezone(oc["timezone"])
+    missing = [""] + [str(m) for m in oc["missing_values"]]
+    types = {src["station_id"]: pa.dictionary(pa.int32(), pa.string()), **{src[v]: pa.float64() for v in var_cols}}
+
+    def parse(time_type):
+        return pacsv.read_csv(
+            io.BytesIO(data[head_end + 1:]),
+            read_options=pacsv.ReadOptions(column_names=header, block_size=1 << 24),
+            parse_options=pacsv.ParseOptions(delimiter=oc["delimiter"], quote_char=False, ignore_empty_lines=False),
+            convert_options=pacsv.ConvertOptions(column_types={**types, src["time"]: time_type}, null_values=missing,
+                                                 strings_can_be_null=False, include_columns=[src[c] for c in
+                                                                                            ["station_id", "time"] + var_cols]))
+    try:
+        table = parse(pa.timestamp("ns", tz="UTC"))
+        naive = False
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        if not isinstance(tz, _dt.timezone):
+            return None  # local times in a zone with daylight saving: the general reader resolves them
+        try:
+            table = parse(pa.timestamp("ns"))
+            naive = True
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            return None
+    if table.num_rows != data.count(b"\n", head_end + 1) + (0 if data.endswith(b"\n") else 1):
+        return None
+    sid = table[src["station_id"]].combine_chunks()
+    words = sid.dictionary.to_pylist() if isinstance(sid, pa.DictionaryArray) else None
+    if words is None or sid.null_count or any(w != w.strip() or not w for w in words):
+        return None
+    t = table[src["time"]]
+    if t.null_count:
+        return None
+    years = pc.year(t)
+    if pc.any(pc.or_(pc.less(years, 1900), pc.greater(years, 2200))).as_py():
+        return None
+    _, ignored = _variable_columns(canon, oc)
+    frame = pd.DataFrame({"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words)})
+    ns = t.cast(pa.timestamp("ns") if naive else pa.timestamp("ns", tz="UTC")).to_numpy()
+    ns = ns.astype("datetime64[ns]").astype(np.int64)
+    if naive:
+        ns = ns - int(tz.utcoffset(None).total_seconds() * 1e9)
+    frame["time"] = pd.DatetimeIndex(ns.view("datetime64[ns]")).tz_localize("UTC")
+    for v in var_cols:
+        col = table[src[v]]
+        x = col.to_numpy()
+        x = np.asarray(x, float)
+        if np.isnan(x).sum() != col.null_count or np.isinf(x).any():
+            return None  # 'nan' / 'inf' written as numbers: the general reader explains them row by row
+        frame[v] = x
+    frame.attrs["ignored_columns"] = ignored  # read past, not parsed
+    return frame
+
+
+def _variable_columns(columns: list[str], oc) -> tuple[list[str], list[str]]:
+    """(variable columns, ignored columns) among canonical column names."""
+    time_cols = oc["time_columns"]
+    mapped_targets = set(oc["columns"].values())
+    coord_cols = {"latitude", "longitude", "elevation", "sensor_height"}
+    var_cols = [c for c in columns
+                if c not in V.ID_COLUMNS and c not in time_cols and c not in coord_cols and c != "__file__"
+                and (c in V.CANONICAL or c in mapped_targets or c == oc["wide_variable"] and oc["layout"] == "wide")]
+    ignored = [c for c in columns if c not in var_cols and c not in V.ID_COLUMNS
+               and c not in time_cols and c not in coord_cols and c != "__file__"]
+    return var_cols, ignored
 
 
 def _melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str):
@@ -658,6 +770,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     oc = cfg["observations"]
     src_name = sources[0] if len(sources) == 1 else str(Path(sources[0]).parent)
     wide_rows = frame.pop("__row__").to_numpy() if "__row__" in frame else None
+    skipped = list(frame.attrs.get("ignored_columns", []))
     frame = frame.rename(columns=_rename(list(frame.columns), oc["columns"]))
     time_cols = oc["time_columns"]
     for c in time_cols or ["time"]:
@@ -673,13 +786,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
         )
     if len(frame) == 0 and not rejected:
         raise IngestError(f"{src_name}: no data rows after the header")
-    mapped_targets = set(oc["columns"].values())
-    coord_cols = {"latitude", "longitude", "elevation", "sensor_height"}
-    var_cols = [c for c in frame.columns
-                if c not in V.ID_COLUMNS and c not in time_cols and c not in coord_cols and c != "__file__"
-                and (c in V.CANONICAL or c in mapped_targets or c == oc["wide_variable"] and oc["layout"] == "wide")]
-    ignored = [c for c in frame.columns if c not in var_cols and c not in V.ID_COLUMNS
-               and c not in time_cols and c not in coord_cols and c != "__file__"]
+    var_cols, ignored = _variable_columns(list(frame.columns), oc)
+    ignored = ignored + [c for c in skipped if c not in ignored]
     if not var_cols:
         raise IngestError(
             f"{src_name}: no variable columns (columns are: {', '.join(map(str, frame.columns))}); "
@@ -695,7 +803,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
                 raise ConfigError(f"observations.units.{name}: {exc}") from None
     n = len(frame)
     reasons = np.full(n, None, dtype=object)
-    station = _as_text(frame["station_id"]).fillna("")
+    station = _station_labels(frame["station_id"])
     times, bad_t, t_reasons = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
                                           time_format=oc["time_format"], timezone=oc["timezone"], station=station)
     for i in np.flatnonzero(bad_t):
@@ -704,7 +812,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     for i in np.flatnonzero(empty_sid):
         reasons[i] = reasons[i] or "station_id is empty"
     missing = {str(m) for m in oc["missing_values"]}
-    out = pd.DataFrame({"station_id": station.astype(str).to_numpy(),
+    out = pd.DataFrame({"station_id": station.array,
                         "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")})
     calm_codes = np.zeros(n, bool)
     for name in var_cols:
@@ -783,9 +891,23 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     accounting = {"rows_read": int(n_rows), "rows_accepted": int(n_rows - n_rej), "rows_rejected": int(n_rej),
                   "duplicates_collapsed": int(collapsed)}
     good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
+    good["station_id"] = good["station_id"].cat.remove_unused_categories()
     good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
     units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
     return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored)
+
+
+def _station_labels(col: pd.Series) -> pd.Series:
+    """Station ids, stripped, as a categorical with sorted categories ("" for a missing id).
+
+    Works on the distinct labels only, so it costs little for millions of rows.
+    """
+    codes, uniques = pd.factorize(col)
+    labels = pd.Series(uniques).astype("string").str.strip().fillna("").astype(str).to_numpy(object)
+    labels = np.append(labels, "")  # code -1 (missing) -> ""
+    cats = np.array(sorted(set(labels)), dtype=object)
+    remap = np.searchsorted(cats, labels)
+    return pd.Series(pd.Categorical.from_codes(remap[codes], categories=pd.Index(cats, dtype=object)), index=col.index)
 
 
 def _looks_infinite(raw: object) -> bool:

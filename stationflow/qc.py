@@ -167,11 +167,14 @@ def rolling_range(x: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndar
         his.append(nh)
         los.append(nl)
     lev = np.floor(np.log2(np.maximum(length, 1))).astype(int)
-    H = np.stack(his)
-    L = np.stack(los)
     j2 = np.arange(n) - (1 << lev) + 1
-    mx = np.maximum(H[lev, start], H[lev, j2])
-    mn = np.minimum(L[lev, start], L[lev, j2])
+    mx = np.empty(n)
+    mn = np.empty(n)
+    for k in range(levels):  # a few levels (log2 of the window length); each is one vector operation
+        sel = np.flatnonzero(lev == k)
+        if sel.size:
+            mx[sel] = np.maximum(his[k][start[sel]], his[k][j2[sel]])
+            mn[sel] = np.minimum(los[k][start[sel]], los[k][j2[sel]])
     return mx, mn
 
 
@@ -536,8 +539,8 @@ def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:
         uniq, inv = np.unique(bits, return_inverse=True)
         labels = np.array(["+".join(names[b] for b in sorted(names) if u & b) for u in uniq], dtype=object)
         parts.append(pd.DataFrame({
-            "station_id": observations["station_id"].to_numpy()[sel],
-            "time": observations["time"].to_numpy()[sel],
+            "station_id": observations["station_id"].array[sel],  # typed take: no object conversion
+            "time": observations["time"].array[sel],
             "variable": v,
             "flag": np.where(f[sel] == BAD, "bad", "suspect"),
             "tests": labels[inv],
@@ -559,14 +562,13 @@ def summary(observations: pd.DataFrame, result: QCResult) -> dict[str, pd.DataFr
             if c:
                 rows.append({"variable": v, "test": name, "values": c})
     per_test = pd.DataFrame(rows, columns=["variable", "test", "values"])
-    st = observations["station_id"].to_numpy()
-    frames = []
-    for v, f in result.flags.items():
-        frames.append(pd.DataFrame({"station_id": st, "variable": v, "flag": f}))
-    if frames:
-        allf = pd.concat(frames, ignore_index=True)
-        per_station = (allf.assign(suspect=allf["flag"] == SUSPECT, bad=allf["flag"] == BAD)
-                       .groupby("station_id")[["suspect", "bad"]].sum().astype(int).reset_index())
+    if result.flags:
+        codes, ids = pd.factorize(observations["station_id"], sort=True)
+        n_s = len(ids)
+        sus = sum(np.bincount(codes, weights=(f == SUSPECT), minlength=n_s) for f in result.flags.values())
+        bad = sum(np.bincount(codes, weights=(f == BAD), minlength=n_s) for f in result.flags.values())
+        per_station = pd.DataFrame({"station_id": np.asarray(ids, dtype=object), "suspect": np.asarray(sus, int),
+                                    "bad": np.asarray(bad, int)})
     else:
         per_station = pd.DataFrame(columns=["station_id", "suspect", "bad"])
     return {"per_test": per_test, "per_station": per_station}
@@ -578,12 +580,33 @@ def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = 
     t = (flag_table(observations, result) if table is None else table).copy()
     if t.empty:
         return pd.DataFrame(columns=["station_id", "variable", "start", "end", "values", "flag", "tests"])
-    t = t.sort_values(["station_id", "variable", "time"], kind="stable")
-    key = t["station_id"] + "\x00" + t["variable"]
-    new = (key != key.shift()) | (t["time"].diff() > pd.Timedelta(gap))
-    t["period"] = new.cumsum()
-    agg = t.groupby("period").agg(station_id=("station_id", "first"), variable=("variable", "first"),
-                                  start=("time", "min"), end=("time", "max"), values=("time", "size"),
-                                  flag=("flag", lambda s: "bad" if (s == "bad").any() else "suspect"),
-                                  tests=("tests", lambda s: "+".join(sorted(set("+".join(s).split("+"))))))
-    return agg.reset_index(drop=True)
+    # vectorised over flagged values: sort, cut into periods, reduce each period with ufunc.reduceat
+    s_codes, s_ids = pd.factorize(t["station_id"], sort=True)
+    v_codes, v_ids = pd.factorize(t["variable"], sort=True)
+    ns = pd.DatetimeIndex(t["time"]).asi8
+    order = np.lexsort((ns, v_codes, s_codes))
+    s_codes, v_codes, ns = s_codes[order], v_codes[order], ns[order]
+    new = np.ones(len(order), bool)
+    new[1:] = (s_codes[1:] != s_codes[:-1]) | (v_codes[1:] != v_codes[:-1]) | (np.diff(ns) > pd.Timedelta(gap).value)
+    starts = np.flatnonzero(new)
+    t_codes, t_labels = pd.factorize(t["tests"].to_numpy()[order])
+    names = sorted({n for lab in t_labels for n in str(lab).split("+")})
+    masks = np.array([sum(1 << names.index(n) for n in str(lab).split("+")) for lab in t_labels], dtype=np.int64)
+    union = np.bitwise_or.reduceat(masks[t_codes], starts)
+    is_bad = np.maximum.reduceat((t["flag"].to_numpy()[order] == "bad").astype(np.int8), starts)
+    time_sorted = pd.DatetimeIndex(ns).tz_localize("UTC")
+    ends = np.append(starts[1:], len(order)) - 1
+    return pd.DataFrame({
+        "station_id": np.asarray(s_ids, dtype=object)[s_codes[starts]],
+        "variable": np.asarray(v_ids, dtype=object)[v_codes[starts]],
+        "start": time_sorted[starts], "end": time_sorted[ends], "values": ends - starts + 1,
+        "flag": np.where(is_bad > 0, "bad", "suspect"),
+        "tests": _mask_labels(union, names),
+    })
+
+
+def _mask_labels(masks: np.ndarray, names: list[str]) -> np.ndarray:
+    """'a+b' labels of bit masks over ``names`` (one label built per distinct mask)."""
+    uniq, inv = np.unique(masks, return_inverse=True)
+    labels = np.array(["+".join(n for i, n in enumerate(names) if int(m) >> i & 1) for m in uniq], dtype=object)
+    return labels[inv]
