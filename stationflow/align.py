@@ -72,6 +72,15 @@ class Grid:
     interval: pd.Timedelta
 
 
+def station_columns(ids: pd.Series, stations: list[str]) -> np.ndarray:
+    """Position of each row's station in ``stations`` (-1 if absent); fast for categorical ids."""
+    if isinstance(ids.dtype, pd.CategoricalDtype):
+        where = pd.Index(stations).get_indexer(ids.cat.categories.astype(str))
+        codes = ids.cat.codes.to_numpy()
+        return np.where(codes >= 0, where[codes], -1)
+    return pd.Index(stations).get_indexer(ids)
+
+
 def bin_index(times: pd.Series | np.ndarray, start: pd.Timestamp, interval: pd.Timedelta) -> np.ndarray:
     """Index of the right-labelled bin each time falls in (bin 0 ends at ``start``)."""
     t = pd.DatetimeIndex(times).as_unit("ns").asi8
@@ -112,7 +121,7 @@ def to_grid(
     n_t = max(int(np.ceil((last.value - first.value) / interval.value)) + 1, 1)
     times = pd.date_range(first, periods=n_t, freq=interval)
     n_s = len(stations)
-    col = pd.Index(stations).get_indexer(observations["station_id"])
+    col = station_columns(observations["station_id"], stations)
     row = bin_index(t, first, interval)
     inside = (col >= 0) & (row >= 0) & (row < n_t)
     flat = row * n_s + col

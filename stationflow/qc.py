@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .align import station_columns
 from .config import Config
 
 log = logging.getLogger(__name__)
@@ -486,7 +487,7 @@ def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, 
     interval = infer_interval(obs)
     t0 = obs["time"].min().ceil(interval)
     rows = bin_index(obs["time"], t0, interval)
-    col = pd.Index(surface_ids).get_indexer(obs["station_id"])
+    col = station_columns(obs["station_id"], surface_ids)
     inside = (col >= 0) & (rows >= 0)
     flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
     sx, sy = x[surface], y[surface]
