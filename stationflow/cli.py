@@ -71,6 +71,9 @@ def _progress(quiet: bool):
 
 
 def _run(fn, *, quiet: bool):
+    from .memory import tune_allocator
+
+    tune_allocator()
     prog, report = _progress(quiet)
     try:
         if prog is not None:
