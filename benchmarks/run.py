@@ -1,8 +1,8 @@
 """Benchmarks: the fitting core and the whole `stationflow budget` run against the physical floor.
 
 Run with ``make bench`` (or ``python benchmarks/run.py [size ...]``).  For each size it generates a
-synthetic network (a linear field carried by a turning wind, 0.1 K noise, 5 % of values missing at
-random) as a long CSV and as Parquet under ``benchmarks/output/``, then reports:
+synthetic network (a linear field carried by a turning wind, with a day-night in-situ heating and
+cooling cycle, 0.1 K noise, 5 % of values missing at random) as a long CSV and as Parquet under ``benchmarks/output/``, then reports:
 
 - the fitting core (`gradient.fit_planes` on Delaunay triangles) with complete data and with 5 %
   missing: station-values per second (input values) and member-values per second (values entering
@@ -58,12 +58,12 @@ def generate(name: str, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Pat
     st[["station_id", "latitude", "longitude", "elevation", "sensor_height"]].to_csv(st_path, index=False)
     f = synthetic.LinearField(base=285.0, gx=synthetic._const(2e-5), gy=synthetic._const(-1e-5),
                               u=synthetic.ramp([(0, 3.0), (24 * days, -2.0)]), v=synthetic.ramp([(0, 1.0), (24 * days, 4.0)]),
-                              source=synthetic.ramp([(0, -0.5 / 3600), (24 * days, 0.5 / 3600)]), horizon_s=days * 86400 + 7200)
+                              source=synthetic.ramp([(12 * k, (0.5 if k % 2 else -0.5) / 3600) for k in range(2 * days + 2)]), horizon_s=days * 86400 + 7200)
     times = pd.date_range("2026-01-01", periods=days * 24 * 60 // minutes, freq=f"{minutes}min", tz="UTC")
     rng = np.random.default_rng(seed)
     parts = []
     for k in range(0, len(times), 288):  # bounded memory while generating
-        block = synthetic.sample(f, st, times[k:k + 288], noise=0.1, wind_noise=0.3, seed=seed + k)
+        block = synthetic.sample(f, st, times[k:k + 288], noise=0.1, wind_noise=0.3, seed=seed + k, start=times[0])
         keep = rng.random(len(block)) >= 0.05
         block = block[keep]
         parts.append(pa.table({

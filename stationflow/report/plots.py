@@ -163,6 +163,25 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     return _save(fig, path)
 
 
+def _shade_regimes(ax, times: pd.DatetimeIndex, regimes: np.ndarray, *, alpha: float = 0.14) -> None:
+    """Shade the background by regime: one image strip (fast for long records, unlike one polygon per run)."""
+    from matplotlib import dates as mdates
+    from matplotlib.colors import to_rgba
+
+    if len(times) == 0:
+        return
+    x = mdates.date2num(times.to_pydatetime()) if len(times) < 2 else mdates.date2num(np.asarray(times))
+    rgba = np.zeros((1, len(x), 4))
+    for r in ("advective", "in_situ", "mixed"):
+        rgba[0, regimes == r] = to_rgba(REGIME_COLOURS[r], alpha)
+    half = (x[1] - x[0]) / 2 if len(x) > 1 else 0.01
+    ylim = ax.get_ylim()
+    ax.imshow(rgba, aspect="auto", interpolation="nearest", extent=(x[0] - half, x[-1] + half, 0, 1),
+              transform=ax.get_xaxis_transform(), zorder=0)
+    ax.set_ylim(ylim)  # the strip spans the axes height; the data keep their own limits
+    ax.set_xlim(x[0] - half, x[-1] + half)
+
+
 def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
                       max_panels: int = 8, tz: str | None = None) -> Path:
     """Tendency, advection and residual with 95 % bands per cluster, regimes shaded.
@@ -205,9 +224,7 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
             val, se = cols[name], cols[f"{name}_se"]
             ax.plot(tt, val, color=colour, lw=1.3, label=name if name != "residual" else "residual (in situ)")
             ax.fill_between(tt, val - 1.96 * se, val + 1.96 * se, color=colour, alpha=0.15, lw=0)
-        for r in ("advective", "in_situ", "mixed"):
-            ax.fill_between(tt, 0, 1, where=reg == r, step="mid", transform=ax.get_xaxis_transform(),
-                            color=REGIME_COLOURS[r], alpha=0.14, lw=0)
+        _shade_regimes(ax, tt, reg)
         ax.axhline(0, color="#888888", lw=0.6)
         ax.tick_params(labelsize=7)
         label, stations = summary.clusters["cluster"].iloc[c], summary.clusters["stations"].iloc[c]
