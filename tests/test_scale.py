@@ -57,3 +57,16 @@ def test_benchmark_harness_runs_smallest_size(tmp_path):
     rows = bench.run_suite(["tiny"], tmp_path, repeats=1)
     assert rows and rows[0]["stations"] > 0 and rows[0]["core_member_values_per_s"] > 0
     assert rows[0]["run_s"] > 0 and rows[0]["floor_s"] > 0
+
+
+def test_dask_engine_writes_the_same_files(reference, tmp_path):
+    # the CLI path: partitions computed on a local two-worker cluster, written as they arrive
+    pytest.importorskip("dask.distributed")
+    cfg = _cfg(chunk="2h")
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    run = scale.budget_to_files_dask(chk, cfg, tmp_path, n_workers=2)
+    assert run.table is None
+    table = pd.read_parquet(tmp_path / "budget.parquet")
+    ref = reference.table.assign(cluster=reference.table["cluster"].astype(str))
+    _assert_same(ref, table.assign(cluster=table["cluster"].astype(str), regime=table["regime"].astype(str)))
+    assert run.periods == reference.periods

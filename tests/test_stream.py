@@ -1,0 +1,154 @@
+"""Streamed outputs: the files written partition by partition equal the in-memory budget.
+
+Also: the typed CSV fast path gives exactly what the general reader gives,
+and a failure part-way through leaves no half-written files.
+"""
+
+import numpy as np
+import pandas as pd
+import pytest
+import xarray as xr
+
+from stationflow import config, ingest, pipeline
+from stationflow.budget import REGIMES
+from stationflow.report import stream
+
+from .conftest import ROOT
+
+FROST = ROOT / "sample_data" / "frost"
+TOWN = ROOT / "sample_data" / "town"
+
+
+def _cfg(folder, **budget):
+    data = config.load(folder / "config.toml").to_dict()
+    data["budget"].update(budget)
+    return config.from_dict(data)
+
+
+@pytest.fixture(scope="module")
+def memory_run():
+    return pipeline.run_budget(FROST / "observations.csv", FROST / "stations.csv", _cfg(FROST))
+
+
+@pytest.mark.parametrize("chunk", [None, "1h"])
+def test_streamed_files_equal_the_in_memory_table(memory_run, tmp_path, chunk):
+    cfg = _cfg(FROST, chunk=chunk) if chunk else _cfg(FROST)
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    run = pipeline.budget_to_files(chk, cfg, tmp_path)
+    assert run.table is None and run.dataset is None
+    ref = memory_run.table
+    pq = pd.read_parquet(tmp_path / "budget.parquet")
+    assert list(pq.columns) == list(ref.columns)
+    assert (pq["time"].to_numpy() == ref["time"].to_numpy()).all()
+    assert (pq["cluster"].astype(str).to_numpy() == ref["cluster"].astype(str).to_numpy()).all()
+    assert (pq["regime"].astype(str).to_numpy() == ref["regime"].astype(str).to_numpy()).all()
+    for c in ref.columns:
+        if pd.api.types.is_float_dtype(ref[c]):
+            np.testing.assert_allclose(pq[c].to_numpy(), ref[c].to_numpy(), rtol=1e-12, atol=1e-12, equal_nan=True, err_msg=c)
+    csv = pd.read_csv(tmp_path / "budget.csv")
+    assert len(csv) == len(ref) and list(csv.columns) == list(ref.columns)
+    np.testing.assert_allclose(csv["residual"].to_numpy(), ref["residual"].to_numpy(), rtol=1e-9, equal_nan=True)
+    with xr.open_dataset(tmp_path / "budget.nc") as ds:
+        mem = memory_run.dataset
+        assert list(ds.data_vars) == list(mem.data_vars)
+        assert (ds["time"].values == mem["time"].values).all()
+        assert list(ds["cluster"].values) == list(mem["cluster"].values)
+        for name in mem.data_vars:
+            a, b = ds[name].values, mem[name].values
+            if b.dtype.kind == "f":  # stored as float32
+                fin = np.isfinite(b)
+                scale = float(np.max(np.abs(b[fin]))) if fin.any() else 1.0
+                assert (np.isfinite(a) == fin).all(), name
+                np.testing.assert_allclose(a[fin], b[fin], rtol=1e-6, atol=1e-6 * scale, err_msg=name)
+            else:
+                assert a.dtype == b.dtype and (a == b).all(), name
+        assert ds["regime"].attrs["flag_meanings"].split() == list(REGIMES)
+    # the summary the report uses equals what the full table says
+    counts = ref["regime"].astype(str).value_counts()
+    assert run.summary.regime_counts() == {k: int(counts.get(k, 0)) for k in run.summary.regime_counts()}
+    assert run.periods == memory_run.periods
+
+
+def test_summary_arrows_and_medians_match_the_table(memory_run):
+    t, s = memory_run.table, memory_run.summary
+    det = t[t["regime"].astype(str) != "undetermined"]
+    mean = det.groupby("cluster", observed=True)["u"].mean()
+    arrows = s.arrows()
+    got = dict(zip(arrows["cluster"], arrows["u"]))
+    for c, v in mean.items():
+        assert got[str(c)] == pytest.approx(v, rel=1e-12, abs=1e-12)
+    assert s.median_se("advection_se") == pytest.approx(float(np.nanmedian(det["advection_se"])), rel=1e-6)
+
+
+def test_failure_part_way_leaves_no_files(tmp_path):
+    cfg = _cfg(FROST, chunk="1h")
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    plan = pipeline.plan_budget(chk, cfg)
+
+    class Boom(RuntimeError):
+        pass
+
+    with pytest.raises(Boom):
+        with stream.BudgetFiles(tmp_path, plan.layout) as sink:
+            first, last = pipeline.partitions(len(plan.times), 6)[0]
+            sink.add(first, pipeline.derive(pipeline.run_partition(plan, first, last), plan.layout.convergence))
+            raise Boom("disk full")
+    assert sorted(p.name for p in tmp_path.iterdir()) == []  # neither results nor temporary files
+
+
+def test_incomplete_stream_is_an_error_and_leaves_no_files(tmp_path):
+    cfg = _cfg(FROST)
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    plan = pipeline.plan_budget(chk, cfg)
+    with pytest.raises(RuntimeError, match="analysis steps written"):
+        with stream.BudgetFiles(tmp_path, plan.layout) as sink:
+            sink.add(0, pipeline.derive(pipeline.run_partition(plan, 0, 3), plan.layout.convergence))
+    assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("folder", [FROST, TOWN])
+def test_typed_csv_fast_path_equals_the_general_reader(folder, monkeypatch):
+    cfg = config.load(folder / "config.toml")
+    fast = ingest.read(folder / "observations.csv", folder / "stations.csv", cfg)
+    with monkeypatch.context() as m:
+        m.setattr(ingest, "_read_typed_csv", lambda *a, **k: None)
+        slow = ingest.read(folder / "observations.csv", folder / "stations.csv", cfg)
+    pd.testing.assert_frame_equal(fast.observations, slow.observations)
+    pd.testing.assert_frame_equal(fast.rejected, slow.rejected)
+    assert fast.accounting == slow.accounting
+    assert fast.ignored_columns == slow.ignored_columns and fast.units == slow.units
+
+
+def _write(path, text):
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+STATIONS = "station_id,latitude,longitude,elevation\nA,47.0,11.0,500\nB,47.1,11.0,510\nC,47.0,11.1,505\n"
+
+
+@pytest.mark.parametrize("body, fast", [
+    # clean: taken by the fast path; duplicates collapse identically on both paths
+    ("A,2026-01-01T00:00:00Z,1.5,x\nB,2026-01-01T00:00:00Z,2.5,y\nA,2026-01-01T00:00:00Z,1.5,x\n", True),
+    # conflicting duplicates: rejected with their line numbers by both paths
+    ("A,2026-01-01T00:00:00Z,1.5,x\nA,2026-01-01T00:00:00Z,1.7,x\nB,2026-01-01T00:10:00Z,2.5,y\n", True),
+    # naive times in UTC, a missing value: fast path
+    ("A,2026-01-01 00:00:00,,x\nB,2026-01-01 00:10:00,2.5,y\n", True),
+    # a number that is not one, an unknown station, a blank line: general reader
+    ("A,2026-01-01T00:00:00Z,warm,x\nZ,2026-01-01T00:00:00Z,1.0,x\n\nB,2026-01-01T00:10:00Z,2.5,y\n", False),
+    # infinite value: general reader explains it
+    ("A,2026-01-01T00:00:00Z,inf,x\nB,2026-01-01T00:10:00Z,2.5,y\n", False),
+])
+def test_fast_path_choice_and_equal_results(tmp_path, monkeypatch, body, fast):
+    st = _write(tmp_path / "stations.csv", STATIONS)
+    obs = _write(tmp_path / "obs.csv", "station_id,time,air_temperature,note\n" + body)
+    cfg = config.Config()
+    taken = ingest._read_typed_csv(obs, cfg, ingest.read_stations(st, cfg)) is not None
+    assert taken == fast
+    a = ingest.read(obs, st, cfg)
+    with monkeypatch.context() as m:
+        m.setattr(ingest, "_read_typed_csv", lambda *a, **k: None)
+        b = ingest.read(obs, st, cfg)
+    pd.testing.assert_frame_equal(a.observations, b.observations)
+    pd.testing.assert_frame_equal(a.rejected, b.rejected)
+    assert a.accounting == b.accounting and a.ignored_columns == b.ignored_columns == ["note"]
