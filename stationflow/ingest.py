@@ -339,7 +339,11 @@ def parse_times(
         col = frame[time_column]
         if isinstance(col.dtype, pd.DatetimeTZDtype):
             t = col.dt.tz_convert("UTC")
-            return t, t.isna().to_numpy(), ["time is missing" if b else None for b in t.isna()]
+            missing_t = t.isna().to_numpy()
+            reasons_t: list[str | None] = [None] * n
+            for i in np.flatnonzero(missing_t):
+                reasons_t[i] = "time is missing"
+            return t, missing_t, reasons_t
         if pd.api.types.is_datetime64_dtype(col.dtype):
             naive = col
             aware_mask = np.zeros(n, bool)
@@ -707,8 +711,8 @@ def _load_parquet(p: Path, cfg: Config):
     except (pa.ArrowInvalid, OSError) as exc:
         raise IngestError(f"{p}: cannot read as Parquet ({_clip(exc)})") from None
     frame = table.to_pandas()
-    for c in frame.columns:
-        if isinstance(frame[c].dtype, pd.CategoricalDtype):
+    for c in frame.columns:  # station ids may stay categorical (handled label by label); other labels as text
+        if isinstance(frame[c].dtype, pd.CategoricalDtype) and cfg["observations"]["columns"].get(c, c) != "station_id":
             frame[c] = frame[c].astype("string")
     lines = np.arange(1, len(frame) + 1)
     return frame, lines, [], len(frame), [str(p)]
@@ -948,7 +952,10 @@ def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_c
 
     Vectorised over rows; only the rejected rows are turned into messages.
     """
-    dup = good.duplicated(["station_id", "time"], keep=False).to_numpy()
+    s_codes, s_ids = pd.factorize(good["station_id"])
+    t_codes, _ = pd.factorize(pd.DatetimeIndex(good["time"]).asi8)
+    key = t_codes.astype(np.int64) * max(1, len(s_ids)) + s_codes  # one integer per (station, time)
+    dup = pd.Series(key).duplicated(keep=False).to_numpy()
     if not dup.any():
         return good, [], 0
     sub_idx = np.flatnonzero(dup)
