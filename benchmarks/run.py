@@ -155,7 +155,7 @@ def bench_run(st_path: Path, obs_path: Path, out: Path, extra: list[str] | None 
     return {"run_s": wall, "peak_mb": int(rss_kb) / 1024}
 
 
-def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large: bool = False) -> list[dict]:
+def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large: bool = True) -> list[dict]:
     """Generate, benchmark and return one row per size."""
     rows = []
     for name in names:

@@ -394,6 +394,9 @@ def run_partitions(plan: BudgetPlan, sink, config: Config, *, progress: Progress
     layout = plan.layout
     summary = BudgetSummary.allocate(plan.times, plan.clusters)
     parts = partitions(n, steps)
+    if len(parts) > 1:  # the last write cannot overlap a computation: end with small partitions
+        a, b = parts.pop()
+        parts += [(a + f, a + l) for f, l in partitions(b - a + 1, max(plan.halo, (b - a + 1) // 4))]
     for i, (first, last) in enumerate(parts):
         block = derive(run_partition(plan, first, last), layout.convergence)
         summary.add(first, block)

@@ -267,9 +267,7 @@ def not_persistent(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, 
     fail = (np.isfinite(x) & (n_in >= 3) & (n_in >= 0.5 * n_all) & (span >= 0.8 * window_minutes)
             & ((mx - mn) < min_range))
     # every value inside a failing window fails
-    mark = np.zeros(n + 1, np.int64)
-    np.add.at(mark, start[fail], 1)
-    np.add.at(mark, np.flatnonzero(fail) + 1, -1)
+    mark = np.bincount(start[fail], minlength=n + 1) - np.bincount(np.flatnonzero(fail) + 1, minlength=n + 1)
     covered = np.cumsum(mark)[:n] > 0
     exempt_mask = np.zeros(n, bool) if exempt is None else np.asarray(exempt, bool)
     return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)

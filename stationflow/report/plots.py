@@ -209,8 +209,8 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
         tt = tt.tz_localize(None)
         cols = {k: d[k].to_numpy(float) for k in names + tuple(f"{k}_se" for k in names)}
         reg = d["regime"].astype(str).to_numpy()
-        if len(d) > 1500:  # long records: block means keep the figure legible and fast
-            k = int(np.ceil(len(d) / 1000))
+        if len(d) > 900:  # long records: block means keep the figure legible and fast
+            k = int(np.ceil(len(d) / 600))  # about one block per two pixels
             m = len(d) // k * k
             import warnings
 

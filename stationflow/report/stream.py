@@ -148,7 +148,9 @@ class BudgetFiles:
         sample = self._arrow(0, {n: v[:0] for n, v in block.items()})
         self.schema = sample.schema
         self._parquet = self._stack.enter_context(
-            pq.ParquetWriter(self._tmp["budget.parquet"], self.schema, compression="snappy"))
+            # dictionary encoding only for the label columns: for float columns it costs time and gains nothing
+            pq.ParquetWriter(self._tmp["budget.parquet"], self.schema, compression="snappy",
+                             use_dictionary=["cluster", "stations", "regime"]))
         if self.write_csv:
             self._csv = self._stack.enter_context(
                 pacsv.CSVWriter(self._tmp["budget.csv"], self._csv_table(sample).schema,
