@@ -137,7 +137,13 @@ except SystemExit as e:
     code = e.code or 0
 else:
     code = 0
-print("__bench__", time.perf_counter() - t0, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss, code, file=sys.stderr)
+# peak memory of this process: VmHWM belongs to the process image (ru_maxrss can carry over the
+# parent's peak across fork and exec on Linux, which would overstate small runs)
+try:
+    peak = int(next(ln.split()[1] for ln in open("/proc/self/status") if ln.startswith("VmHWM:")))
+except (OSError, StopIteration):
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+print("__bench__", time.perf_counter() - t0, peak, code, file=sys.stderr)
 """
 
 
