@@ -208,14 +208,14 @@ def _rows(path: Path) -> int:
 
 
 HEADER = ("| size | stations x days @ step | input rows | output rows | core M member-values/s (complete / 5 % missing) "
-          "| core M station-values/s | run s (CSV) | floor s | run/floor | peak MB | run s (Parquet) |")
+          "| core M station-values/s | run s (CSV) | floor s | run/floor | peak MB | run s (Parquet) | peak MB (Parquet) |")
 
 
 def _line(r: dict) -> str:
     return (f"| {r['size']} | {r['stations']} x {r['days']} d @ {r['minutes']} min | {r['input_rows']:,} | {r['output_rows']:,} | "
             f"{r['core_complete_member_values_per_s'] / 1e6:.0f} / {r['core_missing5_member_values_per_s'] / 1e6:.0f} | "
             f"{r['core_complete_station_values_per_s'] / 1e6:.1f} | {r['run_s']:.1f} | {r['floor_s']:.2f} | {r['ratio']:.1f} | "
-            f"{r['peak_mb']:.0f} | {r['run_parquet_s']:.1f} |")
+            f"{r['peak_mb']:.0f} | {r['run_parquet_s']:.1f} | {r.get('peak_parquet_mb', float('nan')):.0f} |")
 
 
 def plot(rows: list[dict], path: Path) -> Path:
@@ -249,7 +249,7 @@ def main(argv: list[str]) -> None:
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
           f"{time.strftime('%Y-%m-%d')}")
     print(HEADER)
-    print("|" + "---|" * 11)
+    print("|" + "---|" * 12)
     rows = run_suite(names, folder)
     store = folder / "results.json"
     old = {r["size"]: r for r in json.loads(store.read_text())} if store.exists() else {}
