@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Callable
 
@@ -189,9 +190,9 @@ class BudgetPlan:
     times: pd.DatetimeIndex
     frame: pd.DataFrame
 
-    @property
+    @cached_property
     def layout(self) -> Layout:
-        """Times, clusters and labels of this budget."""
+        """Times, clusters and labels of this budget (computed once)."""
         conv = _convergence(self.clusters["latitude"].to_numpy(), self.clusters["longitude"].to_numpy(), self.network.crs)
         return Layout(self.times, self.clusters, conv, self.unit, self.variable, self.quantity)
 
@@ -349,7 +350,7 @@ def run_partition(plan: BudgetPlan, first: int, last: int, rows: pd.DataFrame | 
 
 
 class MemorySink:
-    """Collects partition results in memory for :func:`assemble` (the Python API's default)."""
+    """Collects the derived partitions in memory (for :func:`finish`; the Python API's default)."""
 
     def __init__(self) -> None:
         self.pieces: list[dict[str, np.ndarray]] = []
@@ -424,35 +425,18 @@ def finish(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, pieces: l
                      plan.window, plan.settings, extras, summary, layout)
 
 
-def assemble(plan: BudgetPlan, pieces: list[dict[str, np.ndarray]], chk: CheckResult) -> BudgetRun:
-    """Join partition results (raw terms, in time order) into the dataset, table and main periods."""
-    layout = plan.layout
-    summary = BudgetSummary.allocate(plan.times, plan.clusters)
-    derived, first = [], 0
-    for p in pieces:
-        block = derive(p, layout.convergence)
-        summary.add(first, block)
-        first += block["regime"].shape[0]
-        derived.append(block)
-    return finish(plan, chk, summary, derived)
-
-
 def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
-                      progress: Progress = _noop, sink=None) -> BudgetRun:
-    """The budget stages on an already checked data set, one time partition at a time.
+                      progress: Progress = _noop) -> BudgetRun:
+    """The budget stages on an already checked data set, in memory (``run.dataset``, ``run.table``).
 
-    Without ``sink`` the partitions are kept and joined into ``run.dataset``
-    and ``run.table``.  With a sink (for example
-    :class:`stationflow.report.stream.BudgetFiles`) each partition goes to
-    ``sink.add(first, derived)`` and is dropped; the run then carries only
-    the summary (``dataset`` and ``table`` are None), so memory stays bounded.
+    Computed one time partition at a time and joined at the end; for long
+    records use :func:`budget_to_files`, which keeps memory bounded.
     """
     plan = plan_budget(chk, config, variable=variable, progress=progress)
     progress("fitting planes and computing the budget")
-    memory = sink is None
-    target = MemorySink() if memory else sink
-    summary = run_partitions(plan, target, config, progress=progress)
-    return finish(plan, chk, summary, target.pieces if memory else None)
+    sink = MemorySink()
+    summary = run_partitions(plan, sink, config, progress=progress)
+    return finish(plan, chk, summary, sink.pieces)
 
 
 def budget_to_files(chk: CheckResult, config: Config, out: str | Path, *, variable: str | None = None,

@@ -1,6 +1,7 @@
 """Write the budget table one time partition at a time: budget.parquet, budget.nc, budget.csv.
 
-:class:`BudgetFiles` is a sink for :func:`stationflow.pipeline.budget_from_check`:
+:class:`BudgetFiles` is a sink for :func:`stationflow.pipeline.run_partitions` (used by
+:func:`stationflow.pipeline.budget_to_files` and the Dask engine):
 every partition is turned into Arrow arrays and written as Parquet row
 groups, as a slab of the (time, cluster) NetCDF variables and, when the
 table is small enough (or asked for), as CSV rows.  Nothing but the current
@@ -43,6 +44,11 @@ def csv_wanted(rows: int, csv: bool = False) -> bool:
     return csv or rows <= CSV_ROW_LIMIT
 
 
+def csv_skipped(rows: int) -> str:
+    """The note printed when budget.csv is not written."""
+    return f"budget.csv not written: {rows:,} rows > {CSV_ROW_LIMIT:,}; use budget.parquet or pass --csv"
+
+
 class BudgetFiles:
     """A sink that writes the budget files partition by partition (use as a context manager).
 
@@ -58,8 +64,7 @@ class BudgetFiles:
         self.write_csv = csv_wanted(self.rows, csv)
         self.notes: list[str] = []
         if not self.write_csv:
-            self.notes.append(f"budget.csv not written: {self.rows:,} rows > {CSV_ROW_LIMIT:,}; "
-                              "use budget.parquet or pass --csv")
+            self.notes.append(csv_skipped(self.rows))
         self.paths = [self.out / "budget.parquet", self.out / "budget.nc"] + ([self.out / "budget.csv"] if self.write_csv else [])
         self._stack = contextlib.ExitStack()
         self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stationflow-writer") if background else None
