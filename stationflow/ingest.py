@@ -607,7 +607,7 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     canon = list(names.values())
     if "station_id" not in canon or "time" not in canon or {"latitude", "longitude"} & set(canon):
         return None
-    var_cols, _ = _variable_columns(canon, oc)
+    var_cols, ignored = _variable_columns(canon, oc)
     if not var_cols or ("wind_from_direction" in var_cols and oc["units"].get("wind_from_direction", "degree") == "compass"):
         return None
     src = {v: k for k, v in names.items()}
@@ -646,7 +646,6 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     years = pc.year(t)
     if pc.any(pc.or_(pc.less(years, 1900), pc.greater(years, 2200))).as_py():
         return None
-    _, ignored = _variable_columns(canon, oc)
     frame = pd.DataFrame({"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words)})
     ns = t.cast(pa.timestamp("ns") if naive else pa.timestamp("ns", tz="UTC")).to_numpy()
     ns = ns.astype("datetime64[ns]").astype(np.int64)

@@ -5,8 +5,7 @@ then renamed, so an interrupted run never leaves a half-written file under
 the final name.
 """
 
-from .files import (atomic_write, write_csv, write_json, write_netcdf, write_parquet, write_rejected,
-                    write_qc_flags)
+from .files import atomic_write, write_csv, write_json, write_qc_flags, write_rejected
+from .stream import BudgetFiles
 
-__all__ = ["atomic_write", "write_csv", "write_json", "write_netcdf", "write_parquet", "write_rejected",
-           "write_qc_flags"]
+__all__ = ["BudgetFiles", "atomic_write", "write_csv", "write_json", "write_qc_flags", "write_rejected"]

@@ -65,27 +65,6 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str,
     return Path(path)
 
 
-def write_parquet(frame: pd.DataFrame, path: str | Path, *, rows_per_group: int = 1_000_000) -> Path:
-    """Write a Parquet file (pyarrow), converting and writing one row group at a time.
-
-    Only one slice of the table is ever held as Arrow data, so memory stays
-    close to the size of the frame itself.
-    """
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-
-    n = len(frame)
-    with atomic_write(path) as tmp:
-        first = pa.Table.from_pandas(frame.iloc[: min(n, rows_per_group)], preserve_index=False)
-        with pq.ParquetWriter(tmp, first.schema, compression="snappy") as writer:
-            writer.write_table(first)
-            del first
-            for a in range(rows_per_group, n, rows_per_group):
-                part = pa.Table.from_pandas(frame.iloc[a:a + rows_per_group], preserve_index=False)
-                writer.write_table(part)
-    return Path(path)
-
-
 def _jsonable(obj):
     if isinstance(obj, (np.integer,)):
         return int(obj)
@@ -118,26 +97,6 @@ def write_rejected(rejected: pd.DataFrame, path: str | Path) -> Path:
 def write_qc_flags(flags: pd.DataFrame, path: str | Path) -> Path:
     """``qc_flags.csv``: station_id, time, variable, flag, tests."""
     return write_csv(flags[["station_id", "time", "variable", "flag", "tests"]], path)
-
-
-def write_netcdf(ds, path: str | Path) -> Path:
-    """CF-style NetCDF (netCDF4 format)."""
-    enc = {}
-    big = ds.sizes.get("time", 0) * ds.sizes.get("cluster", 0) > 1_000_000
-    for name, var in ds.data_vars.items():
-        if var.dtype.kind == "f":
-            # float32 keeps 7 significant digits, plenty for budget terms; compress only small files
-            enc[name] = {"dtype": "float32", "_FillValue": np.float32(np.nan)}
-            if not big:
-                enc[name].update({"zlib": True, "complevel": 1, "shuffle": True})
-        elif var.dtype.kind in "OUS":
-            enc[name] = {"dtype": str}
-        elif name == "regime":
-            enc[name] = {"dtype": "int8"}
-    enc["time"] = {"units": "seconds since 1970-01-01 00:00:00", "calendar": "standard", "dtype": "float64"}
-    with atomic_write(path) as tmp:
-        ds.to_netcdf(tmp, engine="netcdf4", format="NETCDF4", encoding=enc)
-    return Path(path)
 
 
 def write_with(path: str | Path, writer: Callable[[Path], None]) -> Path:

@@ -108,8 +108,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         with_csv = stream.csv_wanted(summary.rows, csv)
         written += [out / n for n in ["budget.parquet", "budget.nc"] + (["budget.csv"] if with_csv else [])]
         if not with_csv:
-            notes.append(f"budget.csv not written: {summary.rows:,} rows > {stream.CSV_ROW_LIMIT:,}; "
-                         "use budget.parquet or pass --csv")
+            notes.append(stream.csv_skipped(summary.rows))
     else:
         with stream.BudgetFiles(out, run.layout, csv=csv, background=False) as sink:
             ds = run.dataset
