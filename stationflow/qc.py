@@ -135,6 +135,24 @@ def _next_finite(x: np.ndarray, codes: np.ndarray) -> np.ndarray:
     return nxt
 
 
+def row_nanmedian(a: np.ndarray) -> np.ndarray:
+    """Median of the finite values of each row of a 2-D array (NaN for a row without any).
+
+    The same numbers as ``np.nanmedian(a, axis=1)``, by one sort of the whole
+    array (NaN sort last) instead of a masked sort per row.
+    """
+    a = np.asarray(a, float)
+    if a.shape[0] == 0 or a.shape[1] == 0:
+        return np.full(a.shape[0], np.nan)
+    s = np.sort(a, axis=1)
+    n = np.count_nonzero(~np.isnan(a), axis=1)
+    lo = np.maximum((n - 1) // 2, 0)
+    hi = np.maximum(n // 2, 0)
+    rows = np.arange(a.shape[0])
+    out = (s[rows, lo] + s[rows, hi]) / 2.0
+    return np.where(n > 0, out, np.nan)
+
+
 def step_limit(table: list[tuple[float, float]] | list[list[float]], minutes: np.ndarray) -> np.ndarray:
     """Largest plausible change over ``minutes``, interpolated log-log in ``table``.
 
@@ -239,18 +257,116 @@ def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
     return ~step, ~spike
 
 
+@dataclass(frozen=True)
+class Slots:
+    """Where each row sits on a regular (station, time) grid: data sorted by station, then time.
+
+    ``cell`` is the flat index ``code * n_slots + slot`` of each row, so a
+    station's series is one row of an ``(n_stations, n_slots)`` array and a
+    trailing time window is a fixed number of columns.
+    """
+
+    cell: np.ndarray
+    n_stations: int
+    n_slots: int
+    step_ns: int
+
+
+def regular_slots(times_ns: np.ndarray, codes: np.ndarray, *, max_fill: float = 3.0) -> Slots | None:
+    """The :class:`Slots` of rows sorted by (station, time), or None when the times are not regular.
+
+    Regular means every time is a whole number of one step (the greatest
+    common divisor of the offsets) from the first, no (station, time) pair
+    repeats, and the grid is at most ``max_fill`` times the number of rows
+    (so sparse or jittered records keep the row-wise path).
+    """
+    n = times_ns.size
+    if n < 2:
+        return None
+    off = times_ns - times_ns.min()
+    step = int(np.gcd.reduce(off))
+    if step <= 0:
+        return None
+    n_slots = int(off.max() // step) + 1
+    n_st = int(codes.max()) + 1
+    if n_slots * n_st > max_fill * n + 1024:
+        return None
+    cell = codes.astype(np.int64) * n_slots + off // step
+    if not (np.diff(cell) > 0).all():  # duplicates or not sorted by (station, time)
+        return None
+    return Slots(cell, n_st, n_slots, step)
+
+
+def _window_extreme(a: np.ndarray, k: int, fn, pad: float) -> np.ndarray:
+    """``fn`` (np.maximum or np.minimum) over ``a[:, i-k .. i]`` for every column i (``pad`` before the start)."""
+    n = a.shape[1]
+    m = np.concatenate([np.full((a.shape[0], k), pad), a], axis=1)
+    length, span = 1, k + 1
+    while 2 * length <= span:  # doubling: m[:, s] is the extreme of `length` columns from s
+        m = fn(m[:, :-length], m[:, length:])
+        length *= 2
+    return fn(m[:, :n], m[:, span - length:span - length + n])
+
+
+def _window_count(a: np.ndarray, k: int) -> np.ndarray:
+    """Number of True in ``a[:, i-k .. i]`` for every column i."""
+    c = np.zeros((a.shape[0], a.shape[1] + 1), np.int32)
+    np.cumsum(a, axis=1, out=c[:, 1:])
+    lo = np.maximum(np.arange(a.shape[1]) - k, 0)
+    return c[:, 1:] - c[:, lo]
+
+
+def _persistent_on_slots(x: np.ndarray, slots: Slots, min_range: float, window_minutes: float) -> np.ndarray:
+    """Rows that fall in a failing persistence window, computed on the regular grid (same rule as below)."""
+    shape = (slots.n_stations, slots.n_slots)
+    k = int(int(window_minutes * 6e10) // slots.step_ns)
+    fin = np.isfinite(x)
+    hi = np.full(shape, -np.inf)
+    lo = np.full(shape, np.inf)
+    hi.reshape(-1)[slots.cell[fin]] = x[fin]
+    lo.reshape(-1)[slots.cell[fin]] = x[fin]
+    rng = _window_extreme(hi, k, np.maximum, -np.inf)
+    rng -= _window_extreme(lo, k, np.minimum, np.inf)
+    del hi, lo
+    present = np.zeros(shape, bool)
+    present.reshape(-1)[slots.cell] = True
+    finite = np.zeros(shape, bool)
+    finite.reshape(-1)[slots.cell[fin]] = True
+    n_all = _window_count(present, k)
+    n_in = _window_count(finite, k)
+    # first present column of each window: the next present column at or after i - k
+    cols = np.arange(slots.n_slots)
+    nxt = np.where(present, cols[None, :], slots.n_slots)
+    nxt = np.minimum.accumulate(nxt[:, ::-1], axis=1)[:, ::-1]
+    first = nxt[:, np.maximum(cols - k, 0)]
+    span = (cols[None, :] - first) * (slots.step_ns / 6e10)
+    fail = finite & (n_in >= 3) & (n_in >= 0.5 * n_all) & (span >= 0.8 * window_minutes) & (rng < min_range)
+    # every row inside a failing window fails: a failure at i covers columns i-k .. i
+    c = np.zeros((shape[0], shape[1] + k + 1), np.int32)
+    np.cumsum(fail, axis=1, out=c[:, 1:shape[1] + 1])
+    c[:, shape[1] + 1:] = c[:, shape[1]:shape[1] + 1]
+    covered = (c[:, k + 1:k + 1 + shape[1]] - c[:, :shape[1]]) > 0
+    return covered.reshape(-1)[slots.cell]
+
+
 def not_persistent(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, min_range: float,
-                   window_minutes: float, *, exempt: np.ndarray | None = None) -> np.ndarray:
+                   window_minutes: float, *, exempt: np.ndarray | None = None, slots: Slots | None = None) -> np.ndarray:
     """Persistence test: False for values in a window with less variation than ``min_range``.
 
     The trailing window of ``window_minutes`` must be at least 80 % covered
     and hold at least 3 values; then every value in a failing window fails.
     ``exempt`` marks values that may legitimately persist (calm, fog).
+    ``slots`` (from :func:`regular_slots`) selects the faster grid form of
+    the same rule for regular records.
     """
     x = np.asarray(values, float).copy()
     n = x.size
     if exempt is not None:
         x[exempt] = np.nan
+    if slots is not None:
+        covered = _persistent_on_slots(x, slots, min_range, window_minutes)
+        exempt_mask = np.zeros(n, bool) if exempt is None else np.asarray(exempt, bool)
+        return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)
     _, run_start = _segments(codes)
     w = int(window_minutes * 6e10)
     key = codes.astype(np.int64)
@@ -361,8 +477,8 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     r = vals - pred
     # studentise: an extrapolated prediction (station outside its neighbours) is less certain
     rs = r / np.sqrt(1.0 + leverage)
-    med = np.nanmedian(rs, axis=1, keepdims=True) if n_t else rs
-    mad = 1.4826 * np.nanmedian(np.abs(rs - med), axis=1, keepdims=True)
+    med = row_nanmedian(rs)[:, None]
+    mad = 1.4826 * row_nanmedian(np.abs(rs - med))[:, None]
     dev = rs - med
     # relaxed (night, light wind) only for values colder/lower than predicted: cold pools are real
     cold_relax = np.zeros(vals.shape, bool) if relaxed is None else (np.asarray(relaxed)[:, None] & (dev < 0))
@@ -401,7 +517,9 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     """Run every test on the tidy observations and combine the results into flags.
 
     ``observations`` must be the ingest result (canonical names, SI units).
-    Vectorised over stations and time.
+    Vectorised over stations and time.  The variables are independent until
+    the internal-consistency tests, so they are checked on two threads (the
+    work is large numpy operations, which release the GIL).
     """
     cfg = config or Config()
     qcfg = cfg["qc"]
@@ -416,27 +534,45 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     fired: dict[str, dict[str, np.ndarray]] = {v: {} for v in variables}
     arr = {v: obs[v].to_numpy(float) for v in variables}
     calm_speed = qcfg["calm_speed"]
+    slots = regular_slots(tns, codes)
+
+    def check(v: str) -> None:
+        """The single-variable tests of ``v``, then its spatial test (which skips values already failed)."""
+        x = arr[v]
+        if v in th["range"]:
+            fired[v]["range"] = ~within_range(x, *th["range"][v])
+        elif _is_pm(v):
+            fired[v]["range"] = ~within_range(x, 0.0, 1000.0)
+        if v in th["step"]:
+            step_ok, spike_ok = plausible_steps(x, tns, codes, th["step"][v])
+            fired[v]["step"] = ~step_ok
+            fired[v]["spike"] = ~spike_ok
+        if v in th["persistence"] or _is_pm(v):
+            mr, win = th["persistence"].get(v, (1e-9, 60.0))
+            exempt = None
+            if v == "wind_speed":
+                exempt = x < calm_speed
+            elif v == "wind_from_direction" and "wind_speed" in arr:
+                exempt = ~(arr["wind_speed"] >= calm_speed)
+            elif v == "relative_humidity":
+                exempt = x >= 99.0
+            fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt, slots=slots)
+        if spatial is not None and v in spatial.names:
+            spatial.run(v, fired[v])
+
     if qcfg["enabled"]:
-        for v in variables:
-            x = arr[v]
-            if v in th["range"]:
-                fired[v]["range"] = ~within_range(x, *th["range"][v])
-            elif _is_pm(v):
-                fired[v]["range"] = ~within_range(x, 0.0, 1000.0)
-            if v in th["step"]:
-                step_ok, spike_ok = plausible_steps(x, tns, codes, th["step"][v])
-                fired[v]["step"] = ~step_ok
-                fired[v]["spike"] = ~spike_ok
-            if v in th["persistence"] or _is_pm(v):
-                mr, win = th["persistence"].get(v, (1e-9, 60.0))
-                exempt = None
-                if v == "wind_speed":
-                    exempt = x < calm_speed
-                elif v == "wind_from_direction" and "wind_speed" in arr:
-                    exempt = ~(arr["wind_speed"] >= calm_speed)
-                elif v == "relative_humidity":
-                    exempt = x >= 99.0
-                fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt)
+        spatial = _Spatial.setup(obs, stations, arr, cfg, th) if qcfg["spatial"] else None
+        # the heaviest variables first, so the two threads finish together
+        work = sorted(variables, key=lambda v: spatial is None or v not in spatial.names)
+        if n >= THREADED_ROWS and len(work) > 1:
+            from concurrent.futures import ThreadPoolExecutor
+
+            with ThreadPoolExecutor(max_workers=2, thread_name_prefix="stationflow-qc") as pool:
+                for fut in [pool.submit(check, v) for v in work]:
+                    fut.result()
+        else:
+            for v in work:
+                check(v)
         if "dew_point_temperature" in arr and "air_temperature" in arr:
             fired["dew_point_temperature"]["consistency"] = ~dew_point_not_above_temperature(
                 arr["dew_point_temperature"], arr["air_temperature"], qcfg["dew_point_tolerance"])
@@ -445,8 +581,6 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         if "wind_from_direction" in arr and "wind_speed" in arr:
             fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
                 arr["wind_from_direction"], arr["wind_speed"], calm_speed)
-        if qcfg["spatial"]:
-            _spatial(obs, stations, arr, fired, cfg, th)
     flags: dict[str, np.ndarray] = {}
     tests: dict[str, np.ndarray] = {}
     inv = np.empty(n, np.int64)
@@ -456,8 +590,10 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         f = np.where(missing, MISSING, GOOD).astype(np.int8)
         bits = np.zeros(n, np.int16)
         spatial_bad = fired[v].pop("spatial_bad", None)
-        for name, mask in fired[v].items():
-            mask = mask & ~missing
+        for name in TEST_BITS:  # a fixed order: the result does not depend on which thread finished first
+            if name not in fired[v]:
+                continue
+            mask = fired[v][name] & ~missing
             bits |= np.where(mask, TEST_BITS[name], 0).astype(np.int16)
             sev = SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name])
             f = np.where(mask & (f < sev), sev, f).astype(np.int8)
@@ -468,62 +604,99 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     return QCResult(flags, tests)
 
 
-def _spatial(obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, fired: dict, cfg: Config, th: dict) -> None:
-    """Run the buddy test on bin means of the surface stations and map the result back to the rows."""
-    import warnings
+#: rows above which the variables are checked on two threads
+THREADED_ROWS = 200_000
 
-    from .align import bin_index, infer_interval, to_grid
-    from .geometry import assign_roles, project
 
-    qcfg = cfg["qc"]
-    st = stations.reset_index(drop=True)
-    x, y, _, _ = project(st["latitude"].to_numpy(), st["longitude"].to_numpy())
-    surface = assign_roles(st, x, y) == "surface"
-    surface_ids = st["station_id"][surface].tolist()
-    if len(surface_ids) < 5:
-        return
-    interval = infer_interval(obs)
-    t0 = obs["time"].min().ceil(interval)
-    rows = bin_index(obs["time"], t0, interval)
-    col = station_columns(obs["station_id"], surface_ids)
-    inside = (col >= 0) & (rows >= 0)
-    flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
-    sx, sy = x[surface], y[surface]
-    sz = st["elevation"].to_numpy(float)[surface]
-    names = [v for v in arr if v in SPATIAL_VARIABLES or _is_pm(v)]
-    frame = obs[["station_id", "time"] + [v for v in names + ["wind_speed"] if v in obs]]
-    start, end = t0, obs["time"].max()
-    lat0, lon0 = float(st["latitude"].mean()), float(st["longitude"].mean())
-    light = None
-    if "wind_speed" in arr:
-        wind = to_grid(frame, surface_ids, ["wind_speed"], interval=interval, start=start, end=end)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            light = ~(np.nanmedian(wind.values["wind_speed"], axis=1) >= qcfg["spatial_light_wind"])
-    sigma = cfg["uncertainty"]["sensor"]
-    for v in names:
-        already = np.zeros(len(obs), bool)
-        for m in fired[v].values():
+@dataclass
+class _Spatial:
+    """What the buddy test of every variable shares: the surface stations, the grid, light-wind times."""
+
+    frames: dict[str, pd.DataFrame]
+    arr: dict
+    cfg: Config
+    th: dict
+    names: list[str]
+    surface_ids: list[str]
+    sx: np.ndarray
+    sy: np.ndarray
+    sz: np.ndarray
+    interval: pd.Timedelta
+    start: pd.Timestamp
+    end: pd.Timestamp
+    inside: np.ndarray
+    flat: np.ndarray
+    lat0: float
+    lon0: float
+    light: np.ndarray | None
+
+    @classmethod
+    def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, cfg: Config, th: dict) -> "_Spatial | None":
+        import warnings
+
+        from .align import bin_index, infer_interval, to_grid
+        from .geometry import assign_roles, project
+
+        qcfg = cfg["qc"]
+        st = stations.reset_index(drop=True)
+        x, y, _, _ = project(st["latitude"].to_numpy(), st["longitude"].to_numpy())
+        surface = assign_roles(st, x, y) == "surface"
+        surface_ids = st["station_id"][surface].tolist()
+        if len(surface_ids) < 5:
+            return None
+        interval = infer_interval(obs)
+        t0 = obs["time"].min().ceil(interval)
+        rows = bin_index(obs["time"], t0, interval)
+        col = station_columns(obs["station_id"], surface_ids)
+        inside = (col >= 0) & (rows >= 0)
+        flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
+        names = [v for v in arr if v in SPATIAL_VARIABLES or _is_pm(v)]
+        # one frame per variable, made here: the threads that test the variables share no pandas object
+        frames = {v: obs[["station_id", "time", v]] for v in names}
+        end = obs["time"].max()
+        light = None
+        if "wind_speed" in arr:
+            wind = to_grid(obs[["station_id", "time", "wind_speed"]], surface_ids, ["wind_speed"], interval=interval, start=t0, end=end)
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                light = ~(row_nanmedian(wind.values["wind_speed"]) >= qcfg["spatial_light_wind"])
+        return cls(frames, arr, cfg, th, names, surface_ids, x[surface], y[surface],
+                   st["elevation"].to_numpy(float)[surface], interval, t0, end, inside, flat,
+                   float(st["latitude"].mean()), float(st["longitude"].mean()), light)
+
+    def run(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
+        """The buddy test of ``v`` on bin means of the surface stations, mapped back to the rows."""
+        import warnings
+
+        from .align import to_grid
+
+        qcfg = self.cfg["qc"]
+        n = len(self.arr[v])
+        already = np.zeros(n, bool)
+        for m in fired_v.values():
             already |= m
-        grid = to_grid(frame, surface_ids, [v], interval=interval, start=start, end=end, usable={v: ~already})
-        night = solar_elevation(grid.times, lat0, lon0) < 0
-        relaxed = night & (light if light is not None else True)
+        grid = to_grid(self.frames[v], self.surface_ids, [v], interval=self.interval, start=self.start, end=self.end,
+                       usable={v: ~already})
+        night = solar_elevation(grid.times, self.lat0, self.lon0) < 0
+        relaxed = night & (self.light if self.light is not None else True)
         data = grid.values[v]
         data = np.log(np.fmax(data, 0.5)) if _is_pm(v) else data
-        floor = th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
+        floor = self.th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
+        sigma = self.cfg["uncertainty"]["sensor"]
         opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
                     suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed,
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            passed, bad, _ = agrees_with_neighbours(data, sx, sy, sz, **opts)
-        finite = np.isfinite(arr[v])
-        fail = np.zeros(len(obs), bool)
-        badm = np.zeros(len(obs), bool)
+            passed, bad, _ = agrees_with_neighbours(data, self.sx, self.sy, self.sz, **opts)
+        finite = np.isfinite(self.arr[v])
+        fail = np.zeros(n, bool)
+        badm = np.zeros(n, bool)
+        inside, flat = self.inside, self.flat
         fail[inside] = ~passed.reshape(-1)[flat[inside]]
         badm[inside] = bad.reshape(-1)[flat[inside]]
-        fired[v]["spatial"] = fail & finite
-        fired[v]["spatial_bad"] = badm & finite
+        fired_v["spatial"] = fail & finite
+        fired_v["spatial_bad"] = badm & finite
 
 
 def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:

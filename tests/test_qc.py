@@ -1,5 +1,7 @@
 """Quality control: each test at its threshold edges, defaults against their sources, and fault recall."""
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -197,3 +199,72 @@ def test_real_front_not_flagged_for_disagreeing(arm_dir, arm_config):
     spatial = (res.tests["air_temperature"] & qc.TEST_BITS["spatial"]) > 0
     assert not spatial.any(), data.observations.loc[spatial, "station_id"].unique()
     assert not (res.flags["air_temperature"] == qc.BAD).any()
+
+
+def test_persistence_on_the_regular_grid_equals_the_row_rule():
+    # the grid form (regular records) must flag exactly the rows the row-wise rule flags:
+    # random gaps, missing values, exempt values, windows that are not a whole number of steps
+    rng = np.random.default_rng(7)
+    checked = 0
+    for _ in range(150):
+        n_st, n_slots = int(rng.integers(1, 6)), int(rng.integers(2, 80))
+        step = int(rng.choice([1, 5, 10])) * MIN
+        st, sl = np.nonzero(rng.random((n_st, n_slots)) < rng.uniform(0.3, 1.0))
+        if st.size < 2:
+            continue
+        t = 1_700_000_000 * 10**9 + sl.astype(np.int64) * step
+        c = np.unique(st, return_inverse=True)[1]
+        v = np.round(rng.normal(280.0, 0.05, st.size), 2)
+        v[rng.random(v.size) < 0.3] = 280.0  # flat stretches
+        v[rng.random(v.size) < 0.1] = np.nan
+        exempt = rng.random(v.size) < 0.1 if rng.random() < 0.5 else None
+        window = float(rng.choice([7.0, 30.0, 45.0, 60.0, 120.0]))
+        slots = qc.regular_slots(t, c, max_fill=1e9)
+        if slots is None:  # all rows at one time: no step to build a grid on
+            continue
+        rows = qc.not_persistent(v, t, c, 0.1, window, exempt=exempt)
+        grid = qc.not_persistent(v, t, c, 0.1, window, exempt=exempt, slots=slots)
+        assert np.array_equal(rows, grid)
+        checked += 1
+    assert checked > 100
+
+
+def test_regular_slots_declines_irregular_or_sparse_records():
+    t = np.arange(200, dtype=np.int64) * 5 * MIN
+    c = np.zeros(200, np.int64)
+    s = qc.regular_slots(t, c)
+    assert s is not None and s.step_ns == 5 * MIN and s.n_slots == 200
+    jitter = t.copy()
+    jitter[17] += 7 * 10**9  # one report 7 s late: the common step would be 1 s
+    assert qc.regular_slots(jitter, c) is None
+    repeat = t.copy()
+    repeat[18] = repeat[17]  # a repeated time
+    assert qc.regular_slots(repeat, c) is None
+    sparse = t.copy()
+    sparse[-1] = 10**6 * MIN  # one far-off report: the grid would be mostly empty
+    assert qc.regular_slots(sparse, c) is None
+
+
+def test_row_nanmedian_equals_numpy():
+    rng = np.random.default_rng(3)
+    for _ in range(100):
+        a = rng.normal(size=(int(rng.integers(1, 20)), int(rng.integers(1, 15))))
+        a[rng.random(a.shape) < rng.uniform(0, 1)] = np.nan
+        a[rng.random(a.shape) < 0.05] = np.inf
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows
+            ref = np.nanmedian(a, axis=1)
+        assert np.array_equal(qc.row_nanmedian(a), ref, equal_nan=True)
+
+
+def test_threaded_qc_equals_serial(monkeypatch):
+    obs, st, _ = _fault_network()
+    cfg = from_dict({})
+    monkeypatch.setattr(qc, "THREADED_ROWS", 10**12)
+    serial = qc.run_qc(obs, st, cfg)
+    monkeypatch.setattr(qc, "THREADED_ROWS", 0)
+    threaded = qc.run_qc(obs, st, cfg)
+    assert any((f > 0).any() & (f < 3).any() for f in serial.flags.values())  # tests fired
+    for v in serial.flags:
+        assert np.array_equal(serial.flags[v], threaded.flags[v])
+        assert np.array_equal(serial.tests[v], threaded.tests[v])
