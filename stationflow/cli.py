@@ -294,7 +294,8 @@ def budget(
             --config sample_data/frost/config.toml --out frost_out
     """
     from .pipeline import budget_to_files, run_check
-    from .report.outputs import write_budget
+    from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
+    from .report.painter import Painter
 
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
@@ -303,16 +304,21 @@ def budget(
             from .errors import ConfigError
 
             raise ConfigError("--scheduler goes with --engine dask")
-        chk = run_check(obs, stations, cfg, progress=report)
-        if engine == Engine.dask:
-            from .scale import budget_to_files_dask
+        with Painter() as painter:  # figures are drawn in a second process while the budget is computed
+            chk = run_check(obs, stations, cfg, progress=report)
+            qc_fig = submit_qc_figure(painter, out, chk)
+            figs: dict = {}
+            if engine == Engine.dask:
+                from .scale import budget_to_files_dask
 
-            run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
-        else:
-            run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report)
-        report("writing the report")
-        _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
-                                tables_written=True)
+                run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
+                figs = submit_budget_figures(painter, out, run)
+            else:
+                run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report,
+                                      on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
+            report("writing the report")
+            _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
+                                    tables_written=True, qc_figure=qc_fig, figures=figs)
         if not quiet:
             typer.echo(_budget_summary(run, out, notes))
 
@@ -358,7 +364,8 @@ def demo(
     """
     from . import synthetic
     from .pipeline import budget_to_files, run_check
-    from .report.outputs import write_budget
+    from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
+    from .report.painter import Painter
 
     def job(report):
         folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
@@ -368,11 +375,16 @@ def demo(
             make, write = synthetic.SCENARIOS[scenario.value]
             write(make(), folder)
         cfg = _config(folder / "config.toml")
-        chk = run_check(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
-        run = budget_to_files(chk, cfg, out, progress=report)
-        report("writing the report")
-        _, notes = write_budget(out, run, inputs={"observations": folder / "observations.csv",
-                                                  "stations": folder / "stations.csv"}, tables_written=True)
+        with Painter() as painter:
+            chk = run_check(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
+            qc_fig = submit_qc_figure(painter, out, chk)
+            figs: dict = {}
+            run = budget_to_files(chk, cfg, out, progress=report,
+                                  on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
+            report("writing the report")
+            _, notes = write_budget(out, run, inputs={"observations": folder / "observations.csv",
+                                                      "stations": folder / "stations.csv"}, tables_written=True,
+                                    qc_figure=qc_fig, figures=figs)
         if not quiet:
             typer.echo(f"scenario: {scenario.value} ({folder})")
             typer.echo(_budget_summary(run, out, notes))

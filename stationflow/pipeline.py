@@ -440,13 +440,16 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
 
 
 def budget_to_files(chk: CheckResult, config: Config, out: str | Path, *, variable: str | None = None,
-                    csv: bool = False, progress: Progress = _noop) -> BudgetRun:
+                    csv: bool = False, progress: Progress = _noop,
+                    on_summary: Callable[[BudgetRun], None] | None = None) -> BudgetRun:
     """The budget written partition by partition to ``out``/budget.parquet, budget.nc (and budget.csv).
 
     Memory is bounded by one partition (plus the one being written); the
     returned run has ``summary`` but no ``dataset`` or ``table``.  Use
     :func:`stationflow.report.outputs.write_budget` with
-    ``tables_written=True`` for the report and figures.
+    ``tables_written=True`` for the report and figures.  ``on_summary(run)``
+    is called as soon as the last partition is computed, while the files are
+    still being finished (to start the figures).
     """
     from .report.stream import BudgetFiles
 
@@ -454,7 +457,10 @@ def budget_to_files(chk: CheckResult, config: Config, out: str | Path, *, variab
     progress("fitting planes and computing the budget")
     with BudgetFiles(out, plan.layout, csv=csv) as sink:
         summary = run_partitions(plan, sink, config, progress=progress)
-    return finish(plan, chk, summary, None)
+        run = finish(plan, chk, summary, None)
+        if on_summary is not None:
+            on_summary(run)
+    return run
 
 
 def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import platform
+from concurrent.futures import Future
 from importlib import metadata
 from pathlib import Path
 
@@ -15,6 +16,7 @@ from ..align import format_duration
 from ..budget import describe_period
 from ..geometry import cluster_table
 from . import files, stream
+from .painter import Painter
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
 
 
@@ -46,16 +48,45 @@ def run_record(command: str, inputs: dict, config, accounting: dict, extra: dict
     return rec
 
 
-def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure: bool = True) -> list[Path]:
-    """run.json, rejected_rows.csv, qc_flags.csv, qc_summary.csv and qc_overview.png."""
+def submit_qc_figure(painter: Painter, out: Path, chk) -> Future:
+    """Start drawing qc_overview.png (the image is prepared here, drawn by ``painter``)."""
     from . import plots
 
     out.mkdir(parents=True, exist_ok=True)
+    image = plots.qc_overview_image(chk.data.observations, chk.qc.flags)
+    return painter.submit(plots.draw_qc_overview, image, out / "qc_overview.png")
+
+
+def submit_budget_figures(painter: Painter, out: Path, run) -> dict[str, Future]:
+    """Start drawing budget_timeseries.png and budget_map.png from the run's summary."""
+    from . import plots
+
+    out.mkdir(parents=True, exist_ok=True)
+    tz = run.check.config["observations"]["timezone"]
+    local = None if tz.strip().upper() in ("UTC", "Z", "GMT") else tz
+    panels = plots.timeseries_panels(run.summary, tz=local)
+    summary = run.summary
+    return {
+        "timeseries": painter.submit(plots.draw_timeseries, panels, out / "budget_timeseries.png", unit=run.unit, tz=local),
+        "map": painter.submit(plots.network_map, run.network, out / "budget_map.png", colour_by=summary.dominant(),
+                              arrows=summary.arrows(), title="Clusters by dominant regime; mean wind and gradient"),
+    }
+
+
+def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure: bool = True,
+                qc_figure: Future | None = None) -> list[Path]:
+    """run.json, rejected_rows.csv, qc_flags.csv, qc_summary.csv and qc_overview.png.
+
+    ``qc_figure``: the figure already started with :func:`submit_qc_figure`.
+    """
+    out.mkdir(parents=True, exist_ok=True)
+    if figure and qc_figure is None:
+        qc_figure = submit_qc_figure(Painter(background=False), out, chk)
     written = [files.write_rejected(chk.data.rejected, out / "rejected_rows.csv"),
                files.write_qc_flags(chk.flags, out / "qc_flags.csv")]
     written.append(files.write_csv(chk.periods, out / "qc_periods.csv", time_columns=("start", "end")))
     if figure:
-        written.append(plots.qc_overview(chk.data.observations, chk.qc.flags, out / "qc_overview.png"))
+        written.append(qc_figure.result())
     qc_counts = {f"{r.variable}:{r.test}": int(r.values) for r in chk.per_test.itertuples()}
     extra = {"qc": {"tests_fired": qc_counts, "flags": _flag_counts(chk)},
              "stations": int(len(chk.data.stations)), "variables": chk.data.variables,
@@ -91,18 +122,21 @@ def write_network(out: Path, network, *, inputs: dict, config, accounting: dict 
 
 
 def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: bool = True,
-                 tables_written: bool = False) -> tuple[list[Path], list[str]]:
+                 tables_written: bool = False, qc_figure: Future | None = None,
+                 figures: dict[str, Future] | None = None) -> tuple[list[Path], list[str]]:
     """Every budget output. Returns (paths, notes for the user).
 
     ``tables_written``: budget.parquet / budget.nc / budget.csv were already
     streamed by :class:`stationflow.report.stream.BudgetFiles` (the CLI
     path); otherwise they are written here from ``run.dataset``.
+    ``qc_figure`` and ``figures``: figures already started on a
+    :class:`~stationflow.report.painter.Painter` (drawn here otherwise).
     """
-    from . import plots
-
     out.mkdir(parents=True, exist_ok=True)
     notes: list[str] = []
-    written = write_check(out, run.check, inputs=inputs, command="budget")
+    if report and not figures:
+        figures = submit_budget_figures(Painter(background=False), out, run)
+    written = write_check(out, run.check, inputs=inputs, command="budget", qc_figure=qc_figure)
     summary = run.summary
     if tables_written:
         with_csv = stream.csv_wanted(summary.rows, csv)
@@ -120,10 +154,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     figs: list[tuple[str, Path]] = []
     if report:
-        local = None if tz.strip().upper() in ("UTC", "Z", "GMT") else tz
-        ts = plots.budget_timeseries(summary, out / "budget_timeseries.png", unit=run.unit, tz=local)
-        mp = plots.network_map(run.network, out / "budget_map.png", colour_by=summary.dominant(), arrows=summary.arrows(),
-                               title="Clusters by dominant regime; mean wind and gradient")
+        ts, mp = figures["timeseries"].result(), figures["map"].result()
         figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
                 ("Quality control overview", out / "qc_overview.png")]
         written += [ts, mp]

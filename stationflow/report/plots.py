@@ -45,30 +45,40 @@ def _save(fig, path: str | Path) -> Path:
         plt.close(fig)
 
 
-def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: str | Path, *, max_bins: int = 400) -> Path:
-    """Stations by time, coloured by the worst flag of any variable in each time bin."""
+def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], *, max_bins: int = 400) -> dict:
+    """What :func:`draw_qc_overview` draws: the worst flag per station and time bin (small arrays)."""
+    worst = np.full(len(observations), 3, np.int8)
+    for f in flags.values():
+        present = f != 3
+        worst = np.where(present & ((worst == 3) | (f > worst)), f, worst)
+    codes, uniq = pd.factorize(observations["station_id"])
+    names = np.array([str(u) for u in uniq], dtype=object)
+    by_id = np.argsort(names, kind="stable")  # stations sorted by id
+    rank = np.empty(len(names), np.int64)
+    rank[by_id] = np.arange(len(names))
+    codes = rank[codes]
+    stations = names[by_id].tolist()
+    t = observations["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    t0, t1 = (int(t.min()), int(t.max())) if len(t) else (0, 0)
+    per_station = np.bincount(codes, minlength=len(stations)) if len(stations) else np.zeros(1, int)
+    nb = int(min(max_bins, max(1, per_station.max())))
+    span = max((t1 - t0) / 1e9, 1.0)
+    b = np.minimum(((t - t0) / 1e9 / span * nb).astype(int), nb - 1)
+    img = np.full((len(stations), nb), -1, np.int8)
+    # worst flag per cell, missing only where nothing was present
+    order = np.argsort(np.where(worst == 3, -1, worst), kind="stable")
+    img[codes[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
+    img = np.where(img < 0, 3, img)
+    return {"img": img, "stations": stations, "t0": pd.Timestamp(t0, tz="UTC"), "span": span, "bins": nb}
+
+
+def draw_qc_overview(image: dict, path: str | Path) -> Path:
+    """Draw the QC overview from :func:`qc_overview_image` (runs in the figure process)."""
     plt = _plt()
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
 
-    worst = np.full(len(observations), 3, np.int8)
-    present_any = np.zeros(len(observations), bool)
-    for f in flags.values():
-        present = f != 3
-        present_any |= present
-        worst = np.where(present & ((worst == 3) | (f > worst)), f, worst)
-    stations = sorted(observations["station_id"].unique())
-    t = pd.DatetimeIndex(observations["time"])
-    t0, t1 = t.min(), t.max()
-    nb = int(min(max_bins, max(1, observations.groupby("station_id").size().max())))
-    span = max((t1 - t0).total_seconds(), 1.0)
-    b = np.minimum(((t - t0).total_seconds() / span * nb).astype(int), nb - 1)
-    s = pd.Index(stations).get_indexer(observations["station_id"])
-    img = np.full((len(stations), nb), -1, np.int8)
-    # worst flag per cell, missing only where nothing was present
-    order = np.argsort(np.where(worst == 3, -1, worst), kind="stable")
-    img[s[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
-    img = np.where(img < 0, 3, img)
+    img, stations, t0, span, nb = image["img"], image["stations"], image["t0"], image["span"], image["bins"]
     fig, ax = plt.subplots(figsize=(10, min(14.0, max(2.5, 0.22 * len(stations) + 1.2))))
     ax.imshow(img, aspect="auto", interpolation="nearest", cmap=ListedColormap(FLAG_COLOURS), vmin=0, vmax=3,
               extent=(0, nb, len(stations) - 0.5, -0.5))
@@ -85,6 +95,11 @@ def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: 
     ax.legend(handles=[Patch(facecolor=c, edgecolor="#999999", label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
               loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
     return _save(fig, path)
+
+
+def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: str | Path, *, max_bins: int = 400) -> Path:
+    """Stations by time, coloured by the worst flag of any variable in each time bin."""
+    return draw_qc_overview(qc_overview_image(observations, flags, max_bins=max_bins), path)
 
 
 def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
@@ -182,22 +197,14 @@ def _shade_regimes(ax, times: pd.DatetimeIndex, regimes: np.ndarray, *, alpha: f
     ax.set_xlim(x[0] - half, x[-1] + half)
 
 
-def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
-                      max_panels: int = 8, tz: str | None = None) -> Path:
-    """Tendency, advection and residual with 95 % bands per cluster, regimes shaded.
-
-    ``summary`` is a :class:`stationflow.summary.BudgetSummary`; ``clusters``
-    are indices into its clusters (default: those with the most determined steps).
-    """
-    plt = _plt()
-    from matplotlib.patches import Patch
-
+def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels: int = 8,
+                      tz: str | None = None) -> list[dict]:
+    """What :func:`draw_timeseries` draws: per cluster panel, the (block-mean) series and regimes."""
     if clusters is None:
         clusters = summary.busiest(max_panels)
-    n = len(clusters)
-    fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
     names = ("tendency", "advection", "residual")
-    for ax, c in zip(axes[:, 0], clusters):
+    panels = []
+    for c in clusters:
         d = summary.series(c)
         tt = pd.DatetimeIndex(d["time"])
         if tz:
@@ -219,6 +226,20 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
                 cols = {name: np.nanmean(v[:m].reshape(-1, k), axis=1) for name, v in cols.items()}
             tt = tt[:m:k]
             reg = reg[k // 2:m:k]  # the regime in the middle of each block
+        panels.append({"time": tt, "columns": cols, "regime": reg, "label": summary.clusters["cluster"].iloc[c],
+                       "stations": summary.clusters["stations"].iloc[c]})
+    return panels
+
+
+def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str | None = None) -> Path:
+    """Draw the budget figure from :func:`timeseries_panels` (runs in the figure process)."""
+    plt = _plt()
+    from matplotlib.patches import Patch
+
+    n = len(panels)
+    fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
+    for ax, p in zip(axes[:, 0], panels):
+        tt, cols, reg = p["time"], p["columns"], p["regime"]
         for name, colour in (("tendency", "#222222"), ("advection", REGIME_COLOURS["advective"]),
                              ("residual", REGIME_COLOURS["in_situ"])):
             val, se = cols[name], cols[f"{name}_se"]
@@ -227,9 +248,8 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
         _shade_regimes(ax, tt, reg)
         ax.axhline(0, color="#888888", lw=0.6)
         ax.tick_params(labelsize=7)
-        label, stations = summary.clusters["cluster"].iloc[c], summary.clusters["stations"].iloc[c]
-        ax.set_ylabel(f"{label}\n{unit}/h", fontsize=8)
-        ax.set_title(f"cluster {label}  ({stations})", fontsize=8, loc="left")
+        ax.set_ylabel(f"{p['label']}\n{unit}/h", fontsize=8)
+        ax.set_title(f"cluster {p['label']}  ({p['stations']})", fontsize=8, loc="left")
     axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
     handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
     axes[-1, 0].legend(handles=handles, loc="lower right", fontsize=7, ncol=3, frameon=False, title="regime (shading)",
@@ -239,3 +259,14 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
     fig.autofmt_xdate()
     fig.tight_layout()
     return _save(fig, path)
+
+
+def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
+                      max_panels: int = 8, tz: str | None = None) -> Path:
+    """Tendency, advection and residual with 95 % bands per cluster, regimes shaded.
+
+    ``summary`` is a :class:`stationflow.summary.BudgetSummary`; ``clusters``
+    are indices into its clusters (default: those with the most determined steps).
+    """
+    return draw_timeseries(timeseries_panels(summary, clusters=clusters, max_panels=max_panels, tz=tz), path,
+                           unit=unit, tz=tz)

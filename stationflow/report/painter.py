@@ -1,0 +1,87 @@
+"""Figures drawn in a second process while the main one computes.
+
+matplotlib's import and the drawing of the report figures are pure Python
+and cost a few seconds; on a machine with two or more cores they can run
+beside the budget computation instead of after it.  A :class:`Painter`
+starts one worker process (``spawn``: safe with the writer thread, and no
+copy of a large heap), warms it up (imports matplotlib), and takes drawing
+jobs whose arguments are small (the prepared images and series, not the
+observations).  ``Painter(background=False)`` draws in this process; every
+job returns a :class:`concurrent.futures.Future` either way, and a failure in
+the worker is raised again by ``future.result()``.
+
+The worker is started only where it can help (``os.cpu_count() > 1``) and
+falls back to drawing in this process when a process cannot be started.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+from concurrent.futures import Future
+from typing import Any, Callable
+
+log = logging.getLogger(__name__)
+
+
+def _warm_up() -> None:
+    """Import the plotting stack in the worker before the first figure is asked for."""
+    from . import plots
+
+    plots._plt()
+
+
+class Painter:
+    """Draw figures in a worker process (or here, when ``background`` is False or no process can start)."""
+
+    def __init__(self, background: bool | None = None) -> None:
+        if background is None:
+            background = (os.cpu_count() or 1) > 1 and os.environ.get("STATIONFLOW_FIGURES", "") != "inline"
+        self._pool = None
+        if background:
+            try:
+                import multiprocessing
+                from concurrent.futures import ProcessPoolExecutor
+
+                self._pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
+                self._pool.submit(_warm_up)
+            except (OSError, ImportError, RuntimeError, ValueError) as exc:  # no processes here: draw inline
+                log.info("figures drawn in this process (%s)", exc)
+                self._pool = None
+
+    @property
+    def background(self) -> bool:
+        """True when figures are drawn in the worker process."""
+        return self._pool is not None
+
+    def submit(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Future:
+        """Run ``fn(*args, **kwargs)`` in the worker (a module-level function with picklable arguments)."""
+        if self._pool is not None:
+            try:
+                return self._pool.submit(fn, *args, **kwargs)
+            except RuntimeError as exc:  # the pool broke (worker killed): draw here
+                log.info("figure worker unavailable (%s); drawing in this process", exc)
+                self._pool = None
+        fut: Future = Future()
+        try:
+            fut.set_result(fn(*args, **kwargs))
+        except Exception as exc:  # noqa: BLE001 - handed to the caller through the future
+            fut.set_exception(exc)
+        return fut
+
+    def close(self) -> None:
+        """Wait for the jobs in flight and stop the worker."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True)
+            self._pool = None
+
+    def __enter__(self) -> "Painter":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if exc[0] is not None and self._pool is not None:  # the run failed: do not wait for figures
+            for proc in list(getattr(self._pool, "_processes", {}).values()):
+                proc.terminate()
+            self._pool.shutdown(wait=False, cancel_futures=True)
+            self._pool = None
+        self.close()

@@ -1,0 +1,57 @@
+"""Figures drawn in the second process: same files as drawn here, errors reach the caller."""
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from stationflow import synthetic
+from stationflow.report import plots
+from stationflow.report.painter import Painter
+
+
+def _image():
+    st = synthetic.network(6, seed=1)
+    times = pd.date_range("2026-01-01", periods=40, freq="10min", tz="UTC")
+    obs = pd.DataFrame({"station_id": np.repeat(st["station_id"].to_numpy(), len(times)),
+                        "time": np.tile(times, len(st))})
+    flags = {"air_temperature": np.random.default_rng(0).integers(0, 4, len(obs)).astype(np.int8)}
+    return obs, flags
+
+
+def test_background_figure_matches_inline(tmp_path):
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags)
+    inline = plots.draw_qc_overview(image, tmp_path / "inline.png")
+    with Painter(background=True) as painter:
+        fut = painter.submit(plots.draw_qc_overview, image, tmp_path / "worker.png")
+        path = fut.result(timeout=120)
+    assert painter.background is False  # closed
+    assert path == tmp_path / "worker.png"
+    assert path.read_bytes() == inline.read_bytes()
+
+
+def test_image_is_the_worst_flag_per_station_and_bin():
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags, max_bins=40)  # one bin per time step here
+    assert image["stations"] == sorted(obs["station_id"].unique())
+    f = flags["air_temperature"].reshape(6, 40)  # rows are station-major in _image()
+    order = np.argsort(obs["station_id"].unique())
+    assert np.array_equal(image["img"], f[order])
+
+
+def _fails(path):
+    raise ValueError(f"cannot draw {path}")
+
+
+def test_worker_errors_reach_the_caller(tmp_path):
+    with Painter(background=True) as painter:
+        fut = painter.submit(_fails, tmp_path / "x.png")
+        with pytest.raises(ValueError, match="cannot draw"):
+            fut.result(timeout=120)
+
+
+def test_inline_painter_runs_at_once(tmp_path):
+    painter = Painter(background=False)
+    assert not painter.background
+    fut = painter.submit(_fails, tmp_path / "x.png")
+    assert fut.done() and isinstance(fut.exception(), ValueError)
