@@ -153,9 +153,10 @@ class BudgetFiles:
         sample = self._arrow(0, {n: v[:0] for n, v in block.items()})
         self.schema = sample.schema
         self._parquet = self._stack.enter_context(
-            # dictionary encoding only for the label columns: for float columns it costs time and gains nothing
+            # dictionary encoding only for the label columns, and min/max statistics only for the columns one
+            # filters on (time range, cluster): for the float columns both cost time and gain nothing
             pq.ParquetWriter(self._tmp["budget.parquet"], self.schema, compression="snappy",
-                             use_dictionary=["cluster", "stations", "regime"]))
+                             use_dictionary=["cluster", "stations", "regime"], write_statistics=["time", "cluster"]))
         if self.write_csv:
             self._csv = self._stack.enter_context(
                 pacsv.CSVWriter(self._tmp["budget.csv"], self._csv_table(sample).schema,
