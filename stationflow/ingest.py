@@ -880,7 +880,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     else:
         rej_rows = [(files[i], int(lines[i]), reasons[i]) for i in np.flatnonzero(bad_row)]
     keep = ~bad_row
-    good = out[keep].copy()
+    good = out if keep.all() else out[keep].copy()  # `out` is this function's own frame: no copy when all rows stay
     good_lines = np.asarray(lines)[keep]
     good_files = np.asarray(files)[keep]
     good, dup_rejects, collapsed = _deduplicate(good, good_lines, good_files, var_cols)
@@ -954,6 +954,8 @@ def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_c
     s_codes, s_ids = pd.factorize(good["station_id"])
     t_codes, _ = pd.factorize(pd.DatetimeIndex(good["time"]).asi8)
     key = t_codes.astype(np.int64) * max(1, len(s_ids)) + s_codes  # one integer per (station, time)
+    if key.size < 2 or bool((key[1:] > key[:-1]).all()):  # strictly increasing (a file in time order): no repeats
+        return good, [], 0
     dup = pd.Series(key).duplicated(keep=False).to_numpy()
     if not dup.any():
         return good, [], 0

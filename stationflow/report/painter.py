@@ -3,8 +3,9 @@
 matplotlib's import and the drawing of the report figures are pure Python
 and cost a few seconds; on a machine with two or more cores they can run
 beside the budget computation instead of after it.  A :class:`Painter`
-starts one worker process (``spawn``: safe with the writer thread, and no
-copy of a large heap), warms it up (imports matplotlib), and takes drawing
+starts two worker processes (``spawn``: safe with the writer thread, and no
+copy of a large heap; two, so the two budget figures asked for at the end
+are drawn at once), warms them up (imports matplotlib), and takes drawing
 jobs whose arguments are small (the prepared images and series, not the
 observations).  ``Painter(background=False)`` draws in this process; every
 job returns a :class:`concurrent.futures.Future` either way, and a failure in
@@ -34,7 +35,7 @@ def _warm_up() -> None:
 class Painter:
     """Draw figures in a worker process (or here, when ``background`` is False or no process can start)."""
 
-    def __init__(self, background: bool | None = None) -> None:
+    def __init__(self, background: bool | None = None, *, workers: int = 2) -> None:
         if background is None:
             background = (os.cpu_count() or 1) > 1 and os.environ.get("STATIONFLOW_FIGURES", "") != "inline"
         self._pool = None
@@ -43,8 +44,10 @@ class Painter:
                 import multiprocessing
                 from concurrent.futures import ProcessPoolExecutor
 
-                self._pool = ProcessPoolExecutor(max_workers=1, mp_context=multiprocessing.get_context("spawn"))
-                self._pool.submit(_warm_up)
+                n = max(1, min(workers, (os.cpu_count() or 1)))
+                self._pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"))
+                for _ in range(n):  # one warm-up per worker: each starts and imports matplotlib now
+                    self._pool.submit(_warm_up)
             except (OSError, ImportError, RuntimeError, ValueError) as exc:  # no processes here: draw inline
                 log.info("figures drawn in this process (%s)", exc)
                 self._pool = None

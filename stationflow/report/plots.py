@@ -33,11 +33,13 @@ def _plt():
     return plt
 
 
-def _save(fig, path: str | Path) -> Path:
+def _save(fig, path: str | Path, *, tight: bool = True) -> Path:
+    """Write the figure atomically; ``tight`` crops to the drawn extent (needed for legends outside the axes;
+    it costs a second draw)."""
     plt = _plt()
 
     def writer(tmp: Path) -> None:
-        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
+        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight" if tight else None)
 
     try:
         return write_with(path, writer)
@@ -257,8 +259,8 @@ def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str 
     axes[-1, 0].set_xlabel(f"local time ({tz})" if tz else "time (UTC)")
     fig.suptitle("Budget per cluster: tendency = advection + residual (bands: 95 %)", fontsize=10)
     fig.autofmt_xdate()
-    fig.tight_layout()
-    return _save(fig, path)
+    fig.tight_layout()  # the legends are inside the axes: no second, cropping draw needed
+    return _save(fig, path, tight=False)
 
 
 def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
