@@ -306,7 +306,8 @@ def compute_budget(
     if np.isfinite(u).any():
         from .kinematics import fit_wind, kinematics
 
-        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations))
+        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations),
+                         deformation=False)  # the budget reports divergence and vorticity only
         for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
             out[name] = kin[name]
     out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],

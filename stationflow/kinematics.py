@@ -48,12 +48,15 @@ def fit_wind(u: np.ndarray, v: np.ndarray, x: np.ndarray, y: np.ndarray, members
     return WindFit(half(slice(0, n_t)), half(slice(n_t, 2 * n_t)))
 
 
-def kinematics(w: WindFit) -> dict[str, np.ndarray]:
-    """Divergence, vorticity and deformations [s-1] with standard errors."""
+def kinematics(w: WindFit, *, deformation: bool = True) -> dict[str, np.ndarray]:
+    """Divergence, vorticity and (unless ``deformation=False``) deformations [s-1] with standard errors."""
     u, v = w.u, w.v
     var_ux, var_uy, var_vx, var_vy = u.var_x, u.var_y, v.var_x, v.var_y
     se_dd = np.sqrt(var_ux + var_vy)
     se_zz = np.sqrt(var_vx + var_uy)
+    if not deformation:
+        return {"divergence": u.grad_x + v.grad_y, "divergence_se": se_dd,
+                "vorticity": v.grad_x - u.grad_y, "vorticity_se": se_zz}
     d1 = u.grad_x - v.grad_y
     d2 = v.grad_x + u.grad_y
     return {

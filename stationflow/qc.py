@@ -437,29 +437,40 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     """
     from scipy.spatial import cKDTree
 
-    from .gradient import fit_planes
-
     vals = np.asarray(values, float)
-    if passes > 1:
-        first, _, _ = agrees_with_neighbours(vals, x, y, z, neighbours=neighbours, max_distance_m=max_distance_m,
-                                             suspect_z=suspect_z, bad_z=bad_z, floor=floor, relaxed=relaxed,
-                                             relax=relax, sigma=sigma, predictors=predictors, passes=1)
-        base = vals if predictors is None else np.asarray(predictors, float)
-        predictors = np.where(first, base, np.nan)
     n_t, n_s = vals.shape
     k = min(neighbours, n_s - 1)
-    passed = np.ones(vals.shape, bool)
-    bad = np.zeros(vals.shape, bool)
-    resid = np.full(vals.shape, np.nan)
     if k < 3:
-        return passed, bad, resid
+        return np.ones(vals.shape, bool), np.zeros(vals.shape, bool), np.full(vals.shape, np.nan)
     tree = cKDTree(np.column_stack([x, y]))
     dist, idx = tree.query(np.column_stack([x, y]), k=k + 1)
-    nb = idx[:, 1:]
-    members = [nb[i] for i in range(n_s)]
-    centres = np.column_stack([x, y])
+    members = [idx[i, 1:] for i in range(n_s)]
+    far = dist[:, 1:].max(axis=1) > max_distance_m if max_distance_m > 0 else None
+    base = vals if predictors is None else np.asarray(predictors, float)
+    pred, leverage = _buddy_predictions(base, x, y, z, members, sigma, far)
+    judge = dict(suspect_z=suspect_z, bad_z=bad_z, floor=floor, relaxed=relaxed, relax=relax)
+    for _ in range(passes - 1):
+        # later passes leave out the values the previous pass failed; the fits are independent per
+        # time, so only the times where a predictor changed are fitted again (the same numbers)
+        first, _, _ = _judge(vals, pred, leverage, **judge)
+        src = np.where(first, base, np.nan)
+        rows = np.flatnonzero((np.isnan(src) != np.isnan(base)).any(axis=1))
+        if rows.size:
+            pred = pred.copy()
+            leverage = leverage.copy()
+            pred[rows], leverage[rows] = _buddy_predictions(src[rows], x, y, z, members, sigma, far)
+        base = src
+    return _judge(vals, pred, leverage, **judge)
+
+
+def _buddy_predictions(src: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, members: list[np.ndarray],
+                       sigma: float, far: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+    """Leave-one-out predictions of every station from its neighbours, and their leverage (see above)."""
+    from .gradient import fit_planes
+
+    n_t, n_s = src.shape
     zz = np.asarray(z, float)
-    src = vals if predictors is None else np.asarray(predictors, float)
+    centres = np.column_stack([x, y])
     # one vertical gradient per time from the whole network (stable), then a plain plane among
     # the neighbours of the lapse-adjusted values: pred_s = plane(v - g z)(s) + g z_s
     gamma = np.zeros(n_t)
@@ -471,9 +482,14 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     fit = fit_planes(adjusted, x, y, members, sigma=sigma, centres=centres, residuals=False)
     pred = fit.value + gamma[:, None] * z0[None, :]
     leverage = fit.var_value / sigma ** 2  # prediction variance in units of one reading's
-    if max_distance_m > 0:
-        far = dist[:, 1:].max(axis=1) > max_distance_m
+    if far is not None:
         pred[:, far] = np.nan
+    return pred, leverage
+
+
+def _judge(vals: np.ndarray, pred: np.ndarray, leverage: np.ndarray, *, suspect_z: float, bad_z: float,
+           floor: float, relaxed: np.ndarray | None, relax: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Studentised residuals against the robust spread of each time: (passed, bad, residual)."""
     r = vals - pred
     # studentise: an extrapolated prediction (station outside its neighbours) is less certain
     rs = r / np.sqrt(1.0 + leverage)

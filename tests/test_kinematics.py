@@ -67,3 +67,15 @@ def test_calm_counts_as_zero_wind():
     s, d = vector_mean(np.array([0.2, 4.0]), np.array([90.0, 270.0]))
     assert s == pytest.approx(2.0)
     assert d == pytest.approx(270.0)
+
+
+def test_divergence_and_vorticity_do_not_depend_on_the_deformation_option():
+    rng = np.random.default_rng(5)
+    x, y = rng.uniform(-5e3, 5e3, 5), rng.uniform(-5e3, 5e3, 5)
+    u = 2.0 + 1e-4 * x[None, :] - 3e-5 * y[None, :] + rng.normal(0, 0.1, (4, 5))
+    v = -1.0 + 2e-5 * x[None, :] + 5e-5 * y[None, :] + rng.normal(0, 0.1, (4, 5))
+    w = fit_wind(u, v, x, y, [np.arange(5)])
+    full, short = kinematics(w), kinematics(w, deformation=False)
+    assert set(short) == {"divergence", "divergence_se", "vorticity", "vorticity_se"}
+    for k in short:
+        assert np.array_equal(full[k], short[k])
