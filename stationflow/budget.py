@@ -100,13 +100,19 @@ def _window_sums(a: np.ndarray, h: int, power: int) -> tuple[np.ndarray, np.ndar
     acc = np.zeros_like(a)
     wsum = np.zeros_like(a)
     n = a.shape[0]
+    present = np.isfinite(a)
+    a0 = np.where(present, a, 0.0)  # missing samples add nothing (the same sums as masking each offset)
+    present = present.astype(a.dtype)
+    tmp = np.empty_like(a)
     for j, w in zip(range(-h, h + 1), w_full):  # loop over the window's offsets, not over time
-        src = slice(max(0, j), n + min(0, j))
-        dst = slice(max(0, -j), n - max(0, j))
-        seg = a[src]
-        ok = np.isfinite(seg)
-        acc[dst] += np.where(ok, seg * w ** power, 0.0)
-        wsum[dst] += np.where(ok, w, 0.0)
+        m = max(0, n - abs(j))  # samples that have a partner at this offset
+        src = slice(max(0, j), max(0, j) + m)
+        dst = slice(max(0, -j), max(0, -j) + m)
+        t = tmp[:m]
+        np.multiply(a0[src], w ** power, out=t)
+        acc[dst] += t
+        np.multiply(present[src], w, out=t)
+        wsum[dst] += t
     return acc, wsum, float(w_full.sum())
 
 

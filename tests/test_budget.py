@@ -141,3 +141,14 @@ def test_main_periods_and_description():
     assert len(p) == 1 and p[0]["steps"] == 4
     assert describe_period(p[0], variable="air_temperature") == \
         "cluster T03, 2026-04-15 04:50-05:20 UTC: advective cooling -1.90 +/- 0.20 K/h"
+
+
+def test_window_sums_on_records_shorter_than_the_window():
+    # analytic: with every sample present, the weights are 1 inside the window and 1/2 at its ends
+    from stationflow import budget
+
+    acc, wsum, total = budget._window_sums(np.ones((2, 3)), 3, 1)
+    assert total == 6.0
+    assert np.array_equal(wsum, np.full((2, 3), 2.0)) and np.array_equal(acc, wsum)
+    acc, wsum, _ = budget._window_sums(np.ones((7, 1)), 3, 1)
+    assert wsum[3, 0] == 6.0 and wsum[0, 0] == 3.5  # centre: full window; first step: offsets 0..3
