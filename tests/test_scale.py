@@ -1,5 +1,9 @@
 """Partitioned runs give the same numbers: chunked local runs and the Dask engine."""
 
+import os
+import subprocess
+import sys
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -70,3 +74,16 @@ def test_dask_engine_writes_the_same_files(reference, tmp_path):
     ref = reference.table.assign(cluster=reference.table["cluster"].astype(str))
     _assert_same(ref, table.assign(cluster=table["cluster"].astype(str), regime=table["regime"].astype(str)))
     assert run.periods == reference.periods
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc settings apply on Linux only")
+def test_allocator_settings_reach_pyarrow_unless_the_user_chose():
+    code = ("from stationflow.memory import tune_allocator; ok = tune_allocator(); import pyarrow as pa; "
+            "print(ok, pa.default_memory_pool().backend_name)")
+    env = {k: v for k, v in os.environ.items() if k != "ARROW_DEFAULT_MEMORY_POOL"}
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env, check=True).stdout.split()
+    if out[0] == "True":  # glibc present: pyarrow follows onto the system allocator
+        assert out[1] == "system"
+    chosen = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
+                            env={**env, "ARROW_DEFAULT_MEMORY_POOL": "jemalloc" if out[1] != "jemalloc" else "mimalloc"})
+    assert chosen.stdout.split()[1] != "system"  # a user's own choice is kept
