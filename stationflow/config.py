@@ -109,7 +109,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "significance": Key(2.0, (int, float), "a term counts when it exceeds this many standard errors (REFERENCES 2.1, common practice)"),
         "dominance": Key(0.67, (int, float), "share |A|/(|A|+|R|) above which the change is advective (below 1 - this: in situ) (common practice)"),
         "min_rate": Key(0.0, (int, float), "terms smaller than this are never significant [variable unit per hour]"),
-        "chunk": Key("", (str,), "process this much time at once, e.g. '7D' (default: automatic, about a million cluster-steps per partition; results are identical)"),
+        "chunk": Key("", (str,), "process this much time at once, e.g. '7D' (default: automatic, about half a million cluster-steps per partition; results are identical)"),
     },
 }
 

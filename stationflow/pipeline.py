@@ -158,7 +158,7 @@ def run_budget(obs: str | Path, stations: str | Path | None, config: Config, *, 
 
 
 #: cluster-steps per automatic time partition (when budget.chunk is not set)
-AUTO_CHUNK = 1_000_000
+AUTO_CHUNK = 500_000
 
 
 @dataclass
