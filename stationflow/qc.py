@@ -317,7 +317,7 @@ def _window_count(a: np.ndarray, k: int) -> np.ndarray:
 
 
 def _persistent_on_slots(x: np.ndarray, slots: Slots, min_range: float, window_minutes: float) -> np.ndarray:
-    """Rows that fall in a failing persistence window, computed on the regular grid (same rule as below)."""
+    """Rows that fall in a failing persistence window, on the regular grid (the rule of :func:`_persistent_on_rows`)."""
     shape = (slots.n_stations, slots.n_slots)
     k = int(int(window_minutes * 6e10) // slots.step_ns)
     fin = np.isfinite(x)
@@ -360,13 +360,20 @@ def not_persistent(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, 
     the same rule for regular records.
     """
     x = np.asarray(values, float).copy()
-    n = x.size
     if exempt is not None:
         x[exempt] = np.nan
     if slots is not None:
         covered = _persistent_on_slots(x, slots, min_range, window_minutes)
-        exempt_mask = np.zeros(n, bool) if exempt is None else np.asarray(exempt, bool)
-        return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)
+    else:
+        covered = _persistent_on_rows(x, times_ns, codes, min_range, window_minutes)
+    exempt_mask = np.zeros(x.size, bool) if exempt is None else np.asarray(exempt, bool)
+    return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)
+
+
+def _persistent_on_rows(x: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, min_range: float,
+                        window_minutes: float) -> np.ndarray:
+    """Rows that fall in a failing persistence window, on rows sorted by (station, time) (any spacing)."""
+    n = x.size
     _, run_start = _segments(codes)
     w = int(window_minutes * 6e10)
     key = codes.astype(np.int64)
@@ -384,9 +391,7 @@ def not_persistent(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, 
             & ((mx - mn) < min_range))
     # every value inside a failing window fails
     mark = np.bincount(start[fail], minlength=n + 1) - np.bincount(np.flatnonzero(fail) + 1, minlength=n + 1)
-    covered = np.cumsum(mark)[:n] > 0
-    exempt_mask = np.zeros(n, bool) if exempt is None else np.asarray(exempt, bool)
-    return ~(covered & np.isfinite(np.asarray(values, float)) & ~exempt_mask)
+    return np.cumsum(mark)[:n] > 0
 
 
 def dew_point_not_above_temperature(dew_point: np.ndarray, temperature: np.ndarray, tolerance: float = 0.5) -> np.ndarray:
