@@ -360,7 +360,7 @@ class MemorySink:
 
 
 def derive(terms: dict[str, np.ndarray], convergence: np.ndarray) -> dict[str, np.ndarray]:
-    """The output variables of a partition: the terms plus true-north directions, regime as int8 codes.
+    """The output variables of a partition: the terms (regime as int8 codes) plus true-north directions.
 
     ``convergence`` is the meridian convergence at each cluster centroid; grid
     bearings minus it are true bearings.
@@ -368,9 +368,6 @@ def derive(terms: dict[str, np.ndarray], convergence: np.ndarray) -> dict[str, n
     from .variables import wind_direction
 
     out = dict(terms)
-    reg = np.asarray(out["regime"])
-    if reg.dtype.kind not in "iu":
-        out["regime"] = pd.Categorical(reg.reshape(-1), categories=list(REGIMES)).codes.astype(np.int8).reshape(reg.shape)
     conv = np.asarray(convergence)[None, :]
     out["wind_from_direction"] = (wind_direction(terms["u"], terms["v"]) - conv) % 360.0
     with np.errstate(invalid="ignore"):

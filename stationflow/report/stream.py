@@ -142,7 +142,6 @@ class BudgetFiles:
         clusters = self.layout.clusters
         n_c = len(clusters)
         self._index_type = pa.int16() if n_c < 2 ** 15 else pa.int32()
-        self._codes = pa.array(np.arange(n_c), self._index_type)
         self._cluster_names = pa.array(clusters["cluster"].astype(str).to_numpy(), pa.string())
         self._station_names = pa.array(clusters["stations"].astype(str).to_numpy(), pa.string())
         self._lat = clusters["latitude"].to_numpy(float)
