@@ -293,10 +293,6 @@ def budget(
             --obs sample_data/frost/observations.csv \\
             --config sample_data/frost/config.toml --out frost_out
     """
-    from .pipeline import budget_to_files, run_check
-    from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
-    from .report.painter import Painter
-
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
         cfg = _config(config)
@@ -304,25 +300,42 @@ def budget(
             from .errors import ConfigError
 
             raise ConfigError("--scheduler goes with --engine dask")
-        with Painter() as painter:  # figures are drawn in a second process while the budget is computed
-            chk = run_check(obs, stations, cfg, progress=report)
-            qc_fig = submit_qc_figure(painter, out, chk)
-            figs: dict = {}
-            if engine == Engine.dask:
-                from .scale import budget_to_files_dask
-
-                run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
-                figs = submit_budget_figures(painter, out, run)
-            else:
-                run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report,
-                                      on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
-            report("writing the report")
-            _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
-                                    tables_written=True, qc_figure=qc_fig, figures=figs)
+        run, notes = _budget_job(obs, stations, cfg, out, report, variable=variable, csv=csv,
+                                 dask=engine == Engine.dask, scheduler=scheduler)
         if not quiet:
             typer.echo(_budget_summary(run, out, notes))
 
     _run(job, quiet=quiet)
+
+
+def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, variable: str | None = None,
+                csv: bool = False, dask: bool = False, scheduler: str | None = None):
+    """Check, budget (streamed to ``out``) and report; returns (run, notes). Shared by ``budget`` and ``demo``.
+
+    The figures are drawn in worker processes while the budget is computed:
+    the QC overview as soon as QC is done, the budget figures as soon as the
+    last partition is (while the files are closed).
+    """
+    from .pipeline import budget_to_files, run_check
+    from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
+    from .report.painter import Painter
+
+    with Painter() as painter:
+        chk = run_check(obs, stations, cfg, progress=report)
+        qc_fig = submit_qc_figure(painter, out, chk)
+        figs: dict = {}
+        if dask:
+            from .scale import budget_to_files_dask
+
+            run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
+            figs = submit_budget_figures(painter, out, run)
+        else:
+            run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report,
+                                  on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
+        report("writing the report")
+        _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
+                                tables_written=True, qc_figure=qc_fig, figures=figs)
+    return run, notes
 
 
 def _budget_summary(run, out: Path, notes: list[str]) -> str:
@@ -363,9 +376,6 @@ def demo(
         stationflow demo --scenario frost --out demo_output/frost
     """
     from . import synthetic
-    from .pipeline import budget_to_files, run_check
-    from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
-    from .report.painter import Painter
 
     def job(report):
         folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
@@ -375,16 +385,7 @@ def demo(
             make, write = synthetic.SCENARIOS[scenario.value]
             write(make(), folder)
         cfg = _config(folder / "config.toml")
-        with Painter() as painter:
-            chk = run_check(folder / "observations.csv", folder / "stations.csv", cfg, progress=report)
-            qc_fig = submit_qc_figure(painter, out, chk)
-            figs: dict = {}
-            run = budget_to_files(chk, cfg, out, progress=report,
-                                  on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
-            report("writing the report")
-            _, notes = write_budget(out, run, inputs={"observations": folder / "observations.csv",
-                                                      "stations": folder / "stations.csv"}, tables_written=True,
-                                    qc_figure=qc_fig, figures=figs)
+        run, notes = _budget_job(folder / "observations.csv", folder / "stations.csv", cfg, out, report)
         if not quiet:
             typer.echo(f"scenario: {scenario.value} ({folder})")
             typer.echo(_budget_summary(run, out, notes))
