@@ -187,7 +187,7 @@ def _shade_regimes(ax, times: pd.DatetimeIndex, regimes: np.ndarray, *, alpha: f
 
     if len(times) == 0:
         return
-    x = mdates.date2num(times.to_pydatetime()) if len(times) < 2 else mdates.date2num(np.asarray(times))
+    x = mdates.date2num(np.asarray(times))
     rgba = np.zeros((1, len(x), 4))
     for r in ("advective", "in_situ", "mixed"):
         rgba[0, regimes == r] = to_rgba(REGIME_COLOURS[r], alpha)
@@ -202,27 +202,23 @@ def _shade_regimes(ax, times: pd.DatetimeIndex, regimes: np.ndarray, *, alpha: f
 def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels: int = 8,
                       tz: str | None = None) -> list[dict]:
     """What :func:`draw_timeseries` draws: per cluster panel, the (block-mean) series and regimes."""
+    import warnings
+
+    from ..ingest import _timezone
+
     if clusters is None:
         clusters = summary.busiest(max_panels)
     names = ("tendency", "advection", "residual")
+    zone = _timezone(tz) if tz else "UTC"
     panels = []
     for c in clusters:
         d = summary.series(c)
-        tt = pd.DatetimeIndex(d["time"])
-        if tz:
-            from ..ingest import _timezone
-
-            tt = tt.tz_convert(_timezone(tz))
-        else:
-            tt = tt.tz_convert("UTC")
-        tt = tt.tz_localize(None)
+        tt = pd.DatetimeIndex(d["time"]).tz_convert(zone).tz_localize(None)
         cols = {k: d[k].to_numpy(float) for k in names + tuple(f"{k}_se" for k in names)}
         reg = d["regime"].astype(str).to_numpy()
         if len(d) > 900:  # long records: block means keep the figure legible and fast
             k = int(np.ceil(len(d) / 600))  # about one block per two pixels
             m = len(d) // k * k
-            import warnings
-
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)
                 cols = {name: np.nanmean(v[:m].reshape(-1, k), axis=1) for name, v in cols.items()}
