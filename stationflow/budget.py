@@ -31,6 +31,7 @@ import numpy as np
 import pandas as pd
 
 from .gradient import PlaneFit, fit_planes
+from .ingest import _timezone, is_utc
 
 log = logging.getLogger(__name__)
 
@@ -317,7 +318,7 @@ def compute_budget(
         for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
             out[name] = kin[name]
     out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
-                             significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
+                                   significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
     return out
 
 
@@ -413,9 +414,7 @@ def describe_period(p: dict, *, variable: str, timezone: str | None = None) -> s
     if start.tzinfo is None:
         start, end = start.tz_localize("UTC"), end.tz_localize("UTC")
     when = f"{_span(start, end)} UTC"
-    if timezone and timezone.strip().upper() not in ("UTC", "Z", "GMT", "+00:00"):
-        from .ingest import _timezone
-
+    if timezone and not is_utc(timezone):
         tz = _timezone(timezone)
         ls, le = start.tz_convert(tz), end.tz_convert(tz)
         when = f"{_span(ls, le)} {ls.strftime('%Z') or timezone} ({start:%H:%M}-{end:%H:%M} UTC)"

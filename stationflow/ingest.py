@@ -283,6 +283,12 @@ def parse_numbers(col: pd.Series, missing: set[str]) -> tuple[np.ndarray, np.nda
     return x, bad
 
 
+def is_utc(name: str) -> bool:
+    """True when the time-zone setting ``name`` means UTC ('UTC', 'Z', 'GMT', '+00:00', ...)."""
+    tz = _timezone(name)
+    return isinstance(tz, _dt.timezone) and tz.utcoffset(None) == _dt.timedelta(0)
+
+
 def _timezone(name: str) -> _dt.tzinfo:
     m = re.fullmatch(r"(?:UTC)?\s*([+-])(\d{1,2})(?::?(\d{2}))?", name.strip())
     if m:

@@ -15,6 +15,7 @@ from .. import __version__
 from ..align import format_duration
 from ..budget import describe_period
 from ..geometry import cluster_table
+from ..ingest import is_utc
 from . import files, stream
 from .painter import Painter
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
@@ -63,7 +64,7 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict[str, Future]
 
     out.mkdir(parents=True, exist_ok=True)
     tz = run.check.config["observations"]["timezone"]
-    local = None if tz.strip().upper() in ("UTC", "Z", "GMT") else tz
+    local = None if is_utc(tz) else tz
     panels = plots.timeseries_panels(run.summary, tz=local)
     summary = run.summary
     return {
