@@ -572,7 +572,7 @@ def read_observations(
                 n_rows = len(lines) + len(rejected)
                 if oc["layout"] == "wide":
                     frame, lines = _melt_wide(frame, lines, cfg, str(p))
-        files = np.full(len(frame), str(sources[0]) if sources else str(p), dtype=object)
+        files = str(sources[0]) if sources else str(p)  # one file: one name for every row
     return _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations)
 
 
@@ -623,7 +623,7 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
 
     def parse(time_type):
         return pacsv.read_csv(
-            io.BytesIO(data[head_end + 1:]),
+            pa.BufferReader(pa.py_buffer(data)[head_end + 1:]),  # the rows after the header, not copied
             read_options=pacsv.ReadOptions(column_names=header, block_size=1 << 24),
             parse_options=pacsv.ParseOptions(delimiter=oc["delimiter"], quote_char=False, ignore_empty_lines=False),
             convert_options=pacsv.ConvertOptions(column_types={**types, src["time"]: time_type}, null_values=missing,
@@ -649,8 +649,8 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     t = table[src["time"]]
     if t.null_count:
         return None
-    years = pc.year(t)
-    if pc.any(pc.or_(pc.less(years, 1900), pc.greater(years, 2200))).as_py():
+    span = pc.min_max(t)  # the earliest and latest times tell whether any is outside 1900-2200
+    if span["min"].as_py().year < 1900 or span["max"].as_py().year > 2200:
         return None
     frame = pd.DataFrame({"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words)})
     ns = t.cast(pa.timestamp("ns") if naive else pa.timestamp("ns", tz="UTC")).to_numpy()
@@ -811,15 +811,15 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
             except ConfigError as exc:
                 raise ConfigError(f"observations.units.{name}: {exc}") from None
     n = len(frame)
-    reasons = np.full(n, None, dtype=object)
+    reasons = _Reasons()
     station = _station_labels(frame["station_id"])
     times, bad_t, t_reasons = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
                                           time_format=oc["time_format"], timezone=oc["timezone"], station=station)
     for i in np.flatnonzero(bad_t):
-        reasons[i] = t_reasons[i]
+        reasons.add(i, t_reasons[i])
     empty_sid = (station == "").to_numpy(bool)
     for i in np.flatnonzero(empty_sid):
-        reasons[i] = reasons[i] or "station_id is empty"
+        reasons.add(i, "station_id is empty")
     missing = {str(m) for m in oc["missing_values"]}
     out = pd.DataFrame({"station_id": station.array,
                         "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")})
@@ -838,10 +838,10 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
             x, bad = parse_numbers(col, missing)
             x = V.convert(x, name, units_cfg.get(name))
         for i in np.flatnonzero(bad):
-            if reasons[i] is None:
+            if i not in reasons:
                 raw = col.iloc[i]
-                reasons[i] = f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else \
-                    f"{name}: {_clip(raw)!r} is not a finite number"
+                reasons.add(i, f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else
+                            f"{name}: {_clip(raw)!r} is not a finite number")
         out[name] = x
     if "wind_from_direction" in out:
         d = out["wind_from_direction"].to_numpy()
@@ -871,8 +871,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
         sid = out["station_id"][unknown].iloc[0]
         raise IngestError(f"{src_name}: column {sid!r} is not a station in the stations file; add it there or drop the column")
     for i in np.flatnonzero(unknown):
-        reasons[i] = reasons[i] or f"station {_clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)"
-    bad_row = pd.notna(reasons)
+        reasons.add(i, f"station {_clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)")
+    bad_row = reasons.mask(n)
     if wide_rows is not None:
         # one bad cell rejects its whole line: a wide line is one row
         bad_line = np.zeros(wide_rows.max() + 1 if len(wide_rows) else 0, bool)
@@ -882,14 +882,18 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
         idx = seen_rows.index[seen_rows.to_numpy() >= 0].to_numpy()
         reported[idx] = True
         bad_row = bad_line[wide_rows]
-        rej_rows = [(files[i], int(lines[i]), reasons[i]) for i in np.flatnonzero(reported)]
+        rej_rows = [(_file_of(files, i), int(lines[i]), reasons[i]) for i in np.flatnonzero(reported)]
     else:
-        rej_rows = [(files[i], int(lines[i]), reasons[i]) for i in np.flatnonzero(bad_row)]
+        rej_rows = [(_file_of(files, i), int(lines[i]), reasons[i]) for i in np.flatnonzero(bad_row)]
     keep = ~bad_row
-    good = out if keep.all() else out[keep].copy()  # `out` is this function's own frame: no copy when all rows stay
-    good_lines = np.asarray(lines)[keep]
-    good_files = np.asarray(files)[keep]
-    good, dup_rejects, collapsed = _deduplicate(good, good_lines, good_files, var_cols)
+    if keep.all():  # `out` is this function's own frame: no copy when all rows stay
+        good, good_lines, good_files = out, np.asarray(lines), files
+    else:
+        good = out[keep].copy()
+        good_lines = np.asarray(lines)[keep]
+        good_files = files if isinstance(files, str) else np.asarray(files)[keep]
+    ordered = _in_key_order(good)
+    good, dup_rejects, collapsed = (good, [], 0) if ordered else _deduplicate(good, good_lines, good_files, var_cols)
     rej_rows.extend(dup_rejects)
     rejected_all = list(rejected) + rej_rows
     rej = pd.DataFrame(rejected_all, columns=["file", "line", "reason"])
@@ -899,11 +903,59 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     n_rej = len(rej)
     accounting = {"rows_read": int(n_rows), "rows_accepted": int(n_rows - n_rej), "rows_rejected": int(n_rej),
                   "duplicates_collapsed": int(collapsed)}
-    good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
-    good["station_id"] = good["station_id"].cat.remove_unused_categories()
-    good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
+    if not ordered:
+        good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
+    elif good is not out:
+        good = good.reset_index(drop=True)
+    codes = good["station_id"].cat.codes.to_numpy()
+    used = np.bincount(codes[codes >= 0], minlength=len(good["station_id"].cat.categories)) > 0
+    if not used.all():  # by the codes (a set of the labels would hash every row)
+        good["station_id"] = good["station_id"].cat.remove_categories(good["station_id"].cat.categories[~used])
+    if pd.DatetimeIndex(good["time"]).unit != "ns":
+        good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
     units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
     return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored)
+
+
+class _Reasons(dict):
+    """Why rows are rejected: row number -> the first reason found (most rows have none)."""
+
+    def add(self, row: int, reason: str) -> None:
+        """Record ``reason`` for ``row`` unless it already has one."""
+        self.setdefault(int(row), reason)
+
+    def __contains__(self, row) -> bool:
+        return super().__contains__(int(row))
+
+    def __getitem__(self, row):
+        return super().__getitem__(int(row))
+
+    def mask(self, n: int) -> np.ndarray:
+        """Boolean mask of the rows with a reason."""
+        m = np.zeros(n, bool)
+        if self:
+            m[np.fromiter(self.keys(), np.int64, len(self))] = True
+        return m
+
+
+def _file_of(files: str | np.ndarray, row: int) -> str:
+    """The source file of ``row``: ``files`` is one name for every row, or one name per row."""
+    return files if isinstance(files, str) else files[row]
+
+
+def _in_key_order(frame: pd.DataFrame) -> bool:
+    """True when the rows are in strictly increasing (time, station) order: sorted, and no (station, time) twice.
+
+    Station order is the order of the (sorted) categories, as in the final sort.
+    """
+    if len(frame) < 2:
+        return True
+    t = pd.DatetimeIndex(frame["time"]).asi8
+    s = frame["station_id"].cat.codes.to_numpy()
+    if (s < 0).any():
+        return False
+    dt = t[1:] - t[:-1]
+    return bool(((dt > 0) | ((dt == 0) & (s[1:] > s[:-1]))).all())
 
 
 def _station_labels(col: pd.Series) -> pd.Series:
@@ -930,14 +982,14 @@ def _stations_from_rows(frame, out, lines, files, reasons) -> pd.DataFrame:
         if name in frame:
             x, bad = parse_numbers(frame[name], set())
             for i in np.flatnonzero(bad):
-                reasons[i] = reasons[i] or f"{name}: cannot read {_clip(frame[name].iloc[i])!r} as a number"
+                reasons.add(i, f"{name}: cannot read {_clip(frame[name].iloc[i])!r} as a number")
             cols[name] = x
         else:
             cols[name] = np.full(len(frame), np.nan)
     st = pd.DataFrame({"station_id": out["station_id"].to_numpy(), **cols})
     st["__line__"] = np.asarray(lines)
-    st["__file__"] = np.asarray(files)
-    ok = pd.isna(reasons) & (st["station_id"] != "").to_numpy()
+    st["__file__"] = files if isinstance(files, str) else np.asarray(files)
+    ok = ~reasons.mask(len(st)) & (st["station_id"] != "").to_numpy()
     st = st[ok]
     uniq = st.drop_duplicates(["station_id", "latitude", "longitude", "elevation", "sensor_height"])
     moved = uniq["station_id"].duplicated(keep=False)
@@ -949,7 +1001,8 @@ def _stations_from_rows(frame, out, lines, files, reasons) -> pd.DataFrame:
             f"{rows['__line__'].iloc[0]} and {rows['__line__'].iloc[1]}; give a stations file with --stations"
         )
     res = uniq.drop(columns=["__line__", "__file__"]).reset_index(drop=True)
-    return _validate_stations(res, str(files[0]) if len(files) else "observations", uniq["__line__"].to_numpy())
+    first = files if isinstance(files, str) else (str(files[0]) if len(files) else "observations")
+    return _validate_stations(res, first, uniq["__line__"].to_numpy())
 
 
 def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_cols: list[str]):
@@ -983,7 +1036,7 @@ def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_c
     c_rows = np.flatnonzero(in_conflict)
     if c_rows.size:
         sub_lines = np.asarray(lines)[sub_idx]
-        sub_files = np.asarray(files)[sub_idx]
+        sub_files = np.full(len(sub_idx), files, object) if isinstance(files, str) else np.asarray(files)[sub_idx]
         by_group = pd.Series(sub_lines[c_rows]).groupby(grp[c_rows]).apply(list).to_dict()
         for j in c_rows:  # one message per rejected row
             others = [ln for ln in by_group[grp[j]] if ln != sub_lines[j]]

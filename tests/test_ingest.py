@@ -164,6 +164,27 @@ def test_duplicates_collapsed_and_conflicts_rejected(tmp_path, stations_file):
     assert sorted(r.observations["station_id"]) == ["A", "C"]
 
 
+@pytest.mark.parametrize("extra", ["", "B,2026-01-01T00:10Z,272.0\n", "X,2026-01-01T00:10Z,1\n"])
+def test_row_order_does_not_change_the_result(tmp_path, stations_file, extra):
+    # time order takes the shortcut past the duplicate search and the sort; other orders do not: same frame.
+    # extra: an exact repeat (collapsed), or a row of an unknown station (rejected)
+    rows = [f"{s},2026-01-01T00:{m:02d}Z,{270 + i + m / 10:.1f}" for m in (0, 10, 20) for i, s in enumerate("ABCD")]
+    rng = np.random.default_rng(3)
+    results = []
+    for order in (rows, sorted(rows), [rows[i] for i in rng.permutation(len(rows))]):
+        text = "station_id,time,air_temperature\n" + "\n".join(order) + "\n" + extra
+        results.append(ingest.read(write_csv(tmp_path / "o.csv", text), stations_file, config.Config()))
+    for r in results:
+        pd.testing.assert_frame_equal(r.observations, results[0].observations)
+        assert r.accounting == results[0].accounting
+    obs = results[0].observations
+    assert obs["station_id"].cat.categories.tolist() == ["A", "B", "C", "D"]
+    assert obs["time"].is_monotonic_increasing and len(obs) == 12
+    assert isinstance(obs.index, pd.RangeIndex)
+    assert results[0].accounting["rows_rejected"] == (1 if extra.startswith("X") else 0)
+    assert results[0].accounting["duplicates_collapsed"] == (1 if extra.startswith("B") else 0)
+
+
 def test_real_netcdf_station_files(arm_dir, arm_config):
     # ARM SGP met b1 files (doi:10.5439/1786358): coordinates from lat/lon/alt, units from attributes
     cfg = config.load(arm_config)
