@@ -87,3 +87,46 @@ def test_allocator_settings_reach_pyarrow_unless_the_user_chose():
     chosen = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True,
                             env={**env, "ARROW_DEFAULT_MEMORY_POOL": "jemalloc" if out[1] != "jemalloc" else "mimalloc"})
     assert chosen.stdout.split()[1] != "system"  # a user's own choice is kept
+
+
+_ARENAS = r"""
+import ctypes, os, sys, tempfile, threading
+if sys.argv[1] == "tuned":
+    from stationflow.memory import tune_allocator
+    tune_allocator()
+import numpy as np
+
+def work():
+    np.ones(1 << 20).sum()  # an 8 MB block allocated in this thread
+
+threads = [threading.Thread(target=work) for _ in range(2)]
+for t in threads:
+    t.start()
+for t in threads:
+    t.join()
+libc = ctypes.CDLL("libc.so.6")
+libc.fopen.restype = ctypes.c_void_p
+libc.fopen.argtypes = [ctypes.c_char_p, ctypes.c_char_p]
+libc.malloc_info.argtypes = [ctypes.c_int, ctypes.c_void_p]
+libc.fclose.argtypes = [ctypes.c_void_p]
+fd, path = tempfile.mkstemp()
+os.close(fd)
+fp = libc.fopen(path.encode(), b"w")
+libc.malloc_info(0, fp)
+libc.fclose(fp)
+print(open(path).read().count("<heap nr="))
+os.unlink(path)
+"""
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="glibc settings apply on Linux only")
+def test_threads_share_one_heap_after_tuning():
+    # glibc's malloc_info lists one <heap> per arena: threads get arenas of their own unless tuned
+    def heaps(mode: str) -> int:
+        res = subprocess.run([sys.executable, "-c", _ARENAS, mode], capture_output=True, text=True)
+        if res.returncode != 0:
+            pytest.skip(f"malloc_info not available here: {res.stderr.strip()[-200:]}")
+        return int(res.stdout.split()[-1])
+
+    assert heaps("plain") > 1
+    assert heaps("tuned") == 1

@@ -45,6 +45,11 @@ def test_streamed_files_equal_the_in_memory_table(memory_run, tmp_path, chunk):
     for c in ref.columns:
         if pd.api.types.is_float_dtype(ref[c]):
             np.testing.assert_allclose(pq[c].to_numpy(), ref[c].to_numpy(), rtol=1e-12, atol=1e-12, equal_nan=True, err_msg=c)
+    import pyarrow.parquet as papq
+
+    meta = papq.ParquetFile(tmp_path / "budget.parquet").metadata.row_group(0)
+    codecs = {meta.column(i).path_in_schema: meta.column(i).compression for i in range(meta.num_columns)}
+    assert codecs["advection"] == "UNCOMPRESSED" and codecs["value"] == "SNAPPY" and codecs["tendency_se"] == "SNAPPY"
     csv = pd.read_csv(tmp_path / "budget.csv")
     assert len(csv) == len(ref) and list(csv.columns) == list(ref.columns)
     np.testing.assert_allclose(csv["residual"].to_numpy(), ref["residual"].to_numpy(), rtol=1e-9, equal_nan=True)
