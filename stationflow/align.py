@@ -43,17 +43,36 @@ def format_duration(td: pd.Timedelta) -> str:
 
 
 def infer_interval(observations: pd.DataFrame) -> pd.Timedelta:
-    """The typical reporting interval: median over stations of the median step."""
-    obs = observations[["station_id", "time"]].sort_values(["station_id", "time"])
-    t = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
-    codes = pd.factorize(obs["station_id"])[0]
+    """The typical reporting interval: median over stations of the median step.
+
+    Sort-based and vectorised (no group-by): rows already in time order need
+    only a stable sort by station.
+    """
+    ids = observations["station_id"]
+    codes = ids.cat.codes.to_numpy() if isinstance(ids.dtype, pd.CategoricalDtype) else pd.factorize(ids)[0]
+    t = pd.DatetimeIndex(observations["time"]).as_unit("ns").asi8
+    if t.size > 1 and bool((t[1:] >= t[:-1]).all()):
+        order = np.argsort(codes, kind="stable")  # time order kept within each station
+    else:
+        order = np.lexsort((t, codes))
+    codes, t = codes[order], t[order]
     dt = np.diff(t)
-    same = codes[1:] == codes[:-1]
-    dt = dt[same & (dt > 0)]
-    if dt.size == 0:
+    keep = (codes[1:] == codes[:-1]) & (dt > 0) & (codes[1:] >= 0)
+    if not keep.any():
         return pd.Timedelta(minutes=10)
-    per_station = pd.Series(dt).groupby(codes[1:][same & (np.diff(t) > 0)]).median()
-    ns = float(np.median(per_station.to_numpy()))
+    # per-station medians from one sort of (station, step in microseconds) packed in one integer;
+    # steps are capped at 2**43 us (about 100 days), stations below 2**20
+    group = codes[1:][keep].astype(np.int64)
+    if group.max() < (1 << 20):
+        key = np.sort((group << 43) | np.minimum(dt[keep] // 1000, (1 << 43) - 1))
+        group, step = key >> 43, (key & ((1 << 43) - 1)).astype(np.float64) * 1000.0
+    else:  # a million stations or more: two-key sort
+        srt = np.lexsort((dt[keep], group))
+        group, step = group[srt], dt[keep][srt].astype(np.float64)
+    starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
+    counts = np.diff(np.r_[starts, group.size])
+    per_station = (step[starts + (counts - 1) // 2] + step[starts + counts // 2]) / 2
+    ns = float(np.median(per_station))
     # round to whole seconds
     return pd.Timedelta(seconds=max(1.0, round(ns / 1e9)))
 

@@ -50,3 +50,25 @@ def test_durations():
     assert align.format_duration(pd.Timedelta("1h")) == "1h"
     assert align.format_duration(pd.Timedelta("90s")) == "90s"
     assert align.infer_interval(_obs()) == pd.Timedelta(minutes=5)
+
+
+def _interval_by_groupby(obs: pd.DataFrame) -> pd.Timedelta:
+    """Reference: the median over stations of each station's median positive step, with pandas group-by."""
+    o = obs.sort_values(["station_id", "time"])
+    steps = o.groupby("station_id", observed=True)["time"].diff().dt.total_seconds()
+    per_station = steps[steps > 0].groupby(o["station_id"], observed=True).median()
+    return pd.Timedelta(seconds=max(1.0, round(float(np.median(per_station)))))
+
+
+@pytest.mark.parametrize("seed", range(40))
+def test_inferred_interval_equals_the_group_by_definition(seed):
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(2, 80))
+    steps = rng.choice([60, 300, 300, 600, 601, 3600, 0], n)  # 0: a repeated time
+    t = pd.Timestamp("2026-01-01", tz="UTC") + pd.to_timedelta(np.cumsum(steps), unit="s")
+    ids = rng.choice(["A", "B", "C", "D"], n)
+    obs = pd.DataFrame({"station_id": pd.Categorical(ids) if seed % 2 else ids, "time": t})
+    if seed % 3 == 0:
+        obs = obs.sample(frac=1, random_state=seed)  # not in time order
+    if obs.groupby("station_id", observed=True)["time"].apply(lambda s: (s.sort_values().diff().dt.total_seconds() > 0).any()).any():
+        assert align.infer_interval(obs) == _interval_by_groupby(obs)
