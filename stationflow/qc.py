@@ -165,6 +165,20 @@ def step_limit(table: list[tuple[float, float]] | list[list[float]], minutes: np
     return np.exp(np.interp(m, tm, lim))
 
 
+def _exceeds(change: np.ndarray, minutes: np.ndarray, table) -> np.ndarray:
+    """``|change| > step_limit(table, minutes)``, evaluated only where the change exceeds the smallest limit.
+
+    The interpolated limit is never below the table's smallest entry, so the
+    other rows cannot exceed it (a small margin covers the log/exp round trip).
+    """
+    big = np.abs(change) > min(float(b) for _, b in table) * (1 - 1e-9)
+    out = np.zeros(change.shape, bool)
+    idx = np.flatnonzero(big)
+    if idx.size:
+        out[idx] = np.abs(change[idx]) > step_limit(table, minutes[idx])
+    return out
+
+
 def rolling_range(x: np.ndarray, start: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Max and min of ``x[start[i]:i+1]`` for every i (NaN ignored).
 
@@ -248,8 +262,8 @@ def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
     d_in = x - x[p]
     d_out = x[q] - x
     fin = np.isfinite(x)
-    ex_in = fin & has_p & (dt_in <= max_gap) & (np.abs(d_in) > step_limit(table, dt_in))
-    ex_out = fin & has_n & (dt_out <= max_gap) & (np.abs(d_out) > step_limit(table, dt_out))
+    ex_in = fin & has_p & (dt_in <= max_gap) & _exceeds(d_in, dt_in, table)
+    ex_out = fin & has_n & (dt_out <= max_gap) & _exceeds(d_out, dt_out, table)
     spike = ex_in & ex_out & (np.sign(d_in) != np.sign(d_out))
     after_spike = np.zeros_like(spike)
     after_spike[has_p] = spike[p[has_p]]

@@ -39,6 +39,22 @@ def test_step_limit_interpolates_log_log():
     assert qc.step_limit(table, np.array([0.5]))[0] == pytest.approx(3.0)  # never below the shortest-interval value
 
 
+@pytest.mark.parametrize("name", sorted(qc.DEFAULT_STEP))
+def test_step_test_skips_only_changes_that_cannot_exceed(name):
+    # _exceeds evaluates the limit only where the change exceeds the table's smallest entry: same answer
+    table = qc.DEFAULT_STEP[name][0]
+    rng = np.random.default_rng(7)
+    minutes = rng.choice([0.5, 1, 5, 10, 30, 60, 61, 180, 600], 5000)
+    change = rng.normal(0, 2, 5000) * _largest_limit(table)
+    change[:50] = qc.step_limit(table, minutes[:50])  # exactly at the limit: not exceeding
+    change[50:60] = np.nan
+    assert (qc._exceeds(change, minutes, table) == (np.abs(change) > qc.step_limit(table, minutes))).all()
+
+
+def _largest_limit(table):
+    return max(float(b) for _, b in table)
+
+
 def _series(values, minutes=10):
     v = np.asarray(values, float)
     t = np.arange(v.size, dtype=np.int64) * minutes * MIN
