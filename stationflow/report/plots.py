@@ -235,7 +235,10 @@ def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str 
     from matplotlib.patches import Patch
 
     n = len(panels)
-    fig, axes = plt.subplots(n, 1, figsize=(10, 1.9 * n + 0.8), sharex=True, squeeze=False)
+    height = 1.9 * n + 0.8
+    fig, axes = plt.subplots(n, 1, figsize=(10, height), sharex=True, squeeze=False)
+    # fixed margins in inches instead of tight_layout (which lays the figure out twice)
+    fig.subplots_adjust(left=0.085, right=0.985, top=1 - 0.62 / height, bottom=0.85 / height, hspace=0.38)
     for ax, p in zip(axes[:, 0], panels):
         tt, cols, reg = p["time"], p["columns"], p["regime"]
         for name, colour in (("tendency", "#222222"), ("advection", REGIME_COLOURS["advective"]),
@@ -248,15 +251,19 @@ def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str 
         ax.tick_params(labelsize=7)
         ax.set_ylabel(f"{p['label']}\n{unit}/h", fontsize=8)
         ax.set_title(f"cluster {p['label']}  ({p['stations']})", fontsize=8, loc="left")
-    axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
+    lines = axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
+    if n == 1:
+        axes[0, 0].add_artist(lines)  # one panel: the regime legend below would replace this one
     handles = [Patch(color=REGIME_COLOURS[r], alpha=0.4, label=r.replace("_", " ")) for r in ("advective", "in_situ", "mixed")]
     axes[-1, 0].legend(handles=handles, loc="lower right", fontsize=7, ncol=3, frameon=False, title="regime (shading)",
                        title_fontsize=7)
     axes[-1, 0].set_xlabel(f"local time ({tz})" if tz else "time (UTC)")
-    fig.suptitle("Budget per cluster: tendency = advection + residual (bands: 95 %)", fontsize=10)
-    fig.autofmt_xdate()
-    fig.tight_layout()  # the legends are inside the axes: no second, cropping draw needed
-    return _save(fig, path, tight=False)
+    fig.suptitle("Budget per cluster: tendency = advection + residual (bands: 95 %)", fontsize=10,
+                 y=1 - 0.2 / height)
+    for label in axes[-1, 0].get_xticklabels():  # as autofmt_xdate, without its layout pass
+        label.set_rotation(30)
+        label.set_horizontalalignment("right")
+    return _save(fig, path, tight=False)  # the legends are inside the axes: no cropping draw needed
 
 
 def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[int] | None = None,
