@@ -55,3 +55,16 @@ def test_inline_painter_runs_at_once(tmp_path):
     assert not painter.background
     fut = painter.submit(_fails, tmp_path / "x.png")
     assert fut.done() and isinstance(fut.exception(), ValueError)
+
+
+def test_close_waits_for_every_job_then_stops_the_workers(tmp_path):
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags)
+    painter = Painter(background=True)
+    procs = list(getattr(painter._pool, "_processes", {}).values())
+    futures = [painter.submit(plots.draw_qc_overview, image, tmp_path / f"f{i}.png") for i in range(3)]
+    painter.close()  # without waiting on the futures first
+    assert all(f.done() and f.exception() is None for f in futures)
+    assert all((tmp_path / f"f{i}.png").stat().st_size > 0 for i in range(3))
+    assert not list(tmp_path.glob(".*.part"))  # every file renamed into place
+    assert all(not p.is_alive() for p in procs)

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import logging
 import os
-from concurrent.futures import Future
+from concurrent.futures import Future, wait
 from typing import Any, Callable
 
 log = logging.getLogger(__name__)
@@ -39,6 +39,7 @@ class Painter:
         if background is None:
             background = (os.cpu_count() or 1) > 1 and os.environ.get("STATIONFLOW_FIGURES", "") != "inline"
         self._pool = None
+        self._jobs: list[Future] = []
         if background:
             try:
                 import multiprocessing
@@ -47,7 +48,7 @@ class Painter:
                 n = max(1, min(workers, (os.cpu_count() or 1)))
                 self._pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"))
                 for _ in range(n):  # one warm-up per worker: each starts and imports matplotlib now
-                    self._pool.submit(_warm_up)
+                    self._jobs.append(self._pool.submit(_warm_up))
             except (OSError, ImportError, RuntimeError, ValueError) as exc:  # no processes here: draw inline
                 log.info("figures drawn in this process (%s)", exc)
                 self._pool = None
@@ -61,7 +62,9 @@ class Painter:
         """Run ``fn(*args, **kwargs)`` in the worker (a module-level function with picklable arguments)."""
         if self._pool is not None:
             try:
-                return self._pool.submit(fn, *args, **kwargs)
+                job = self._pool.submit(fn, *args, **kwargs)
+                self._jobs.append(job)
+                return job
             except RuntimeError as exc:  # the pool broke (worker killed): draw here
                 log.info("figure worker unavailable (%s); drawing in this process", exc)
                 self._pool = None
@@ -73,18 +76,29 @@ class Painter:
         return fut
 
     def close(self) -> None:
-        """Wait for the jobs in flight and stop the worker."""
+        """Wait for the jobs in flight and stop the workers.
+
+        Once every job has finished (each figure is renamed into place before
+        its job returns), the idle workers are stopped at once rather than
+        asked to run their interpreter's whole shutdown (about 0.2 s).
+        """
         if self._pool is not None:
+            wait(self._jobs)
+            self._stop_workers()
             self._pool.shutdown(wait=True)
             self._pool = None
+
+    def _stop_workers(self) -> None:
+        # the executor has no public way to end its processes; they hold no state of ours
+        for proc in list(getattr(self._pool, "_processes", {}).values()):
+            proc.terminate()
 
     def __enter__(self) -> "Painter":
         return self
 
     def __exit__(self, *exc) -> None:
         if exc[0] is not None and self._pool is not None:  # the run failed: do not wait for figures
-            for proc in list(getattr(self._pool, "_processes", {}).values()):
-                proc.terminate()
+            self._stop_workers()
             self._pool.shutdown(wait=False, cancel_futures=True)
             self._pool = None
         self.close()
