@@ -67,4 +67,4 @@ def test_close_waits_for_every_job_then_stops_the_workers(tmp_path):
     assert all(f.done() and f.exception() is None for f in futures)
     assert all((tmp_path / f"f{i}.png").stat().st_size > 0 for i in range(3))
     assert not list(tmp_path.glob(".*.part"))  # every file renamed into place
-    assert all(not p.is_alive() for p in procs)
+    assert procs and all(not p.is_alive() for p in procs)
