@@ -2,6 +2,7 @@
 
 import hashlib
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -124,6 +125,27 @@ def test_atomic_write_leaves_old_file_on_failure(tmp_path):
             raise RuntimeError("interrupted")
     assert target.read_text() == "old\n"
     assert list(tmp_path.iterdir()) == [target]
+
+
+@pytest.mark.parametrize("swap", [True, False])
+def test_atomic_write_replaces_an_existing_file(tmp_path, monkeypatch, swap):
+    # swap: the old and new files are exchanged in one step (Linux); otherwise a plain rename
+    if not swap:
+        monkeypatch.setattr(files, "_exchange", lambda a, b: False)
+    target = tmp_path / "budget.nc"
+    target.write_text("old\n")
+    with files.atomic_write(target) as tmp:
+        assert not tmp.exists()  # the writer creates it (no truncation of an existing file)
+        tmp.write_text("new\n")
+    assert target.read_text() == "new\n"
+    assert list(tmp_path.iterdir()) == [target]
+    mode = target.stat().st_mode & 0o777
+    umask = os.umask(0)
+    os.umask(umask)
+    assert mode == 0o666 & ~umask
+    with files.atomic_write(tmp_path / "empty.txt"):
+        pass  # nothing written: an empty file
+    assert (tmp_path / "empty.txt").read_bytes() == b""
 
 
 def test_large_table_goes_to_parquet_only(tmp_path, runner, monkeypatch):

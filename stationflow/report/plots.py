@@ -93,7 +93,7 @@ def draw_qc_overview(image: dict, path: str | Path) -> Path:
     ax.set_xticks(ticks)
     ax.set_xticklabels([(t0 + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in ticks], fontsize=7)
     ax.set_xlabel("time (UTC)")
-    ax.set_title("Quality control: worst flag per station and time")
+    ax.set_title("Quality control: worst flag per station and time", y=1.0)
     ax.legend(handles=[Patch(facecolor=c, edgecolor="#999999", label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
               loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
     return _save(fig, path)
@@ -170,7 +170,7 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     ax.autoscale_view()
     ax.set_xlabel("x (km, grid east)")
     ax.set_ylabel("y (km, grid north)")
-    ax.set_title(title)
+    ax.set_title(title, y=1.0)
     if colour_by is not None:
         handles = [Patch(color=c, label=k.replace("_", " ")) for k, c in REGIME_COLOURS.items()]
     else:
@@ -233,6 +233,7 @@ def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str 
     """Draw the budget figure from :func:`timeseries_panels` (runs in the figure process)."""
     plt = _plt()
     from matplotlib.patches import Patch
+    from matplotlib.ticker import MaxNLocator
 
     n = len(panels)
     height = 1.9 * n + 0.8
@@ -250,7 +251,9 @@ def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str 
         ax.axhline(0, color="#888888", lw=0.6)
         ax.tick_params(labelsize=7)
         ax.set_ylabel(f"{p['label']}\n{unit}/h", fontsize=8)
-        ax.set_title(f"cluster {p['label']}  ({p['stations']})", fontsize=8, loc="left")
+        # a fixed title position (no layout search) and a few y ticks: each tick is a costly artist
+        ax.set_title(f"cluster {p['label']}  ({p['stations']})", fontsize=8, loc="left", y=1.0)
+        ax.yaxis.set_major_locator(MaxNLocator(nbins=4))
     lines = axes[0, 0].legend(loc="upper right", fontsize=7, ncol=3, frameon=False)
     if n == 1:
         axes[0, 0].add_artist(lines)  # one panel: the regime legend below would replace this one
