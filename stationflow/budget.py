@@ -73,16 +73,27 @@ def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True) -> tu
         mean = s / n
         var = np.where(n > 1, (s2 - n * mean * mean) / np.maximum(n - 1, 1), np.nan)
     if fallback:
-        import warnings
-
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            net = np.nanmean(values, axis=1)
-            net_var = np.nanvar(values, axis=1, ddof=1) if values.shape[1] > 1 else np.full(values.shape[0], np.nan)
+        net, net_var = row_mean_var(values)
         missing = n == 0
         mean = np.where(missing, net[:, None], mean)
         var = np.where(missing, net_var[:, None], var)
     return mean, np.maximum(var, 0.0), n
+
+
+def row_mean_var(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and sample variance (ddof 1) of the finite values of each row; NaN where too few.
+
+    As ``np.nanmean`` and ``np.nanvar(ddof=1)``, without their warnings for
+    empty rows (``warnings.catch_warnings`` is not safe on threads).
+    """
+    ok = np.isfinite(values)
+    v0 = np.where(ok, values, 0.0)
+    cnt = ok.sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = v0.sum(axis=1) / cnt
+        dev = np.where(ok, values - mean[:, None], 0.0)
+        var = np.where(cnt > 1, (dev * dev).sum(axis=1) / (cnt - 1), np.nan)
+    return np.where(cnt > 0, mean, np.nan), var
 
 
 def membership_matrix(members: list[np.ndarray], n_stations: int):

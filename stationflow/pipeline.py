@@ -9,6 +9,7 @@ is a thin layer over these functions.
 from __future__ import annotations
 
 import logging
+import os
 from dataclasses import dataclass, field
 from functools import cached_property
 from pathlib import Path
@@ -18,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from . import align, geometry, ingest, qc
-from .budget import REGIMES, BudgetSettings, compute_budget
+from .budget import REGIMES, BudgetSettings, compute_budget, row_mean_var
 from .config import Config
 from .errors import ConfigError, GeometryError
 from .summary import BudgetSummary
@@ -322,11 +323,7 @@ def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: in
     if plan.masts is not None and "t_air" in grid.values:
         upper, partner = plan.masts
         t = grid.values["t_air"]
-        import warnings
-
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            inv = np.nanmean(t[:, upper] - t[:, partner], axis=1)
+        inv, _ = row_mean_var(t[:, upper] - t[:, partner])  # no warnings machinery: this may run on a thread
         terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
     return terms
 
@@ -394,14 +391,48 @@ def run_partitions(plan: BudgetPlan, sink, config: Config, *, progress: Progress
     parts = partitions(n, steps)
     if len(parts) > 1:  # the last write cannot overlap a computation: end with small partitions
         a, b = parts.pop()
-        parts += [(a + f, a + l) for f, l in partitions(b - a + 1, max(plan.halo, (b - a + 1) // 4))]
-    for i, (first, last) in enumerate(parts):
-        block = derive(run_partition(plan, first, last), layout.convergence)
+        parts += [(a + f, a + length) for f, length in partitions(b - a + 1, max(plan.halo, (b - a + 1) // 4))]
+
+    def job(first: int, last: int) -> dict[str, np.ndarray]:
+        return derive(run_partition(plan, first, last), layout.convergence)
+
+    threads = min(PARTITION_THREADS, os.cpu_count() or 1, len(parts))
+    for i, (first, block) in enumerate(_in_order(job, parts, threads)):
         summary.add(first, block)
         sink.add(first, block)
         if len(parts) > 1:
             progress(f"partition {i + 1} of {len(parts)}")
     return summary
+
+
+#: partitions computed at once on threads (numpy releases the interpreter lock in its array operations)
+PARTITION_THREADS = 2
+
+
+def _in_order(job: Callable[[int, int], dict], parts: list[tuple[int, int]], threads: int):
+    """Yield ``(first, job(first, last))`` for ``parts`` in order, computing up to ``threads`` ahead."""
+    if threads <= 1:
+        for first, last in parts:
+            yield first, job(first, last)
+        return
+    from collections import deque
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="stationflow-budget") as pool:
+        queue: deque = deque()
+        todo = iter(parts)
+        try:
+            for first, last in todo:
+                queue.append((first, pool.submit(job, first, last)))
+                if len(queue) >= threads:
+                    done_first, fut = queue.popleft()
+                    yield done_first, fut.result()
+            while queue:
+                done_first, fut = queue.popleft()
+                yield done_first, fut.result()
+        finally:
+            for _, fut in queue:  # an error or an abandoned loop: start nothing more
+                fut.cancel()
 
 
 def finish(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, pieces: list[dict[str, np.ndarray]] | None

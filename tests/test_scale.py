@@ -46,6 +46,44 @@ def test_chunked_equals_unchunked(reference):
     _assert_same(reference.table, run.table)
 
 
+def test_partitions_on_threads_equal_one_at_a_time(monkeypatch):
+    # the same bits whether partitions are computed one after another or two at once, and in order
+    cfg = _cfg(chunk="1h")
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    runs = {}
+    for threads in (1, 2):
+        monkeypatch.setattr(pipeline, "PARTITION_THREADS", threads)
+        monkeypatch.setattr(pipeline.os, "cpu_count", lambda: 2)
+        sink = pipeline.MemorySink()
+        firsts = []
+        plan = pipeline.plan_budget(chk, cfg)
+        real_add = sink.add
+        sink.add = lambda first, block: (firsts.append(first), real_add(first, block))
+        pipeline.run_partitions(plan, sink, cfg)
+        assert firsts == sorted(firsts) and len(firsts) > 4
+        runs[threads] = sink.pieces
+    assert len(runs[1]) == len(runs[2])
+    for a, b in zip(runs[1], runs[2]):
+        assert a.keys() == b.keys()
+        for k in a:
+            assert np.array_equal(a[k], b[k], equal_nan=a[k].dtype.kind == "f"), k
+
+
+def test_row_mean_var_equals_numpy_nan_functions():
+    from stationflow.budget import row_mean_var
+
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(200, 7))
+    x[rng.random(x.shape) < 0.4] = np.nan
+    x[3] = np.nan  # an empty row
+    x[4, 1:] = np.nan  # one value: no variance
+    mean, var = row_mean_var(x)
+    with np.errstate(invalid="ignore", divide="ignore"), pytest.warns(RuntimeWarning):
+        ref_mean, ref_var = np.nanmean(x, axis=1), np.nanvar(x, axis=1, ddof=1)
+    np.testing.assert_allclose(mean, ref_mean, rtol=1e-13, equal_nan=True)
+    np.testing.assert_allclose(var, ref_var, rtol=1e-12, equal_nan=True)
+
+
 def test_dask_local_cluster_equals_local(reference):
     pytest.importorskip("dask.distributed")
     run = scale.run_budget_dask(FROST / "observations.csv", FROST / "stations.csv", _cfg(chunk="2h"), n_workers=2)
