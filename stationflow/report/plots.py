@@ -39,7 +39,8 @@ def _save(fig, path: str | Path, *, tight: bool = True) -> Path:
     plt = _plt()
 
     def writer(tmp: Path) -> None:
-        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight" if tight else None)
+        # zlib level 3 instead of 6: a third less encoding time for 5 % more bytes
+        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight" if tight else None, pil_kwargs={"compress_level": 3})
 
     try:
         return write_with(path, writer)
