@@ -249,19 +249,29 @@ def fit_planes(
             code_all = None  # complete data: every step uses the full pattern
             uniq = np.zeros(0, np.int64)
         else:
-            code_all = np.zeros((len(sel), n_t), np.int64)
+            code_type = np.uint8 if k <= 8 else np.uint16 if k <= 16 else np.uint32 if k <= 32 else np.int64
+            code_all = np.zeros((len(sel), n_t), code_type)
             for j in range(k):  # k is the cluster size (<= 62), not time or stations
-                code_all |= present_st[M[:, j]].astype(np.int64) << j
+                code_all |= present_st[M[:, j]].astype(code_type) << j
             if zz is not None:
-                code_all &= ((W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None]
+                code_all &= ((W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None].astype(code_type)
             inc_c, inc_t = np.nonzero(code_all != full_code)
             uniq = np.unique(inc_c.astype(np.int64) * (full_code + 1) + code_all[inc_c, inc_t])
             del inc_c, inc_t
         if uniq.size:
             uc = uniq // (full_code + 1)
             mask = ((uniq % (full_code + 1))[:, None] & bits[None, :]) > 0
-            Pu, Nu, cu, oku = _operators(A[uc], W[uc] * mask, max_cond)
             nu = mask.sum(axis=1)
+            # fewer stations than coefficients: rank-deficient by construction, nothing to solve
+            # (condition number infinite); every incomplete pattern of a triangle is such a case
+            Pu = np.zeros((uniq.size, p, k))
+            Nu = np.full((uniq.size, p, p), np.nan)
+            cu = np.full(uniq.size, np.inf)
+            oku = np.zeros(uniq.size, bool)
+            solve = np.flatnonzero(nu >= p)
+            if solve.size:
+                Pu[solve], Nu[solve], cu[solve], oku[solve] = _operators(A[uc[solve]], W[uc[solve]] * mask[solve],
+                                                                         max_cond)
             oku &= nu >= min_n
             tables.append(_table_rows(Nu, cu, oku, nu, p))
             base_row = n_rows
@@ -272,16 +282,13 @@ def fit_planes(
             t1 = min(n_t, t0 + step)
             ts = slice(t0, t1)
             X = vt[M, ts]  # (C, k, T) gather
-            present = ~np.isnan(X)
-            if zz is not None:
-                present &= (W > 0)[:, :, None]
             complete = (np.ones((len(sel), t1 - t0), bool) if code_all is None
                         else code_all[:, ts] == full_code)  # (C, T)
             all_complete = bool(complete.all())
-            if not all_complete:
-                X = np.where(present, X, 0.0)
             coef = coef_all[rows, :, ts]
-            np.einsum("cpk,ckt->cpt", Pf, X, out=coef)  # (C, p, T); einsum avoids per-batch BLAS calls
+            # (C, p, T); einsum avoids per-batch BLAS calls.  Each element is its own sum, so the
+            # incomplete ones (NaN here) are simply overwritten below
+            np.einsum("cpk,ckt->cpt", Pf, X, out=coef)
             pat = pattern[rows, ts]
             pat[...] = full_rows[:, None]
             if not all_complete:
@@ -289,13 +296,19 @@ def fit_planes(
                 key = ci.astype(np.int64) * (full_code + 1) + code_all[ci, ti + t0]
                 inv = np.searchsorted(uniq, key)
                 pat[ci, ti] = base_row + inv
-                ce = np.einsum("epk,ek->ep", Pu[inv], X[ci, :, ti])
-                ce[~oku[inv]] = np.nan
+                ce = np.full((ci.size, p), np.nan)
+                fit = np.flatnonzero(oku[inv])  # solve only where a plane is defined
+                if fit.size:
+                    xi = X[ci[fit], :, ti[fit]]
+                    ce[fit] = np.einsum("epk,ek->ep", Pu[inv[fit]], np.where(np.isnan(xi), 0.0, xi))
                 coef[ci, :, ti] = ce
             if not full_ok.all():
                 bad_c = ~full_ok
                 coef[bad_c] = np.where(complete[bad_c][:, None, :], np.nan, coef[bad_c])
             if residuals and k > p:
+                present = ~np.isnan(X)
+                if zz is not None:
+                    present &= (W > 0)[:, :, None]
                 fitted = A @ coef
                 res = np.where(present, X - fitted, 0.0)
                 rss_w = np.einsum("ck,ckt->ct", W, res * res)

@@ -141,6 +141,12 @@ def test_missing_patterns_and_reasons():
     assert f.n_used[:, 0].tolist() == [5, 4, 2, 3]
     assert f.grad_x[1, 0] == pytest.approx(1e-4) and f.grad_y[1, 0] == pytest.approx(-2e-4)
     assert np.isnan(f.grad_x[2, 0]) and np.isnan(f.grad_x[3, 0])
+    assert np.isinf(f.cond[2, 0]) and f.cond[3, 0] > 1e6  # two points fix no plane; three in a line barely
+    # a triangle missing a station: too few, and its design is rank-deficient (no solve is attempted)
+    tri = fit_planes(vals[:, :3], x[:3], y[:3], [np.arange(3)])
+    assert tri.reason[:, 0].tolist() == [OK, TOO_FEW, TOO_FEW, TOO_FEW]
+    assert tri.n_used[:, 0].tolist() == [3, 2, 1, 1] and np.isinf(tri.cond[1:, 0]).all()
+    assert np.isnan(tri.value[1:, 0]).all() and tri.grad_x[0, 0] == pytest.approx(1e-4)
 
 
 def test_elevation_regression_check_value():
