@@ -56,28 +56,39 @@ class BudgetSettings:
     vertical_regression: bool = False
 
 
-def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True, variance: bool = True,
+                 counts: tuple[np.ndarray, np.ndarray] | None = None
+                 ) -> tuple[np.ndarray, np.ndarray | None, np.ndarray]:
     """Mean, sample variance and count of member values per cluster.
 
     ``values`` (n_times, n_stations) with NaN for missing; ``membership`` a
     sparse (n_stations, n_clusters) 0/1 matrix.  Where a cluster has no
     member value and ``fallback`` is set, the network mean is used (and the
-    count is reported as 0).
+    count is reported as 0).  ``variance=False`` skips the variance (None).
+    ``counts``: ``(finite mask, count)`` of an earlier call on values
+    missing in exactly the same places (u and v), reused when the masks agree.
     """
     ok = np.isfinite(values)
+    if counts is not None and np.array_equal(counts[0], ok):
+        n = counts[1]
+    else:
+        n = (membership.T @ ok.T.astype(float)).T
     v0 = np.where(ok, values, 0.0)
-    n = (membership.T @ ok.T.astype(float)).T
     s = (membership.T @ v0.T).T
-    s2 = (membership.T @ (v0 * v0).T).T
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = s / n
-        var = np.where(n > 1, (s2 - n * mean * mean) / np.maximum(n - 1, 1), np.nan)
+    var = None
+    if variance:
+        s2 = (membership.T @ (v0 * v0).T).T
+        with np.errstate(invalid="ignore", divide="ignore"):
+            var = np.where(n > 1, (s2 - n * mean * mean) / np.maximum(n - 1, 1), np.nan)
     if fallback:
         net, net_var = row_mean_var(values)
         missing = n == 0
         mean = np.where(missing, net[:, None], mean)
-        var = np.where(missing, net_var[:, None], var)
-    return mean, np.maximum(var, 0.0), n
+        if variance:
+            var = np.where(missing, net_var[:, None], var)
+    return mean, None if var is None else np.maximum(var, 0.0), n
 
 
 def row_mean_var(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -105,12 +116,17 @@ def membership_matrix(members: list[np.ndarray], n_stations: int):
     return csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n_stations, len(members)))
 
 
-def _window_sums(a: np.ndarray, h: int, power: int) -> tuple[np.ndarray, np.ndarray, float]:
-    """Sums of ``w**power * a`` and of ``w`` over the present samples of each centred window."""
+def _window_sums(a: np.ndarray, h: int, power: int, *, weights: np.ndarray | None = None
+                 ) -> tuple[np.ndarray, np.ndarray, float]:
+    """Sums of ``w**power * a`` and of ``w`` over the present samples of each centred window.
+
+    ``weights``: the sums of ``w`` from an earlier call on an array missing in
+    the same places (not summed again).
+    """
     w_full = np.ones(2 * h + 1)
     w_full[0] = w_full[-1] = 0.5
     acc = np.zeros_like(a)
-    wsum = np.zeros_like(a)
+    wsum = np.zeros_like(a) if weights is None else weights
     n = a.shape[0]
     present = np.isfinite(a)
     a0 = np.where(present, a, 0.0)  # missing samples add nothing (the same sums as masking each offset)
@@ -123,8 +139,9 @@ def _window_sums(a: np.ndarray, h: int, power: int) -> tuple[np.ndarray, np.ndar
         t = tmp[:m]
         np.multiply(a0[src], w ** power, out=t)
         acc[dst] += t
-        np.multiply(present[src], w, out=t)
-        wsum[dst] += t
+        if weights is None:
+            np.multiply(present[src], w, out=t)
+            wsum[dst] += t
     return acc, wsum, float(w_full.sum())
 
 
@@ -146,6 +163,54 @@ def window_sum_sq_weights(var: np.ndarray, h: int, *, min_weight: float = 2.0 / 
         return np.where(wsum >= min_weight * total, acc / wsum ** 2, np.nan)
 
 
+def window_mean_and_variance(a: np.ndarray, var: np.ndarray, h: int, *, min_weight: float = 2.0 / 3.0
+                             ) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`window_mean` of ``a`` and :func:`window_sum_sq_weights` of ``var`` (the same numbers),
+    summing the window weights once when both are missing in the same places."""
+    acc, wsum, total = _window_sums(a, h, 1)
+    shared = wsum if np.array_equal(np.isfinite(a), np.isfinite(var)) else None
+    acc2, wsum2, _ = _window_sums(var, h, 2, weights=shared)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(wsum >= min_weight * total, acc / wsum, np.nan)
+        variance = np.where(wsum2 >= min_weight * total, acc2 / wsum2 ** 2, np.nan)
+    return mean, variance
+
+
+def _gap_plan(ok: np.ndarray, max_gap: int):
+    """Where :func:`fill_short_gaps` fills and from which neighbours: ``(rows, cols, prev, next)`` or None."""
+    n = ok.shape[0]
+    idx = np.arange(n).reshape((n,) + (1,) * (ok.ndim - 1))
+    prev = np.maximum.accumulate(np.where(ok, idx, -1), axis=0)
+    nxt = np.flip(np.minimum.accumulate(np.flip(np.where(ok, idx, n), axis=0), axis=0), axis=0)
+    fill = ~ok & (prev >= 0) & (nxt < n) & (nxt - prev - 1 <= max_gap)
+    where = np.nonzero(fill)
+    if where[0].size == 0:
+        return None
+    return where, prev[where], nxt[where]
+
+
+def _apply_gap_plan(a: np.ndarray, plan) -> np.ndarray:
+    if plan is None:
+        return a
+    where, p, q = plan
+    rest = where[1:]
+    ap, aq = a[(p,) + rest], a[(q,) + rest]
+    w = (where[0] - p) / np.maximum(q - p, 1)
+    out = a.copy()
+    out[where] = ap + w * (aq - ap)
+    return out
+
+
+def fill_short_gaps_like(arrays: list[np.ndarray], max_gap: int) -> list[np.ndarray]:
+    """:func:`fill_short_gaps` of each array; the gaps are found once when all are missing in the same places."""
+    if max_gap < 1 or not arrays:
+        return list(arrays)
+    ok = np.isfinite(arrays[0])
+    plan = _gap_plan(ok, max_gap)
+    return [_apply_gap_plan(a, plan) if np.array_equal(np.isfinite(a), ok) else fill_short_gaps(a, max_gap)
+            for a in arrays]
+
+
 def fill_short_gaps(a: np.ndarray, max_gap: int) -> np.ndarray:
     """Linearly interpolate along axis 0 across runs of at most ``max_gap`` missing steps.
 
@@ -154,24 +219,7 @@ def fill_short_gaps(a: np.ndarray, max_gap: int) -> np.ndarray:
     """
     if max_gap < 1:
         return a
-    n = a.shape[0]
-    ok = np.isfinite(a)
-    idx = np.arange(n).reshape((n,) + (1,) * (a.ndim - 1))
-    prev = np.maximum.accumulate(np.where(ok, idx, -1), axis=0)
-    nxt = np.flip(np.minimum.accumulate(np.flip(np.where(ok, idx, n), axis=0), axis=0), axis=0)
-    gap = (nxt - prev - 1)
-    fill = ~ok & (prev >= 0) & (nxt < n) & (gap <= max_gap)
-    if not fill.any():
-        return a
-    p = np.clip(prev, 0, n - 1)
-    q = np.clip(nxt, 0, n - 1)
-    ap = np.take_along_axis(a, p, axis=0)
-    aq = np.take_along_axis(a, q, axis=0)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        w = (idx - prev) / np.maximum(nxt - prev, 1)
-    out = a.copy()
-    out[fill] = (ap + w * (aq - ap))[fill]
-    return out
+    return _apply_gap_plan(a, _gap_plan(np.isfinite(a), max_gap))
 
 
 def shift(a: np.ndarray, k: int) -> np.ndarray:
@@ -273,7 +321,7 @@ def compute_budget(
     gx, gy = fit.grad_x, fit.grad_y
     memb = membership_matrix(members, values.shape[1])
     um, uvar, n_w = cluster_mean(u, memb)
-    vm, vvar, _ = cluster_mean(v, memb)
+    vm, vvar, _ = cluster_mean(v, memb, counts=(np.isfinite(u), n_w))
     nw = np.maximum(n_w, 1)
     se2_u = np.fmax(s.wind_sigma ** 2, np.nan_to_num(uvar)) / nw
     se2_v = np.fmax(s.wind_sigma ** 2, np.nan_to_num(vvar)) / nw
@@ -287,14 +335,12 @@ def compute_budget(
     span = 2 * h * s.interval_s
     # bridge short gaps (a station missing for a step or two) so one gap does not void a whole window
     gap = max(1, h // 2)
-    value = fill_short_gaps(fit.value, gap)
-    va = fill_short_gaps(va, gap)
+    value, va = fill_short_gaps_like([fit.value, va], gap)
     filled = ~np.isfinite(fit.value) & np.isfinite(value)
     a_plus, a_minus = shift(value, h), shift(value, -h)
     tendency = (a_plus - a_minus) / span * hour
     tendency_var = (shift(va, h) + shift(va, -h)) / span ** 2 * hour ** 2
-    adv_mean = window_mean(adv, h)
-    adv_var = window_sum_sq_weights(var_adv, h)
+    adv_mean, adv_var = window_mean_and_variance(adv, var_adv, h)
     if s.calibration > 0:
         ratio = (s.calibration / s.sigma) ** 2  # prior variances are sigma^2 (A^T A)^-1
         ub, vb = window_mean(um, h), window_mean(vm, h)
@@ -319,7 +365,7 @@ def compute_budget(
         out["vertical_gradient"] = fit.grad_z * 100.0
         out["vertical_gradient_se"] = np.sqrt(fit.var_z * scale) * 100.0
     if wind_speed is not None:
-        sp, _, _ = cluster_mean(wind_speed, memb)
+        sp, _, _ = cluster_mean(wind_speed, memb, variance=False)
         out["wind_speed"] = sp
     if np.isfinite(u).any():
         from .kinematics import fit_wind, kinematics

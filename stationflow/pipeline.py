@@ -362,14 +362,14 @@ def derive(terms: dict[str, np.ndarray], convergence: np.ndarray) -> dict[str, n
     ``convergence`` is the meridian convergence at each cluster centroid; grid
     bearings minus it are true bearings.
     """
-    from .variables import wind_direction
+    from .variables import wind_direction, wrap_degrees
 
     out = dict(terms)
-    conv = np.asarray(convergence)[None, :]
-    out["wind_from_direction"] = (wind_direction(terms["u"], terms["v"]) - conv) % 360.0
+    conv = np.asarray(convergence)[None, :]  # |convergence| < 180 degrees: the differences stay in (-360, 540)
+    out["wind_from_direction"] = wrap_degrees(wind_direction(terms["u"], terms["v"]) - conv)
     with np.errstate(invalid="ignore"):
         bearing = np.rad2deg(np.arctan2(terms["grad_x"], terms["grad_y"]))
-    out["gradient_bearing"] = (bearing - conv) % 360.0
+    out["gradient_bearing"] = wrap_degrees(bearing - conv)
     return out
 
 

@@ -183,8 +183,19 @@ def wind_components(speed: np.ndarray, direction_deg: np.ndarray) -> tuple[np.nd
     return -speed * np.sin(rad), -speed * np.cos(rad)
 
 
+def wrap_degrees(a: np.ndarray) -> np.ndarray:
+    """``a % 360`` for angles in (-360, 720) [degree], bit for bit, in two comparisons.
+
+    numpy's float remainder is a division per element; in that range it
+    reduces to adding or subtracting 360 once (exact above 360, and rounded
+    the same way below 0).
+    """
+    a = np.asarray(a, float)
+    return np.where(a < 0.0, a + 360.0, np.where(a >= 360.0, a - 360.0, a + 0.0))  # + 0.0: -0.0 -> 0.0, as %
+
+
 def wind_direction(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Direction the wind blows from [degree, (0, 360]]; north is 360, calm NaN."""
-    d = np.rad2deg(np.arctan2(-np.asarray(u, float), -np.asarray(v, float))) % 360.0
+    d = wrap_degrees(np.rad2deg(np.arctan2(-np.asarray(u, float), -np.asarray(v, float))))
     d = np.where(d == 0.0, 360.0, d)
     return np.where(np.hypot(u, v) == 0.0, np.nan, d)

@@ -152,3 +152,31 @@ def test_window_sums_on_records_shorter_than_the_window():
     assert np.array_equal(wsum, np.full((2, 3), 2.0)) and np.array_equal(acc, wsum)
     acc, wsum, _ = budget._window_sums(np.ones((7, 1)), 3, 1)
     assert wsum[3, 0] == 6.0 and wsum[0, 0] == 3.5  # centre: full window; first step: offsets 0..3
+
+
+def test_shared_work_gives_the_same_numbers():
+    # the budget shares gap positions, window weights and counts between arrays missing in the same
+    # places; the results equal the one-array functions bit for bit (and arrays with other gaps still work)
+    from stationflow.budget import cluster_mean, fill_short_gaps_like, membership_matrix, window_mean_and_variance
+
+    rng = np.random.default_rng(4)
+    a = rng.normal(size=(300, 9))
+    a[rng.random(a.shape) < 0.2] = np.nan
+    b = np.where(np.isnan(a), np.nan, rng.random(a.shape))  # same gaps
+    c = rng.normal(size=a.shape)
+    c[rng.random(c.shape) < 0.3] = np.nan  # other gaps
+    for got, ref in zip(fill_short_gaps_like([a, b, c], 2), [fill_short_gaps(x, 2) for x in (a, b, c)]):
+        assert np.array_equal(got, ref, equal_nan=True)
+    for var in (b, c):
+        m, v = window_mean_and_variance(a, var, 3)
+        assert np.array_equal(m, window_mean(a, 3), equal_nan=True)
+        assert np.array_equal(v, window_sum_sq_weights(var, 3), equal_nan=True)
+    memb = membership_matrix([np.array([0, 1, 2]), np.array([2, 3, 4]), np.array([5, 6, 7, 8])], 9)
+    mean_a, var_a, n_a = cluster_mean(a, memb)
+    for other in (b, c):
+        ref = cluster_mean(other, memb)
+        got = cluster_mean(other, memb, counts=(np.isfinite(a), n_a))
+        for x, y in zip(got, ref):
+            assert np.array_equal(x, y, equal_nan=True)
+    mean, var, n = cluster_mean(a, memb, variance=False)
+    assert var is None and np.array_equal(mean, mean_a, equal_nan=True) and np.array_equal(n, n_a)

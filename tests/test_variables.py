@@ -88,3 +88,15 @@ def test_round_trip_components():
     u, v = V.wind_components(s, d)
     assert np.allclose(V.wind_direction(u, v), d)
     assert np.allclose(np.hypot(u, v), s)
+
+
+def test_wrap_degrees_equals_the_remainder_bit_for_bit():
+    from stationflow.variables import wrap_degrees
+
+    rng = np.random.default_rng(11)
+    a = np.concatenate([rng.uniform(-359.999, 719.999, 100_000), [-0.0, 0.0, -1e-14, -5e-324, 360.0, 360 - 1e-13,
+                                                                    719.9999999999999, -359.9999999999999, np.nan]])
+    ref = a % 360.0
+    out = wrap_degrees(a)
+    assert np.array_equal(out, ref, equal_nan=True)
+    assert np.array_equal(np.signbit(out), np.signbit(ref))
