@@ -172,7 +172,7 @@ def test_shared_work_gives_the_same_numbers():
         assert np.array_equal(m, window_mean(a, 3), equal_nan=True)
         assert np.array_equal(v, window_sum_sq_weights(var, 3), equal_nan=True)
     memb = membership_matrix([np.array([0, 1, 2]), np.array([2, 3, 4]), np.array([5, 6, 7, 8])], 9)
-    mean_a, var_a, n_a = cluster_mean(a, memb)
+    mean_a, _, n_a = cluster_mean(a, memb)
     for other in (b, c):
         ref = cluster_mean(other, memb)
         got = cluster_mean(other, memb, counts=(np.isfinite(a), n_a))
