@@ -561,11 +561,15 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     th = thresholds(cfg)
     variables = [c for c in observations.columns if c not in ("station_id", "time")]
     n = len(observations)
-    order = np.lexsort((observations["time"].to_numpy("datetime64[ns]").astype(np.int64),
-                        pd.factorize(observations["station_id"])[0]))
+    first_seen = pd.factorize(observations["station_id"])[0]  # stations in order of first appearance
+    t_all = observations["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    if n > 1 and bool((t_all[1:] >= t_all[:-1]).all()):  # in time order (as ingest leaves it)
+        order = np.argsort(first_seen, kind="stable")  # the same order as the two-key sort below
+    else:
+        order = np.lexsort((t_all, first_seen))
     obs = observations.iloc[order]
-    codes = pd.factorize(obs["station_id"])[0]
-    tns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    codes = first_seen[order]  # the factorisation of the sorted rows: stations are now 0, 1, 2, ...
+    tns = t_all[order]
     fired: dict[str, dict[str, np.ndarray]] = {v: {} for v in variables}
     arr = {v: obs[v].to_numpy(float) for v in variables}
     calm_speed = qcfg["calm_speed"]
@@ -701,8 +705,6 @@ class _Spatial:
 
     def run(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
         """The buddy test of ``v`` on bin means of the surface stations, mapped back to the rows."""
-        import warnings
-
         from .align import to_grid
 
         qcfg = self.cfg["qc"]
@@ -721,8 +723,7 @@ class _Spatial:
         opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
                     suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed,
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
+        with np.errstate(all="ignore"):  # thread-safe, unlike warnings.catch_warnings (this runs on a thread)
             passed, bad, _ = agrees_with_neighbours(data, self.sx, self.sy, self.sz, **opts)
         finite = np.isfinite(self.arr[v])
         fail = np.zeros(n, bool)
