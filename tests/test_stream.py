@@ -50,6 +50,7 @@ def test_streamed_files_equal_the_in_memory_table(memory_run, tmp_path, chunk):
     meta = papq.ParquetFile(tmp_path / "budget.parquet").metadata.row_group(0)
     codecs = {meta.column(i).path_in_schema: meta.column(i).compression for i in range(meta.num_columns)}
     assert codecs["advection"] == "UNCOMPRESSED" and codecs["value"] == "SNAPPY" and codecs["tendency_se"] == "SNAPPY"
+    assert not any(f.nullable for f in papq.read_schema(tmp_path / "budget.parquet"))  # NaN, never null
     csv = pd.read_csv(tmp_path / "budget.csv")
     assert len(csv) == len(ref) and list(csv.columns) == list(ref.columns)
     np.testing.assert_allclose(csv["residual"].to_numpy(), ref["residual"].to_numpy(), rtol=1e-9, equal_nan=True)
