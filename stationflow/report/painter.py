@@ -3,9 +3,10 @@
 matplotlib's import and the drawing of the report figures are pure Python
 and cost a few seconds; on a machine with two or more cores they can run
 beside the budget computation instead of after it.  A :class:`Painter`
-starts two worker processes (``spawn``: safe with the writer thread, and no
-copy of a large heap; two, so the two budget figures asked for at the end
-are drawn at once), warms them up (imports matplotlib), and takes drawing
+starts a worker process (``spawn``: safe with the writer thread, and no
+copy of a large heap; one by default: a second drew the two budget figures
+at once but its start-up, 1.3 s of CPU, cost more than it saved on two
+cores), warms it up (imports matplotlib, draws a throw-away figure), and takes drawing
 jobs whose arguments are small (the prepared images and series, not the
 observations).  ``Painter(background=False)`` draws in this process; every
 job returns a :class:`concurrent.futures.Future` either way, and a failure in
@@ -52,7 +53,7 @@ def _warm_up() -> None:
 class Painter:
     """Draw figures in a worker process (or here, when ``background`` is False or no process can start)."""
 
-    def __init__(self, background: bool | None = None, *, workers: int = 2) -> None:
+    def __init__(self, background: bool | None = None, *, workers: int = 1) -> None:
         if background is None:
             background = (os.cpu_count() or 1) > 1 and os.environ.get("STATIONFLOW_FIGURES", "") != "inline"
         self._pool = None
