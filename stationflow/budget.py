@@ -370,7 +370,8 @@ def compute_budget(
     if np.isfinite(u).any():
         from .kinematics import fit_wind, kinematics
 
-        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations),
+        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations,
+                                  residuals=False),
                          deformation=False)  # the budget reports divergence and vorticity only
         for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
             out[name] = kin[name]

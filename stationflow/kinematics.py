@@ -34,10 +34,15 @@ class WindFit:
 
 
 def fit_wind(u: np.ndarray, v: np.ndarray, x: np.ndarray, y: np.ndarray, members: list[np.ndarray], *,
-             sigma: float = 0.5, min_stations: int = 3) -> WindFit:
-    """Fit planes to u and v [m s-1] (grid axes) in one batched call."""
+             sigma: float = 0.5, min_stations: int = 3, residuals: bool = True) -> WindFit:
+    """Fit planes to u and v [m s-1] (grid axes) in one batched call.
+
+    ``residuals=False`` skips the residual RMS and chi-square (None), which
+    :func:`kinematics` does not use.
+    """
     n_t = u.shape[0]
-    both = fit_planes(np.concatenate([u, v], axis=0), x, y, members, sigma=sigma, min_stations=min_stations)
+    both = fit_planes(np.concatenate([u, v], axis=0), x, y, members, sigma=sigma, min_stations=min_stations,
+                      residuals=residuals)
 
     def half(sl: slice) -> PlaneFit:
         return PlaneFit(value=both.value[sl], grad_x=both.grad_x[sl], grad_y=both.grad_y[sl], grad_z=None,

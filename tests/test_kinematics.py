@@ -79,3 +79,15 @@ def test_divergence_and_vorticity_do_not_depend_on_the_deformation_option():
     assert set(short) == {"divergence", "divergence_se", "vorticity", "vorticity_se"}
     for k in short:
         assert np.array_equal(full[k], short[k])
+
+
+def test_wind_fit_without_residuals_gives_the_same_kinematics():
+    rng = np.random.default_rng(2)
+    x, y = rng.uniform(0, 3e4, 5), rng.uniform(0, 3e4, 5)
+    u, v = rng.normal(size=(20, 5)), rng.normal(size=(20, 5))
+    u[3, 1] = v[3, 1] = np.nan
+    full = fit_wind(u, v, x, y, [np.arange(5)])
+    lean = fit_wind(u, v, x, y, [np.arange(5)], residuals=False)
+    assert lean.u.rms is None and full.u.rms is not None
+    for name, value in kinematics(full).items():
+        assert np.array_equal(value, kinematics(lean)[name], equal_nan=True), name
