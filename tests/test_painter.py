@@ -68,3 +68,36 @@ def test_close_waits_for_every_job_then_stops_the_workers(tmp_path):
     assert all((tmp_path / f"f{i}.png").stat().st_size > 0 for i in range(3))
     assert not list(tmp_path.glob(".*.part"))  # every file renamed into place
     assert procs and all(not p.is_alive() for p in procs)
+
+
+def test_a_killed_worker_means_the_figure_is_drawn_here(tmp_path):
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags)
+    with Painter(background=True) as painter:
+        painter.submit(plots.draw_qc_overview, image, tmp_path / "warm.png").result(timeout=120)
+        for proc in list(getattr(painter._pool, "_processes", {}).values()):
+            proc.kill()  # as the kernel's out-of-memory killer would
+            proc.join(timeout=30)
+        fut = painter.submit(plots.draw_qc_overview, image, tmp_path / "after.png")
+        path = fut.result(timeout=120)
+    assert path == tmp_path / "after.png" and path.stat().st_size > 0
+    assert fut.done() and fut.exception() is None
+
+
+def _slow_draw(image, path):
+    import time
+
+    time.sleep(2.0)
+    return plots.draw_qc_overview(image, path)
+
+
+def test_a_worker_killed_mid_figure_means_it_is_drawn_here(tmp_path):
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags)
+    with Painter(background=True) as painter:
+        painter.submit(plots.draw_qc_overview, image, tmp_path / "warm.png").result(timeout=120)
+        fut = painter.submit(_slow_draw, image, tmp_path / "slow.png")
+        for proc in list(getattr(painter._pool, "_processes", {}).values()):
+            proc.kill()
+        assert fut.result(timeout=120) == tmp_path / "slow.png"
+    assert (tmp_path / "slow.png").stat().st_size > 0

@@ -9,8 +9,9 @@ at once but its start-up, 1.3 s of CPU, cost more than it saved on two
 cores), warms it up (imports matplotlib, draws a throw-away figure), and takes drawing
 jobs whose arguments are small (the prepared images and series, not the
 observations).  ``Painter(background=False)`` draws in this process; every
-job returns a :class:`concurrent.futures.Future` either way, and a failure in
-the worker is raised again by ``future.result()``.
+job returns a future-like object either way: a failure in the worker is
+raised again by ``result()``, and a job whose worker process died (killed
+for memory, say) is drawn in this process instead.
 
 The worker is started only where it can help (``os.cpu_count() > 1``) and
 falls back to drawing in this process when a process cannot be started.
@@ -21,6 +22,7 @@ from __future__ import annotations
 import logging
 import os
 from concurrent.futures import Future, wait
+from concurrent.futures.process import BrokenProcessPool
 from typing import Any, Callable
 
 log = logging.getLogger(__name__)
@@ -50,6 +52,48 @@ def _warm_up() -> None:
     plt.close(fig)
 
 
+def _inline(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Future:
+    fut: Future = Future()
+    try:
+        fut.set_result(fn(*args, **kwargs))
+    except Exception as exc:  # noqa: BLE001 - handed to the caller through the future
+        fut.set_exception(exc)
+    return fut
+
+
+class Drawing:
+    """A figure job in the worker; drawn here instead if the worker process died before finishing it."""
+
+    def __init__(self, job: Future, fn: Callable[..., Any], args: tuple, kwargs: dict) -> None:
+        self._job, self._call = job, (fn, args, kwargs)
+        self._here: Future | None = None
+
+    def _settled(self, timeout: float | None) -> Future:
+        if self._here is not None:
+            return self._here
+        try:
+            self._job.result(timeout)
+            return self._job
+        except BrokenProcessPool as exc:
+            log.info("figure worker stopped (%s); drawing in this process", exc)
+            self._here = _inline(*self._call)
+            return self._here
+        except Exception:  # noqa: BLE001 - the job's own error, raised by result()
+            return self._job
+
+    def result(self, timeout: float | None = None) -> Any:
+        """The job's return value (its error is raised here)."""
+        return self._settled(timeout).result()
+
+    def exception(self, timeout: float | None = None) -> BaseException | None:
+        """The job's error, or None."""
+        return self._settled(timeout).exception()
+
+    def done(self) -> bool:
+        """True once the job has finished (successfully or not)."""
+        return self._here is not None or self._job.done()
+
+
 class Painter:
     """Draw figures in a worker process (or here, when ``background`` is False or no process can start)."""
 
@@ -76,22 +120,22 @@ class Painter:
         """True when figures are drawn in the worker process."""
         return self._pool is not None
 
-    def submit(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> Future:
-        """Run ``fn(*args, **kwargs)`` in the worker (a module-level function with picklable arguments)."""
+    def submit(self, fn: Callable[..., Any], *args: Any, **kwargs: Any) -> "Future | Drawing":
+        """Run ``fn(*args, **kwargs)`` in the worker (a module-level function with picklable arguments).
+
+        Returns a future-like object: ``result()`` gives the return value or
+        raises the job's error.  If the worker dies (killed for memory, say),
+        ``result()`` draws the figure in this process instead.
+        """
         if self._pool is not None:
             try:
                 job = self._pool.submit(fn, *args, **kwargs)
                 self._jobs.append(job)
-                return job
+                return Drawing(job, fn, args, kwargs)
             except RuntimeError as exc:  # the pool broke (worker killed): draw here
                 log.info("figure worker unavailable (%s); drawing in this process", exc)
                 self._pool = None
-        fut: Future = Future()
-        try:
-            fut.set_result(fn(*args, **kwargs))
-        except Exception as exc:  # noqa: BLE001 - handed to the caller through the future
-            fut.set_exception(exc)
-        return fut
+        return _inline(fn, args, kwargs)
 
     def close(self) -> None:
         """Wait for the jobs in flight and stop the workers.
