@@ -552,9 +552,10 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     """Run every test on the tidy observations and combine the results into flags.
 
     ``observations`` must be the ingest result (canonical names, SI units).
-    Vectorised over stations and time.  The variables are independent until
-    the internal-consistency tests, so they are checked on two threads (the
-    work is large numpy operations, which release the GIL).
+    Vectorised over stations and time.  After the internal-consistency tests
+    (which read only the raw values) the variables are independent, so they
+    are checked on two threads (the work is large numpy operations, which
+    release the GIL).
     """
     cfg = config or Config()
     qcfg = cfg["qc"]
@@ -600,6 +601,15 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
             spatial.run(v, fired[v])
 
     if qcfg["enabled"]:
+        # the consistency tests use only the raw values: first, so that the buddy test skips what they fail
+        if "dew_point_temperature" in arr and "air_temperature" in arr:
+            fired["dew_point_temperature"]["consistency"] = ~dew_point_not_above_temperature(
+                arr["dew_point_temperature"], arr["air_temperature"], qcfg["dew_point_tolerance"])
+        if "wind_speed_of_gust" in arr and "wind_speed" in arr:
+            fired["wind_speed_of_gust"]["consistency"] = ~gust_not_below_mean(arr["wind_speed_of_gust"], arr["wind_speed"])
+        if "wind_from_direction" in arr and "wind_speed" in arr:
+            fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
+                arr["wind_from_direction"], arr["wind_speed"], calm_speed)
         spatial = _Spatial.setup(obs, stations, arr, cfg, th) if qcfg["spatial"] else None
         # the heaviest variables first, so the two threads finish together
         work = sorted(variables, key=lambda v: spatial is None or v not in spatial.names)
@@ -612,14 +622,6 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         else:
             for v in work:
                 check(v)
-        if "dew_point_temperature" in arr and "air_temperature" in arr:
-            fired["dew_point_temperature"]["consistency"] = ~dew_point_not_above_temperature(
-                arr["dew_point_temperature"], arr["air_temperature"], qcfg["dew_point_tolerance"])
-        if "wind_speed_of_gust" in arr and "wind_speed" in arr:
-            fired["wind_speed_of_gust"]["consistency"] = ~gust_not_below_mean(arr["wind_speed_of_gust"], arr["wind_speed"])
-        if "wind_from_direction" in arr and "wind_speed" in arr:
-            fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
-                arr["wind_from_direction"], arr["wind_speed"], calm_speed)
     flags: dict[str, np.ndarray] = {}
     tests: dict[str, np.ndarray] = {}
     inv = np.empty(n, np.int64)

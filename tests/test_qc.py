@@ -284,3 +284,17 @@ def test_threaded_qc_equals_serial(monkeypatch):
     for v in serial.flags:
         assert np.array_equal(serial.flags[v], threaded.flags[v])
         assert np.array_equal(serial.tests[v], threaded.tests[v])
+
+
+def test_buddy_test_leaves_out_dew_points_already_failed_for_consistency():
+    # a dew point above the air temperature fails the consistency test; the buddy test, like every later
+    # test, skips values already failed (they would spoil the neighbours' predictions)
+    obs, st, _ = _fault_network()
+    rng = np.random.default_rng(8)
+    obs = obs.assign(dew_point_temperature=obs["air_temperature"] - 3.0 + rng.normal(0, 0.1, len(obs)))
+    bad_rows = np.flatnonzero((obs["station_id"] == "S05").to_numpy())[::7]
+    obs.loc[obs.index[bad_rows], "dew_point_temperature"] = obs["air_temperature"].to_numpy()[bad_rows] + 6.0
+    res = qc.run_qc(obs, st, from_dict({}))
+    bits = res.tests["dew_point_temperature"][bad_rows]
+    assert ((bits & qc.TEST_BITS["consistency"]) > 0).all()
+    assert not ((bits & qc.TEST_BITS["spatial"]) > 0).any()
