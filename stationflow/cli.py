@@ -312,7 +312,7 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
                 csv: bool = False, dask: bool = False, scheduler: str | None = None):
     """Check, budget (streamed to ``out``) and report; returns (run, notes). Shared by ``budget`` and ``demo``.
 
-    The figures are drawn in worker processes while the budget is computed:
+    The figures are drawn in a worker process while the budget is computed:
     the QC overview as soon as QC is done, the budget figures as soon as the
     last partition is (while the files are closed).
     """

@@ -1013,8 +1013,6 @@ def _deduplicate(good: pd.DataFrame, lines: np.ndarray, files: np.ndarray, var_c
     s_codes, s_ids = pd.factorize(good["station_id"])
     t_codes, _ = pd.factorize(pd.DatetimeIndex(good["time"]).asi8)
     key = t_codes.astype(np.int64) * max(1, len(s_ids)) + s_codes  # one integer per (station, time)
-    if key.size < 2 or bool((key[1:] > key[:-1]).all()):  # strictly increasing (a file in time order): no repeats
-        return good, [], 0
     dup = pd.Series(key).duplicated(keep=False).to_numpy()
     if not dup.any():
         return good, [], 0

@@ -420,9 +420,8 @@ def _in_order(job: Callable[[int, int], dict], parts: list[tuple[int, int]], thr
 
     with ThreadPoolExecutor(max_workers=threads, thread_name_prefix="stationflow-budget") as pool:
         queue: deque = deque()
-        todo = iter(parts)
         try:
-            for first, last in todo:
+            for first, last in parts:
                 queue.append((first, pool.submit(job, first, last)))
                 if len(queue) >= threads:
                     done_first, fut = queue.popleft()

@@ -673,8 +673,6 @@ class _Spatial:
 
     @classmethod
     def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, cfg: Config, th: dict) -> "_Spatial | None":
-        import warnings
-
         from .align import bin_index, infer_interval, to_grid
         from .geometry import assign_roles, project
 
@@ -698,9 +696,7 @@ class _Spatial:
         light = None
         if "wind_speed" in arr:
             wind = to_grid(obs[["station_id", "time", "wind_speed"]], surface_ids, ["wind_speed"], interval=interval, start=t0, end=end)
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                light = ~(row_nanmedian(wind.values["wind_speed"]) >= qcfg["spatial_light_wind"])
+            light = ~(row_nanmedian(wind.values["wind_speed"]) >= qcfg["spatial_light_wind"])
         return cls(frames, arr, cfg, th, names, surface_ids, x[surface], y[surface],
                    st["elevation"].to_numpy(float)[surface], interval, t0, end, inside, flat,
                    float(st["latitude"].mean()), float(st["longitude"].mean()), light)

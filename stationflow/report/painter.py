@@ -132,8 +132,9 @@ class Painter:
                 job = self._pool.submit(fn, *args, **kwargs)
                 self._jobs.append(job)
                 return Drawing(job, fn, args, kwargs)
-            except RuntimeError as exc:  # the pool broke (worker killed): draw here
+            except RuntimeError as exc:  # the pool broke (worker killed): draw here from now on
                 log.info("figure worker unavailable (%s); drawing in this process", exc)
+                self._pool.shutdown(wait=False, cancel_futures=True)
                 self._pool = None
         return _inline(fn, args, kwargs)
 
