@@ -55,7 +55,11 @@ def infer_interval(observations: pd.DataFrame) -> pd.Timedelta:
         order = np.argsort(codes, kind="stable")  # time order kept within each station
     else:
         order = np.lexsort((t, codes))
-    codes, t = codes[order], t[order]
+    return interval_of_sorted(codes[order], t[order])
+
+
+def interval_of_sorted(codes: np.ndarray, t: np.ndarray) -> pd.Timedelta:
+    """:func:`infer_interval` of rows already sorted by (station code, time in ns); codes < 0 are ignored."""
     dt = np.diff(t)
     keep = (codes[1:] == codes[:-1]) & (dt > 0) & (codes[1:] >= 0)
     if not keep.any():

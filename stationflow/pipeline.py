@@ -141,9 +141,14 @@ def _quantity(obs: pd.DataFrame, stations: pd.DataFrame, variable: str, vertical
     return x * (P_REF / p) ** KAPPA, "potential_temperature"
 
 
-def _durations(config: Config, observations: pd.DataFrame) -> tuple[pd.Timedelta, pd.Timedelta, int]:
+def _durations(config: Config, observations: pd.DataFrame, known: pd.Timedelta | None = None
+               ) -> tuple[pd.Timedelta, pd.Timedelta, int]:
+    """(interval, window, half-window in steps); ``known``: the reporting interval QC already found."""
     bc = config["budget"]
-    interval = align.parse_duration(bc["interval"]) if bc["interval"] else align.infer_interval(observations)
+    if bc["interval"]:
+        interval = align.parse_duration(bc["interval"])
+    else:
+        interval = known if known is not None else align.infer_interval(observations)
     window = align.parse_duration(bc["window"]) if bc["window"] else 2 * interval
     h = int(round(window / interval / 2))
     if h < 1:
@@ -233,7 +238,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     if net.usable.empty:
         raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
                             "and relax [network] min_angle/min_shape/max_side_km")
-    interval, window, h = _durations(config, obs)
+    interval, window, h = _durations(config, obs, chk.qc.interval)
     ids = st_all["station_id"].tolist()
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
     index = {s: i for i, s in enumerate(ids)}

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .align import station_columns
+from .align import interval_of_sorted, station_columns
 from .config import Config
 
 log = logging.getLogger(__name__)
@@ -82,10 +82,14 @@ class QCResult:
 
     ``flags[name]`` is an int8 array (0 good, 1 suspect, 2 bad, 3 missing),
     ``tests[name]`` an int16 bitmask of :data:`TEST_BITS`.
+    ``interval``: the reporting interval of the same observations
+    (:func:`stationflow.align.infer_interval`), found while their rows were
+    in station order; None when not known.
     """
 
     flags: dict[str, np.ndarray]
     tests: dict[str, np.ndarray]
+    interval: pd.Timedelta | None = None
 
     def usable(self, *, use_suspect: bool = False) -> dict[str, np.ndarray]:
         """Masks of the values the estimator may use."""
@@ -575,6 +579,7 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     arr = {v: obs[v].to_numpy(float) for v in variables}
     calm_speed = qcfg["calm_speed"]
     slots = regular_slots(tns, codes)
+    interval = interval_of_sorted(codes, tns)  # the rows are in (station, time) order: no sort needed
 
     def check(v: str) -> None:
         """The single-variable tests of ``v``, then its spatial test (which skips values already failed)."""
@@ -610,7 +615,7 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         if "wind_from_direction" in arr and "wind_speed" in arr:
             fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
                 arr["wind_from_direction"], arr["wind_speed"], calm_speed)
-        spatial = _Spatial.setup(obs, stations, arr, cfg, th) if qcfg["spatial"] else None
+        spatial = _Spatial.setup(obs, stations, arr, cfg, th, interval) if qcfg["spatial"] else None
         # the heaviest variables first, so the two threads finish together
         work = sorted(variables, key=lambda v: spatial is None or v not in spatial.names)
         if n >= THREADED_ROWS and len(work) > 1:
@@ -642,7 +647,7 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
             f = np.where(spatial_bad & ~missing, BAD, f).astype(np.int8)
         flags[v] = f[inv]
         tests[v] = bits[inv]
-    return QCResult(flags, tests)
+    return QCResult(flags, tests, interval)
 
 
 #: rows above which the variables are checked on two threads
@@ -672,8 +677,9 @@ class _Spatial:
     light: np.ndarray | None
 
     @classmethod
-    def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, cfg: Config, th: dict) -> "_Spatial | None":
-        from .align import bin_index, infer_interval, to_grid
+    def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, cfg: Config, th: dict,
+              interval: pd.Timedelta) -> "_Spatial | None":
+        from .align import bin_index, to_grid
         from .geometry import assign_roles, project
 
         qcfg = cfg["qc"]
@@ -683,7 +689,6 @@ class _Spatial:
         surface_ids = st["station_id"][surface].tolist()
         if len(surface_ids) < 5:
             return None
-        interval = infer_interval(obs)
         t0 = obs["time"].min().ceil(interval)
         rows = bin_index(obs["time"], t0, interval)
         col = station_columns(obs["station_id"], surface_ids)

@@ -72,3 +72,10 @@ def test_inferred_interval_equals_the_group_by_definition(seed):
         obs = obs.sample(frac=1, random_state=seed)  # not in time order
     if obs.groupby("station_id", observed=True)["time"].apply(lambda s: (s.sort_values().diff().dt.total_seconds() > 0).any()).any():
         assert align.infer_interval(obs) == _interval_by_groupby(obs)
+    # QC finds the same interval on the same rows while they are in station order (the budget then reuses it)
+    from stationflow import qc
+
+    obs["air_temperature"] = 280.0 + rng.normal(0, 0.1, len(obs))
+    st = pd.DataFrame({"station_id": ["A", "B", "C", "D"], "latitude": [45.0, 45.1, 45.0, 45.1],
+                       "longitude": [7.0, 7.0, 7.1, 7.1], "elevation": 100.0})
+    assert qc.run_qc(obs, st).interval == align.infer_interval(obs)
