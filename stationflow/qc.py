@@ -632,19 +632,19 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     inv = np.empty(n, np.int64)
     inv[order] = np.arange(n)
     for v in variables:
-        missing = np.isnan(arr[v])
-        f = np.where(missing, MISSING, GOOD).astype(np.int8)
+        present = ~np.isnan(arr[v])
+        f = np.full(n, MISSING, np.int8)
+        f[present] = GOOD
         bits = np.zeros(n, np.int16)
         spatial_bad = fired[v].pop("spatial_bad", None)
         for name in TEST_BITS:  # a fixed order: the result does not depend on which thread finished first
             if name not in fired[v]:
                 continue
-            mask = fired[v][name] & ~missing
-            bits |= np.where(mask, TEST_BITS[name], 0).astype(np.int16)
-            sev = SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name])
-            f = np.where(mask & (f < sev), sev, f).astype(np.int8)
+            mask = fired[v][name] & present  # in place below: no temporary arrays per test
+            np.bitwise_or(bits, TEST_BITS[name], out=bits, where=mask)
+            np.maximum(f, SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name]), out=f, where=mask)
         if spatial_bad is not None:
-            f = np.where(spatial_bad & ~missing, BAD, f).astype(np.int8)
+            np.maximum(f, BAD, out=f, where=spatial_bad & present)  # BAD is the highest flag of a present value
         flags[v] = f[inv]
         tests[v] = bits[inv]
     return QCResult(flags, tests, interval)
