@@ -153,12 +153,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
     tz = run.check.config["observations"]["timezone"]
     lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
-    figs: list[tuple[str, Path]] = []
-    if report:
-        ts, mp = figures["timeseries"].result(), figures["map"].result()
-        figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
-                ("Quality control overview", out / "qc_overview.png")]
-        written += [ts, mp]
+    # everything the report says is prepared while the figures are still being drawn
+    pieces = _report_pieces(run, lines, inputs) if report else None
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
@@ -170,15 +166,18 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "qc": {"flags": _flag_counts(run.check)},
     })
     if report:
-        written.append(_report(out, run, lines, figs, inputs))
+        ts, mp = figures["timeseries"].result(), figures["map"].result()
+        figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
+                ("Quality control overview", out / "qc_overview.png")]
+        written += [ts, mp]
+        written.append(_report(out, pieces, figs))
     rec["outputs"] = sorted({p.name for p in written} | {"run.json"})
     written.append(files.write_json(rec, out / "run.json"))
     return written, notes
 
 
-def _report(out: Path, run, lines: list[str], figs, inputs: dict) -> Path:
-    from .html import write_report
-
+def _report_pieces(run, lines: list[str], inputs: dict) -> dict:
+    """The text and tables of report.html (all but the figures and the file list)."""
     data = run.check.data
     obs = data.observations
     t0, t1 = obs["time"].min(), obs["time"].max()
@@ -235,7 +234,13 @@ def _report(out: Path, run, lines: list[str], figs, inputs: dict) -> Path:
     if run.quantity == "potential_temperature":
         method.append("Air temperature was converted to potential temperature (pressure observed or from the standard "
                       "atmosphere at the station elevation) so that height differences do not pose as horizontal gradients.")
-    file_list = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
     title = f"stationflow budget: {run.variable.replace('_', ' ')}"
-    return write_report(out / "report.html", title=title, summary=summary, periods=lines, quality=quality,
-                        cluster_table=ct, figures=figs, method=method, files=sorted(set(file_list) | {"report.html"}))
+    return dict(title=title, summary=summary, periods=lines, quality=quality, cluster_table=ct, method=method)
+
+
+def _report(out: Path, pieces: dict, figs) -> Path:
+    """Write report.html from :func:`_report_pieces` and the finished figures."""
+    from .html import write_report
+
+    file_list = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
+    return write_report(out / "report.html", figures=figs, files=sorted(set(file_list) | {"report.html"}), **pieces)
