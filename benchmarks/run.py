@@ -282,7 +282,14 @@ def plot(rows: list[dict], path: Path) -> Path:
     return path
 
 
-def main(argv: list[str]) -> None:
+def main(argv: list[str]) -> int:
+    if any(a in ("-h", "--help") for a in argv):
+        print(f"usage: python benchmarks/run.py [size ...]  (sizes: {', '.join(SIZES)}; default: {' '.join(DEFAULT)})")
+        return 0
+    unknown = [a for a in argv if a not in SIZES]
+    if unknown:
+        print(f"error: unknown benchmark size {unknown[0]!r}; choose from {', '.join(SIZES)}", file=sys.stderr)
+        return 2
     names = argv or DEFAULT
     folder = ROOT / "benchmarks" / "output"
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
@@ -295,7 +302,8 @@ def main(argv: list[str]) -> None:
     old.update({r["size"]: r for r in rows})
     store.write_text(json.dumps(list(old.values()), indent=2))
     print(f"scaling plot: {plot(list(old.values()), folder / 'scaling.png')}")
+    return 0
 
 
 if __name__ == "__main__":
-    main(sys.argv[1:])
+    sys.exit(main(sys.argv[1:]))

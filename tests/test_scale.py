@@ -101,6 +101,18 @@ def test_benchmark_harness_runs_smallest_size(tmp_path):
     assert rows[0]["run_s"] > 0 and rows[0]["floor_s"] > 0
 
 
+def test_benchmark_harness_names_an_unknown_size(capsys):
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("bench", ROOT / "benchmarks" / "run.py")
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    assert bench.main(["3000"]) == 2
+    assert "unknown benchmark size '3000'" in capsys.readouterr().err
+    assert bench.main(["--help"]) == 0
+    assert "300x30d" in capsys.readouterr().out
+
+
 def test_dask_engine_writes_the_same_files(reference, tmp_path):
     # the CLI path: partitions computed on a local two-worker cluster, written as they arrive
     pytest.importorskip("dask.distributed")
