@@ -3,6 +3,7 @@
 import hashlib
 import json
 import os
+import re
 from pathlib import Path
 
 import numpy as np
@@ -43,6 +44,9 @@ def test_budget_writes_the_contract_files(frost_out):
                  "report.html", "budget_timeseries.png", "budget_map.png", "qc_overview.png"):
         assert (frost_out / name).stat().st_size > 0, name
     assert not list(frost_out.glob(".*.part"))  # no temporary files left behind
+    # the report's file list is every output, run.json included, on a first run into a new folder too
+    listed = set(re.findall(r"<li><code>([^<]+)</code></li>", (frost_out / "report.html").read_text()))
+    assert listed == {p.name for p in frost_out.iterdir() if p.is_file()}
 
 
 def test_budget_table_columns_units_and_regimes(frost_out):

@@ -239,8 +239,8 @@ def _report_pieces(run, lines: list[str], inputs: dict) -> dict:
 
 
 def _report(out: Path, pieces: dict, figs) -> Path:
-    """Write report.html from :func:`_report_pieces` and the finished figures."""
+    """Write report.html from :func:`_report_pieces` and the finished figures (run.json is written next)."""
     from .html import write_report
 
     file_list = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
-    return write_report(out / "report.html", figures=figs, files=sorted(set(file_list) | {"report.html"}), **pieces)
+    return write_report(out / "report.html", figures=figs, files=sorted(set(file_list) | {"report.html", "run.json"}), **pieces)
