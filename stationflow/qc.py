@@ -21,6 +21,8 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass
+from functools import partial
+from typing import Callable
 
 import numpy as np
 import pandas as pd
@@ -559,7 +561,9 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     Vectorised over stations and time.  After the internal-consistency tests
     (which read only the raw values) the variables are independent, so they
     are checked on two threads (the work is large numpy operations, which
-    release the GIL).
+    release the GIL): the buddy test's set-up, each tested variable's
+    range/step and persistence tests and then its buddy test (which skips
+    what those failed) as separate tasks, then the other variables.
     """
     cfg = config or Config()
     qcfg = cfg["qc"]
@@ -581,8 +585,8 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     slots = regular_slots(tns, codes)
     interval = interval_of_sorted(codes, tns)  # the rows are in (station, time) order: no sort needed
 
-    def check(v: str) -> None:
-        """The single-variable tests of ``v``, then its spatial test (which skips values already failed)."""
+    def first_tests(v: str) -> None:
+        """Range, step and spike tests of ``v``."""
         x = arr[v]
         if v in th["range"]:
             fired[v]["range"] = ~within_range(x, *th["range"][v])
@@ -592,6 +596,9 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
             step_ok, spike_ok = plausible_steps(x, tns, codes, th["step"][v])
             fired[v]["step"] = ~step_ok
             fired[v]["spike"] = ~spike_ok
+
+    def persistence_test(v: str) -> None:
+        x = arr[v]
         if v in th["persistence"] or _is_pm(v):
             mr, win = th["persistence"].get(v, (1e-9, 60.0))
             exempt = None
@@ -602,6 +609,19 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
             elif v == "relative_humidity":
                 exempt = x >= 99.0
             fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt, slots=slots)
+
+    def all_tests(v: str) -> None:
+        first_tests(v)
+        persistence_test(v)
+
+    shared: dict[str, _Spatial | None] = {}
+
+    def spatial_setup() -> None:
+        shared["spatial"] = _Spatial.setup(obs, stations, arr, cfg, th, interval)
+
+    def spatial_test(v: str) -> None:
+        """The buddy test of ``v``: after its other tests, whose failures it skips."""
+        spatial = shared["spatial"]
         if spatial is not None and v in spatial.names:
             spatial.run(v, fired[v])
 
@@ -615,18 +635,27 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         if "wind_from_direction" in arr and "wind_speed" in arr:
             fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
                 arr["wind_from_direction"], arr["wind_speed"], calm_speed)
-        spatial = _Spatial.setup(obs, stations, arr, cfg, th, interval) if qcfg["spatial"] else None
-        # the heaviest variables first, so the two threads finish together
-        work = sorted(variables, key=lambda v: spatial is None or v not in spatial.names)
-        if n >= THREADED_ROWS and len(work) > 1:
+        # the tasks, each after the earlier ones it needs: the buddy test's set-up and the variables it tests
+        # (their other tests split in two) first, as they take longest, so that the two threads finish together
+        buddy = [v for v in variables if qcfg["spatial"] and (v in SPATIAL_VARIABLES or _is_pm(v))]
+        plan: list[tuple[Callable[[], None], tuple[int, ...]]] = [(spatial_setup, ())] if buddy else []
+        for v in buddy:
+            i = len(plan)
+            plan += [(partial(first_tests, v), ()), (partial(persistence_test, v), ()),
+                     (partial(spatial_test, v), (0, i, i + 1))]
+        plan += [(partial(all_tests, v), ()) for v in variables if v not in buddy]
+        if n >= THREADED_ROWS and len(plan) > 1:
             from concurrent.futures import ThreadPoolExecutor
 
             with ThreadPoolExecutor(max_workers=2, thread_name_prefix="stationflow-qc") as pool:
-                for fut in [pool.submit(check, v) for v in work]:
+                futures: list = []
+                for task, needs in plan:  # a task waits only on tasks submitted (hence started) before it
+                    futures.append(pool.submit(_after, [futures[j] for j in needs], task))
+                for fut in futures:
                     fut.result()
         else:
-            for v in work:
-                check(v)
+            for task, _ in plan:
+                task()
     flags: dict[str, np.ndarray] = {}
     tests: dict[str, np.ndarray] = {}
     inv = np.empty(n, np.int64)
@@ -652,6 +681,12 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
 
 #: rows above which the variables are checked on two threads
 THREADED_ROWS = 200_000
+
+
+def _after(needs: list, task: Callable[[], None]) -> None:
+    for fut in needs:
+        fut.result()
+    task()
 
 
 @dataclass
