@@ -220,6 +220,9 @@ class BudgetFiles:
         lay = self.layout
         n_t, n_c = len(lay.times), len(lay.clusters)
         nc = netCDF4.Dataset(self._tmp["budget.nc"], "w", format="NETCDF4")
+        # every cell is written (the partitions cover all analysis steps, checked on closing): no pre-fill of
+        # each variable with its _FillValue on its first write, which wrote the whole file once more
+        nc.set_fill_off()
         self._stack.callback(nc.close)
         self._nc = nc
         nc.setncatts(global_attrs(lay))
