@@ -20,7 +20,7 @@ light wind the spatial test is relaxed and can only make a value suspect.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from functools import partial
 from typing import Callable
 
@@ -561,9 +561,10 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     Vectorised over stations and time.  After the internal-consistency tests
     (which read only the raw values) the variables are independent, so they
     are checked on two threads (the work is large numpy operations, which
-    release the GIL): the buddy test's set-up, each tested variable's
-    range/step and persistence tests and then its buddy test (which skips
-    what those failed) as separate tasks, then the other variables.
+    release the GIL): the buddy test's set-up (while the values are sorted),
+    each tested variable's range/step and persistence tests, the other
+    variables, then each buddy test (which skips what the other tests
+    failed) in :data:`SPATIAL_PARTS` parts of the times, as separate tasks.
     """
     cfg = config or Config()
     qcfg = cfg["qc"]
@@ -576,14 +577,42 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         order = np.argsort(first_seen, kind="stable")  # the same order as the two-key sort below
     else:
         order = np.lexsort((t_all, first_seen))
-    obs = observations.iloc[order]
     codes = first_seen[order]  # the factorisation of the sorted rows: stations are now 0, 1, 2, ...
     tns = t_all[order]
-    fired: dict[str, dict[str, np.ndarray]] = {v: {} for v in variables}
-    arr = {v: obs[v].to_numpy(float) for v in variables}
-    calm_speed = qcfg["calm_speed"]
-    slots = regular_slots(tns, codes)
     interval = interval_of_sorted(codes, tns)  # the rows are in (station, time) order: no sort needed
+    buddy = [v for v in variables if qcfg["enabled"] and qcfg["spatial"] and (v in SPATIAL_VARIABLES or _is_pm(v))]
+    threaded = qcfg["enabled"] and n >= THREADED_ROWS and (len(variables) > 1 or bool(buddy))
+    pool = None
+    if threaded:
+        from concurrent.futures import ThreadPoolExecutor
+
+        pool = ThreadPoolExecutor(max_workers=2, thread_name_prefix="stationflow-qc")
+    try:
+        return _run_tests(observations, stations, cfg, th, variables, buddy, order, codes, tns, interval, pool)
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, th: dict, variables: list[str],
+               buddy: list[str], order: np.ndarray, codes: np.ndarray, tns: np.ndarray, interval: pd.Timedelta,
+               pool) -> QCResult:
+    """The tests of :func:`run_qc` on the rows sorted by (station, time) (``order``), on ``pool`` when given."""
+    qcfg = cfg["qc"]
+    calm_speed = qcfg["calm_speed"]
+    n = len(observations)
+    fired: dict[str, dict[str, np.ndarray]] = {v: {} for v in variables}
+    shared: dict[str, _Spatial | None] = {}
+
+    def spatial_setup() -> None:
+        shared["spatial"] = _Spatial.setup(observations, stations, buddy, "wind_speed" in variables, cfg, th,
+                                           interval, order)
+
+    # the buddy test's set-up reads the rows in their own order and needs only the interval: it starts now,
+    # beside the sorting of the values and the persistence slots
+    setup = pool.submit(spatial_setup) if (pool is not None and buddy) else None
+    arr = {v: observations[v].to_numpy(float)[order] for v in variables}
+    slots = regular_slots(tns, codes)
 
     def first_tests(v: str) -> None:
         """Range, step and spike tests of ``v``."""
@@ -614,16 +643,21 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         first_tests(v)
         persistence_test(v)
 
-    shared: dict[str, _Spatial | None] = {}
-
-    def spatial_setup() -> None:
-        shared["spatial"] = _Spatial.setup(obs, stations, arr, cfg, th, interval)
-
-    def spatial_test(v: str) -> None:
-        """The buddy test of ``v``: after its other tests, whose failures it skips."""
+    def spatial_grid(v: str) -> None:
+        """The bin means the buddy test of ``v`` reads: after its other tests, whose failures it skips."""
         spatial = shared["spatial"]
         if spatial is not None and v in spatial.names:
-            spatial.run(v, fired[v])
+            spatial.grid(v, fired[v])
+
+    def spatial_part(v: str, part: int) -> None:
+        spatial = shared["spatial"]
+        if spatial is not None and v in spatial.names:
+            spatial.test(v, part, SPATIAL_PARTS)
+
+    def spatial_finish(v: str) -> None:
+        spatial = shared["spatial"]
+        if spatial is not None and v in spatial.names:
+            spatial.finish(v, fired[v], np.isfinite(arr[v]))
 
     if qcfg["enabled"]:
         # the consistency tests use only the raw values: first, so that the buddy test skips what they fail
@@ -635,25 +669,30 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
         if "wind_from_direction" in arr and "wind_speed" in arr:
             fired["wind_from_direction"]["consistency"] = ~direction_defined_when_moving(
                 arr["wind_from_direction"], arr["wind_speed"], calm_speed)
-        # the tasks, each after the earlier ones it needs: the buddy test's set-up and the variables it tests
-        # (their other tests split in two) first, as they take longest, so that the two threads finish together
-        buddy = [v for v in variables if qcfg["spatial"] and (v in SPATIAL_VARIABLES or _is_pm(v))]
-        plan: list[tuple[Callable[[], None], tuple[int, ...]]] = [(spatial_setup, ())] if buddy else []
+        # the tasks, each after the earlier ones it needs: the variables the buddy test checks first (their
+        # range/step and persistence tests apart), then the others, then the buddy tests, each in
+        # SPATIAL_PARTS parts of the times, so that the two threads finish together
+        plan: list[tuple[Callable[[], None], tuple[int, ...]]] = []
+        before: dict[str, tuple[int, ...]] = {}
         for v in buddy:
-            i = len(plan)
-            plan += [(partial(first_tests, v), ()), (partial(persistence_test, v), ()),
-                     (partial(spatial_test, v), (0, i, i + 1))]
+            before[v] = (len(plan), len(plan) + 1)
+            plan += [(partial(first_tests, v), ()), (partial(persistence_test, v), ())]
         plan += [(partial(all_tests, v), ()) for v in variables if v not in buddy]
-        if n >= THREADED_ROWS and len(plan) > 1:
-            from concurrent.futures import ThreadPoolExecutor
-
-            with ThreadPoolExecutor(max_workers=2, thread_name_prefix="stationflow-qc") as pool:
-                futures: list = []
-                for task, needs in plan:  # a task waits only on tasks submitted (hence started) before it
-                    futures.append(pool.submit(_after, [futures[j] for j in needs], task))
-                for fut in futures:
-                    fut.result()
+        for v in buddy:
+            g = len(plan)
+            plan.append((partial(spatial_grid, v), before[v]))
+            plan += [(partial(spatial_part, v, k), (g,)) for k in range(SPATIAL_PARTS)]
+            plan.append((partial(spatial_finish, v), tuple(range(g + 1, g + 1 + SPATIAL_PARTS))))
+        if pool is not None:
+            futures: list = []
+            for task, needs in plan:  # a task waits only on tasks submitted (hence started) before it
+                wait_for = [futures[j] for j in needs] + ([setup] if task.func is spatial_grid else [])
+                futures.append(pool.submit(_after, wait_for, task))
+            for fut in futures:
+                fut.result()
         else:
+            if buddy:
+                spatial_setup()
             for task, _ in plan:
                 task()
     flags: dict[str, np.ndarray] = {}
@@ -681,6 +720,8 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
 
 #: rows above which the variables are checked on two threads
 THREADED_ROWS = 200_000
+#: the buddy test of a variable runs in this many parts of the times (independent per time), one per thread
+SPATIAL_PARTS = 2
 
 
 def _after(needs: list, task: Callable[[], None]) -> None:
@@ -691,10 +732,13 @@ def _after(needs: list, task: Callable[[], None]) -> None:
 
 @dataclass
 class _Spatial:
-    """What the buddy test of every variable shares: the surface stations, the grid, light-wind times."""
+    """What the buddy test of every variable shares: the surface stations, the grid, light-wind times.
+
+    The set-up reads the rows in the order of the observations; ``order`` maps them to the (station,
+    time) order the other tests use (sorted row ``i`` is row ``order[i]``).
+    """
 
     frames: dict[str, pd.DataFrame]
-    arr: dict
     cfg: Config
     th: dict
     names: list[str]
@@ -710,10 +754,12 @@ class _Spatial:
     lat0: float
     lon0: float
     light: np.ndarray | None
+    order: np.ndarray
+    work: dict = field(default_factory=dict)
 
     @classmethod
-    def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, arr: dict, cfg: Config, th: dict,
-              interval: pd.Timedelta) -> "_Spatial | None":
+    def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, names: list[str], wind: bool, cfg: Config, th: dict,
+              interval: pd.Timedelta, order: np.ndarray) -> "_Spatial | None":
         from .align import bin_index, to_grid
         from .geometry import assign_roles, project
 
@@ -729,48 +775,63 @@ class _Spatial:
         col = station_columns(obs["station_id"], surface_ids)
         inside = (col >= 0) & (rows >= 0)
         flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
-        names = [v for v in arr if v in SPATIAL_VARIABLES or _is_pm(v)]
         # one frame per variable, made here: the threads that test the variables share no pandas object
         frames = {v: obs[["station_id", "time", v]] for v in names}
         end = obs["time"].max()
         light = None
-        if "wind_speed" in arr:
-            wind = to_grid(obs[["station_id", "time", "wind_speed"]], surface_ids, ["wind_speed"], interval=interval, start=t0, end=end)
-            light = ~(row_nanmedian(wind.values["wind_speed"]) >= qcfg["spatial_light_wind"])
-        return cls(frames, arr, cfg, th, names, surface_ids, x[surface], y[surface],
+        if wind:
+            grid = to_grid(obs[["station_id", "time", "wind_speed"]], surface_ids, ["wind_speed"], interval=interval,
+                           start=t0, end=end)
+            light = ~(row_nanmedian(grid.values["wind_speed"]) >= qcfg["spatial_light_wind"])
+        return cls(frames, cfg, th, list(names), surface_ids, x[surface], y[surface],
                    st["elevation"].to_numpy(float)[surface], interval, t0, end, inside, flat,
-                   float(st["latitude"].mean()), float(st["longitude"].mean()), light)
+                   float(st["latitude"].mean()), float(st["longitude"].mean()), light, order)
 
-    def run(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
-        """The buddy test of ``v`` on bin means of the surface stations, mapped back to the rows."""
+    def grid(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
+        """Bin means of ``v`` at the surface stations, without the values its other tests failed."""
         from .align import to_grid
 
-        qcfg = self.cfg["qc"]
-        n = len(self.arr[v])
-        already = np.zeros(n, bool)
-        for m in fired_v.values():
+        already = np.zeros(len(self.order), bool)
+        for m in fired_v.values():  # in (station, time) order
             already |= m
+        usable = np.empty_like(already)
+        usable[self.order] = ~already  # in the order of the observations
         grid = to_grid(self.frames[v], self.surface_ids, [v], interval=self.interval, start=self.start, end=self.end,
-                       usable={v: ~already})
+                       usable={v: usable})
         night = solar_elevation(grid.times, self.lat0, self.lon0) < 0
         relaxed = night & (self.light if self.light is not None else True)
         data = grid.values[v]
-        data = np.log(np.fmax(data, 0.5)) if _is_pm(v) else data
+        self.work[v] = (np.log(np.fmax(data, 0.5)) if _is_pm(v) else data, relaxed)
+
+    def test(self, v: str, part: int, parts: int) -> None:
+        """The buddy test of ``v`` at the times of ``part`` (of ``parts``): the test is independent per time."""
+        qcfg = self.cfg["qc"]
+        data, relaxed = self.work[v]
+        a, b = (data.shape[0] * part) // parts, (data.shape[0] * (part + 1)) // parts
         floor = self.th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
         sigma = self.cfg["uncertainty"]["sensor"]
         opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
-                    suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed,
+                    suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed[a:b],
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with np.errstate(all="ignore"):  # thread-safe, unlike warnings.catch_warnings (this runs on a thread)
-            passed, bad, _ = agrees_with_neighbours(data, self.sx, self.sy, self.sz, **opts)
-        finite = np.isfinite(self.arr[v])
+            passed, bad, _ = agrees_with_neighbours(data[a:b], self.sx, self.sy, self.sz, **opts)
+        self.work[(v, part)] = (passed, bad)
+
+    def finish(self, v: str, fired_v: dict[str, np.ndarray], finite: np.ndarray) -> None:
+        """Map the parts' results back to the rows (``finite``: the values present, in (station, time) order)."""
+        parts = sorted(k[1] for k in self.work if isinstance(k, tuple) and k[0] == v)
+        results = [self.work.pop((v, k)) for k in parts]
+        passed = np.concatenate([r[0] for r in results])
+        bad = np.concatenate([r[1] for r in results])
+        del self.work[v]
+        n = len(self.order)
         fail = np.zeros(n, bool)
         badm = np.zeros(n, bool)
         inside, flat = self.inside, self.flat
         fail[inside] = ~passed.reshape(-1)[flat[inside]]
         badm[inside] = bad.reshape(-1)[flat[inside]]
-        fired_v["spatial"] = fail & finite
-        fired_v["spatial_bad"] = badm & finite
+        fired_v["spatial"] = fail[self.order] & finite
+        fired_v["spatial_bad"] = badm[self.order] & finite
 
 
 def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:

@@ -273,14 +273,20 @@ def test_row_nanmedian_equals_numpy():
         assert np.array_equal(qc.row_nanmedian(a), ref, equal_nan=True)
 
 
-def test_threaded_qc_equals_serial(monkeypatch):
+@pytest.mark.parametrize("parts", [1, 2, 3])
+def test_threaded_qc_equals_serial(monkeypatch, parts):
+    # the buddy test runs in parts of the times on the threads: it is independent per time, so the parts
+    # give the flags of one whole-period test, whatever their number
     obs, st, _ = _fault_network()
     cfg = from_dict({})
     monkeypatch.setattr(qc, "THREADED_ROWS", 10**12)
+    monkeypatch.setattr(qc, "SPATIAL_PARTS", 1)
     serial = qc.run_qc(obs, st, cfg)
     monkeypatch.setattr(qc, "THREADED_ROWS", 0)
+    monkeypatch.setattr(qc, "SPATIAL_PARTS", parts)
     threaded = qc.run_qc(obs, st, cfg)
     assert any((f > 0).any() & (f < 3).any() for f in serial.flags.values())  # tests fired
+    assert ((serial.tests["air_temperature"] & qc.TEST_BITS["spatial"]) > 0).any()  # the buddy test too
     for v in serial.flags:
         assert np.array_equal(serial.flags[v], threaded.flags[v])
         assert np.array_equal(serial.tests[v], threaded.tests[v])
