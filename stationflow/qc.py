@@ -738,7 +738,7 @@ class _Spatial:
     time) order the other tests use (sorted row ``i`` is row ``order[i]``).
     """
 
-    frames: dict[str, pd.DataFrame]
+    values: dict[str, np.ndarray]
     cfg: Config
     th: dict
     names: list[str]
@@ -746,9 +746,7 @@ class _Spatial:
     sx: np.ndarray
     sy: np.ndarray
     sz: np.ndarray
-    interval: pd.Timedelta
-    start: pd.Timestamp
-    end: pd.Timestamp
+    times: pd.DatetimeIndex
     inside: np.ndarray
     flat: np.ndarray
     lat0: float
@@ -760,7 +758,7 @@ class _Spatial:
     @classmethod
     def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, names: list[str], wind: bool, cfg: Config, th: dict,
               interval: pd.Timedelta, order: np.ndarray) -> "_Spatial | None":
-        from .align import bin_index, to_grid
+        from .align import bin_index
         from .geometry import assign_roles, project
 
         qcfg = cfg["qc"]
@@ -773,34 +771,40 @@ class _Spatial:
         t0 = obs["time"].min().ceil(interval)
         rows = bin_index(obs["time"], t0, interval)
         col = station_columns(obs["station_id"], surface_ids)
-        inside = (col >= 0) & (rows >= 0)
+        n_t = max(int(np.ceil((obs["time"].max().value - t0.value) / interval.value)) + 1, 1)
+        inside = (col >= 0) & (rows >= 0) & (rows < n_t)
         flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
-        # one frame per variable, made here: the threads that test the variables share no pandas object
-        frames = {v: obs[["station_id", "time", v]] for v in names}
-        end = obs["time"].max()
-        light = None
+        # the values as arrays, taken here: the threads that test the variables share no pandas object
+        values = {v: obs[v].to_numpy(float) for v in names + (["wind_speed"] if wind else [])}
+        sp = cls(values, cfg, th, list(names), surface_ids, x[surface], y[surface], st["elevation"].to_numpy(float)[surface],
+                 pd.date_range(t0, periods=n_t, freq=interval), inside, flat,
+                 float(st["latitude"].mean()), float(st["longitude"].mean()), None, order)
         if wind:
-            grid = to_grid(obs[["station_id", "time", "wind_speed"]], surface_ids, ["wind_speed"], interval=interval,
-                           start=t0, end=end)
-            light = ~(row_nanmedian(grid.values["wind_speed"]) >= qcfg["spatial_light_wind"])
-        return cls(frames, cfg, th, list(names), surface_ids, x[surface], y[surface],
-                   st["elevation"].to_numpy(float)[surface], interval, t0, end, inside, flat,
-                   float(st["latitude"].mean()), float(st["longitude"].mean()), light, order)
+            sp.light = ~(row_nanmedian(sp.bin_means("wind_speed")) >= qcfg["spatial_light_wind"])
+        return sp
+
+    def bin_means(self, v: str, usable: np.ndarray | None = None) -> np.ndarray:
+        """(time, station) bin means of the finite (and ``usable``) values of ``v``, as :func:`align.to_grid` gives."""
+        x = self.values[v]
+        sel = self.inside & np.isfinite(x)
+        if usable is not None:
+            sel &= usable
+        shape = (len(self.times), len(self.surface_ids))
+        s = np.bincount(self.flat[sel], weights=x[sel], minlength=shape[0] * shape[1])
+        n = np.bincount(self.flat[sel], minlength=shape[0] * shape[1]).astype(float)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return (s / n).reshape(shape)
 
     def grid(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
         """Bin means of ``v`` at the surface stations, without the values its other tests failed."""
-        from .align import to_grid
-
         already = np.zeros(len(self.order), bool)
         for m in fired_v.values():  # in (station, time) order
             already |= m
         usable = np.empty_like(already)
         usable[self.order] = ~already  # in the order of the observations
-        grid = to_grid(self.frames[v], self.surface_ids, [v], interval=self.interval, start=self.start, end=self.end,
-                       usable={v: usable})
-        night = solar_elevation(grid.times, self.lat0, self.lon0) < 0
+        data = self.bin_means(v, usable)
+        night = solar_elevation(self.times, self.lat0, self.lon0) < 0
         relaxed = night & (self.light if self.light is not None else True)
-        data = grid.values[v]
         self.work[v] = (np.log(np.fmax(data, 0.5)) if _is_pm(v) else data, relaxed)
 
     def test(self, v: str, part: int, parts: int) -> None:
