@@ -652,19 +652,21 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     span = pc.min_max(t)  # the earliest and latest times tell whether any is outside 1900-2200
     if span["min"].as_py().year < 1900 or span["max"].as_py().year > 2200:
         return None
-    frame = pd.DataFrame({"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words)})
     ns = t.cast(pa.timestamp("ns") if naive else pa.timestamp("ns", tz="UTC")).to_numpy()
     ns = ns.astype("datetime64[ns]").astype(np.int64)
     if naive:
         ns = ns - int(tz.utcoffset(None).total_seconds() * 1e9)
-    frame["time"] = pd.DatetimeIndex(ns.view("datetime64[ns]")).tz_localize("UTC")
+    cols = {"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words),
+            "time": pd.DatetimeIndex(ns.view("datetime64[ns]")).tz_localize("UTC")}
     for v in var_cols:
         col = table[src[v]]
         x = col.to_numpy()
         x = np.asarray(x, float)
         if np.isnan(x).sum() != col.null_count or np.isinf(x).any():
             return None  # 'nan' / 'inf' written as numbers: the general reader explains them row by row
-        frame[v] = x
+        cols[v] = x
+    # the columns as they are (copy=False): setting them one by one copied each (0.1-0.2 s for 2.5 M rows)
+    frame = pd.DataFrame(cols, copy=False)
     frame.attrs["ignored_columns"] = ignored  # read past, not parsed
     return frame
 
@@ -821,8 +823,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     for i in np.flatnonzero(empty_sid):
         reasons.add(i, "station_id is empty")
     missing = {str(m) for m in oc["missing_values"]}
-    out = pd.DataFrame({"station_id": station.array,
-                        "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")})
+    # the columns of the result, made into a frame at the end without copying them (see _read_typed_csv)
+    out_cols: dict = {"station_id": station.array, "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")}
     calm_codes = np.zeros(n, bool)
     for name in var_cols:
         col = frame[name]
@@ -842,20 +844,20 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
                 raw = col.iloc[i]
                 reasons.add(i, f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else
                             f"{name}: {_clip(raw)!r} is not a finite number")
-        out[name] = x
-    if "wind_from_direction" in out:
-        d = out["wind_from_direction"].to_numpy()
-        if "wind_speed" in out:
-            s = out["wind_speed"].to_numpy()
+        out_cols[name] = x
+    if "wind_from_direction" in out_cols:
+        d = out_cols["wind_from_direction"]
+        if "wind_speed" in out_cols:
+            s = out_cols["wind_speed"]
             calm = calm_codes | ((d == 0) & np.isfinite(s) & (s < cfg["qc"]["calm_speed"]))
             north = (d == 0) & ~calm
-            if calm_codes.any():
-                out.loc[calm_codes & ~np.isfinite(s), "wind_speed"] = 0.0
+            if calm_codes.any():  # a new array: ``s`` may be the input's own
+                out_cols["wind_speed"] = np.where(calm_codes & ~np.isfinite(s), 0.0, s)
         else:
             calm = calm_codes | (d == 0)
             north = np.zeros(n, bool)
-        d = np.where(calm, np.nan, np.where(north, 360.0, d))
-        out["wind_from_direction"] = d
+        out_cols["wind_from_direction"] = np.where(calm, np.nan, np.where(north, 360.0, d))
+    out = pd.DataFrame(out_cols, copy=False)
     # station table
     coords_in_obs = "latitude" in frame and "longitude" in frame
     if stations is None:
