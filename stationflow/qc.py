@@ -643,20 +643,24 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
         first_tests(v)
         persistence_test(v)
 
+    def spatial_for(v: str) -> "_Spatial | None":
+        """The buddy test's shared set-up (waited for), or None where ``v`` is not tested."""
+        if setup is not None:
+            setup.result()
+        spatial = shared.get("spatial")
+        return spatial if spatial is not None and v in spatial.names else None
+
     def spatial_grid(v: str) -> None:
         """The bin means the buddy test of ``v`` reads: after its other tests, whose failures it skips."""
-        spatial = shared["spatial"]
-        if spatial is not None and v in spatial.names:
-            spatial.grid(v, fired[v])
+        if (spatial := spatial_for(v)) is not None:
+            spatial.grid(v, fired[v], SPATIAL_PARTS)
 
     def spatial_part(v: str, part: int) -> None:
-        spatial = shared["spatial"]
-        if spatial is not None and v in spatial.names:
-            spatial.test(v, part, SPATIAL_PARTS)
+        if (spatial := spatial_for(v)) is not None:
+            spatial.test(v, part)
 
     def spatial_finish(v: str) -> None:
-        spatial = shared["spatial"]
-        if spatial is not None and v in spatial.names:
+        if (spatial := spatial_for(v)) is not None:
             spatial.finish(v, fired[v], np.isfinite(arr[v]))
 
     if qcfg["enabled"]:
@@ -686,8 +690,7 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
         if pool is not None:
             futures: list = []
             for task, needs in plan:  # a task waits only on tasks submitted (hence started) before it
-                wait_for = [futures[j] for j in needs] + ([setup] if task.func is spatial_grid else [])
-                futures.append(pool.submit(_after, wait_for, task))
+                futures.append(pool.submit(_after, [futures[j] for j in needs], task))
             for fut in futures:
                 fut.result()
         else:
@@ -795,8 +798,9 @@ class _Spatial:
         with np.errstate(invalid="ignore", divide="ignore"):
             return (s / n).reshape(shape)
 
-    def grid(self, v: str, fired_v: dict[str, np.ndarray]) -> None:
-        """Bin means of ``v`` at the surface stations, without the values its other tests failed."""
+    def grid(self, v: str, fired_v: dict[str, np.ndarray], parts: int) -> None:
+        """Bin means of ``v`` at the surface stations, without the values its other tests failed, for a
+        test in ``parts`` parts of the times."""
         already = np.zeros(len(self.order), bool)
         for m in fired_v.values():  # in (station, time) order
             already |= m
@@ -805,13 +809,13 @@ class _Spatial:
         data = self.bin_means(v, usable)
         night = solar_elevation(self.times, self.lat0, self.lon0) < 0
         relaxed = night & (self.light if self.light is not None else True)
-        self.work[v] = (np.log(np.fmax(data, 0.5)) if _is_pm(v) else data, relaxed)
+        self.work[v] = (np.log(np.fmax(data, 0.5)) if _is_pm(v) else data, relaxed, [None] * parts)
 
-    def test(self, v: str, part: int, parts: int) -> None:
-        """The buddy test of ``v`` at the times of ``part`` (of ``parts``): the test is independent per time."""
+    def test(self, v: str, part: int) -> None:
+        """The buddy test of ``v`` at the times of ``part``: the test is independent per time."""
         qcfg = self.cfg["qc"]
-        data, relaxed = self.work[v]
-        a, b = (data.shape[0] * part) // parts, (data.shape[0] * (part + 1)) // parts
+        data, relaxed, results = self.work[v]
+        a, b = (data.shape[0] * part) // len(results), (data.shape[0] * (part + 1)) // len(results)
         floor = self.th["spatial_floor"].get(v, np.log(2.0) if _is_pm(v) else 0.0)
         sigma = self.cfg["uncertainty"]["sensor"]
         opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
@@ -819,15 +823,13 @@ class _Spatial:
                     relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with np.errstate(all="ignore"):  # thread-safe, unlike warnings.catch_warnings (this runs on a thread)
             passed, bad, _ = agrees_with_neighbours(data[a:b], self.sx, self.sy, self.sz, **opts)
-        self.work[(v, part)] = (passed, bad)
+        results[part] = (passed, bad)
 
     def finish(self, v: str, fired_v: dict[str, np.ndarray], finite: np.ndarray) -> None:
         """Map the parts' results back to the rows (``finite``: the values present, in (station, time) order)."""
-        parts = sorted(k[1] for k in self.work if isinstance(k, tuple) and k[0] == v)
-        results = [self.work.pop((v, k)) for k in parts]
+        results = self.work.pop(v)[2]
         passed = np.concatenate([r[0] for r in results])
         bad = np.concatenate([r[1] for r in results])
-        del self.work[v]
         n = len(self.order)
         fail = np.zeros(n, bool)
         badm = np.zeros(n, bool)
