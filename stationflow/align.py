@@ -111,6 +111,22 @@ def bin_index(times: pd.Series | np.ndarray, start: pd.Timestamp, interval: pd.T
     return np.ceil((t - start.value) / step).astype(np.int64)
 
 
+def grid_times(first: pd.Timestamp, last: pd.Timestamp, interval: pd.Timedelta) -> pd.DatetimeIndex:
+    """The bin ends from ``first`` to the first one at or after ``last`` (at least one)."""
+    n_t = max(int(np.ceil((last.value - first.value) / interval.value)) + 1, 1)
+    return pd.date_range(first, periods=n_t, freq=interval)
+
+
+def cell_means(x: np.ndarray, ok: np.ndarray, flat: np.ndarray, shape: tuple[int, int]) -> tuple[np.ndarray, np.ndarray]:
+    """Means and counts of the finite ``x`` where ``ok``, by grid cell ``flat`` (row-major in ``shape``)."""
+    sel = ok & np.isfinite(x)
+    size = shape[0] * shape[1]
+    s = np.bincount(flat[sel], weights=x[sel], minlength=size)
+    n = np.bincount(flat[sel], minlength=size).astype(float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (s / n).reshape(shape), n.reshape(shape)
+
+
 def to_grid(
     observations: pd.DataFrame,
     stations: list[str],
@@ -141,22 +157,17 @@ def to_grid(
     t = observations["time"]
     first = pd.Timestamp(t.min()).ceil(interval) if start is None else pd.Timestamp(start)
     last = pd.Timestamp(t.max()) if end is None else pd.Timestamp(end)
-    n_t = max(int(np.ceil((last.value - first.value) / interval.value)) + 1, 1)
-    times = pd.date_range(first, periods=n_t, freq=interval)
+    times = grid_times(first, last, interval)
+    n_t = len(times)
     n_s = len(stations)
     col = station_columns(observations["station_id"], stations)
     row = bin_index(t, first, interval)
     inside = (col >= 0) & (row >= 0) & (row < n_t)
     flat = row * n_s + col
-    size = n_t * n_s
     everything = np.ones(len(observations), bool)
 
     def mean_of(x: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        sel = ok & inside & np.isfinite(x)
-        s = np.bincount(flat[sel], weights=x[sel], minlength=size)
-        n = np.bincount(flat[sel], minlength=size).astype(float)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return (s / n).reshape(n_t, n_s), n.reshape(n_t, n_s)
+        return cell_means(x, ok & inside, flat, (n_t, n_s))
 
     def mask(name: str) -> np.ndarray:
         return usable.get(name, everything) if usable else everything

@@ -761,7 +761,7 @@ class _Spatial:
     @classmethod
     def setup(cls, obs: pd.DataFrame, stations: pd.DataFrame, names: list[str], wind: bool, cfg: Config, th: dict,
               interval: pd.Timedelta, order: np.ndarray) -> "_Spatial | None":
-        from .align import bin_index
+        from .align import bin_index, grid_times
         from .geometry import assign_roles, project
 
         qcfg = cfg["qc"]
@@ -774,13 +774,13 @@ class _Spatial:
         t0 = obs["time"].min().ceil(interval)
         rows = bin_index(obs["time"], t0, interval)
         col = station_columns(obs["station_id"], surface_ids)
-        n_t = max(int(np.ceil((obs["time"].max().value - t0.value) / interval.value)) + 1, 1)
-        inside = (col >= 0) & (rows >= 0) & (rows < n_t)
+        times = grid_times(t0, obs["time"].max(), interval)
+        inside = (col >= 0) & (rows >= 0) & (rows < len(times))
         flat = rows * len(surface_ids) + col  # each row's cell in the (time, station) grid
         # the values as arrays, taken here: the threads that test the variables share no pandas object
         values = {v: obs[v].to_numpy(float) for v in names + (["wind_speed"] if wind else [])}
         sp = cls(values, cfg, th, list(names), surface_ids, x[surface], y[surface], st["elevation"].to_numpy(float)[surface],
-                 pd.date_range(t0, periods=n_t, freq=interval), inside, flat,
+                 times, inside, flat,
                  float(st["latitude"].mean()), float(st["longitude"].mean()), None, order)
         if wind:
             sp.light = ~(row_nanmedian(sp.bin_means("wind_speed")) >= qcfg["spatial_light_wind"])
@@ -788,15 +788,10 @@ class _Spatial:
 
     def bin_means(self, v: str, usable: np.ndarray | None = None) -> np.ndarray:
         """(time, station) bin means of the finite (and ``usable``) values of ``v``, as :func:`align.to_grid` gives."""
-        x = self.values[v]
-        sel = self.inside & np.isfinite(x)
-        if usable is not None:
-            sel &= usable
-        shape = (len(self.times), len(self.surface_ids))
-        s = np.bincount(self.flat[sel], weights=x[sel], minlength=shape[0] * shape[1])
-        n = np.bincount(self.flat[sel], minlength=shape[0] * shape[1]).astype(float)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            return (s / n).reshape(shape)
+        from .align import cell_means
+
+        ok = self.inside if usable is None else self.inside & usable
+        return cell_means(self.values[v], ok, self.flat, (len(self.times), len(self.surface_ids)))[0]
 
     def grid(self, v: str, fired_v: dict[str, np.ndarray], parts: int) -> None:
         """Bin means of ``v`` at the surface stations, without the values its other tests failed, for a
