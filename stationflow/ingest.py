@@ -25,6 +25,7 @@ import csv
 import datetime as _dt
 import io
 import logging
+import mmap
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -81,6 +82,27 @@ def _read_bytes(path: str | Path) -> bytes:
     p = Path(path)
     try:
         return p.read_bytes()
+    except FileNotFoundError:
+        raise IngestError(f"{p}: file not found; check the path") from None
+    except IsADirectoryError:
+        raise IngestError(f"{p}: is a folder, expected a file") from None
+    except OSError as exc:
+        raise IngestError(f"{p}: cannot read the file ({exc.strerror})") from None
+
+
+def _map_bytes(path: str | Path):
+    """The file's bytes as a read-only memory map (``b""`` for an empty file), errors as :func:`_read_bytes`.
+
+    The map reads the page cache in place: no copy of a 100 MB file into fresh memory (measured 0.1-0.2 s
+    on the benchmark machine).  It supports ``find``, slicing and the buffer protocol (for pyarrow).
+    """
+    p = Path(path)
+    try:
+        with open(p, "rb") as fh:
+            try:
+                return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+            except (ValueError, OSError):  # empty, or a file that cannot be mapped (a pipe): read it
+                return fh.read()
     except FileNotFoundError:
         raise IngestError(f"{p}: file not found; check the path") from None
     except IsADirectoryError:
@@ -597,14 +619,16 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     if (stations is None or oc["layout"] != "long" or oc["time_columns"] or oc["skip_lines"] or oc["time_format"]
             or enc not in ("utf-8", "utf8") or len(oc["delimiter"]) != 1):
         return None
-    data = _read_bytes(p)
-    if data.startswith(b"\xef\xbb\xbf"):
-        data = data[3:]
-    head_end = data.find(b"\n")
-    if head_end <= 0 or b"\r" in data or b"\n\n" in data or data.find(b'"', head_end) >= 0:
+    data = _map_bytes(p)
+    start = 3 if data[:3] == b"\xef\xbb\xbf" else 0  # a byte-order mark
+    head_end = data.find(b"\n", start)
+    # blank lines need no search of their own (a two-byte search is slow where every line ends in one byte):
+    # pyarrow reads one as a row of empty fields, and its empty station id and missing time send the file
+    # to the general reader below
+    if head_end <= start or data.find(b"\r") >= 0 or data.find(b'"', head_end) >= 0:
         return None
     try:
-        header = [c.strip() for c in next(csv.reader([data[:head_end].decode("utf-8")], delimiter=oc["delimiter"]))]
+        header = [c.strip() for c in next(csv.reader([data[start:head_end].decode("utf-8")], delimiter=oc["delimiter"]))]
     except (UnicodeDecodeError, csv.Error, StopIteration):
         return None
     if len(header) < 3 or len(set(header)) != len(header) or any(c == "" for c in header):
@@ -640,7 +664,7 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
             naive = True
         except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
             return None
-    if table.num_rows != data.count(b"\n", head_end + 1) + (0 if data.endswith(b"\n") else 1):
+    if table.num_rows != _count_newlines(data, head_end + 1) + (0 if data[-1:] == b"\n" else 1):
         return None
     sid = table[src["station_id"]].combine_chunks()
     words = sid.dictionary.to_pylist() if isinstance(sid, pa.DictionaryArray) else None
@@ -652,12 +676,11 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     span = pc.min_max(t)  # the earliest and latest times tell whether any is outside 1900-2200
     if span["min"].as_py().year < 1900 or span["max"].as_py().year > 2200:
         return None
-    ns = t.cast(pa.timestamp("ns") if naive else pa.timestamp("ns", tz="UTC")).to_numpy()
-    ns = ns.astype("datetime64[ns]").astype(np.int64)
+    ns = t.to_numpy()  # datetime64[ns] in UTC (or local when naive): one copy, joining the parser's blocks
     if naive:
-        ns = ns - int(tz.utcoffset(None).total_seconds() * 1e9)
+        ns = ns - np.timedelta64(int(tz.utcoffset(None).total_seconds() * 1e9), "ns")
     cols = {"station_id": pd.Categorical.from_codes(sid.indices.to_numpy(zero_copy_only=False), categories=words),
-            "time": pd.DatetimeIndex(ns.view("datetime64[ns]")).tz_localize("UTC")}
+            "time": pd.DatetimeIndex(ns).tz_localize("UTC")}
     for v in var_cols:
         col = table[src[v]]
         x = col.to_numpy()
@@ -669,6 +692,13 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
     frame = pd.DataFrame(cols, copy=False)
     frame.attrs["ignored_columns"] = ignored  # read past, not parsed
     return frame
+
+
+def _count_newlines(data, start: int) -> int:
+    """Number of ``\\n`` bytes in ``data[start:]`` (a memory map or bytes), in blocks of 16 MiB."""
+    view = np.frombuffer(data, np.uint8)
+    block = 1 << 24
+    return sum(int(np.count_nonzero(view[a:a + block] == 10)) for a in range(start, view.size, block))
 
 
 def _variable_columns(columns: list[str], oc) -> tuple[list[str], list[str]]:

@@ -144,10 +144,20 @@ STATIONS = "station_id,latitude,longitude,elevation\nA,47.0,11.0,500\nB,47.1,11.
     ("A,2026-01-01T00:00:00Z,warm,x\nZ,2026-01-01T00:00:00Z,1.0,x\n\nB,2026-01-01T00:10:00Z,2.5,y\n", False),
     # infinite value: general reader explains it
     ("A,2026-01-01T00:00:00Z,inf,x\nB,2026-01-01T00:10:00Z,2.5,y\n", False),
+    # only a blank line (between rows, or at the end): general reader, which numbers the lines after it right
+    ("A,2026-01-01T00:00:00Z,1.5,x\n\nZ,2026-01-01T00:10:00Z,2.5,y\n", False),
+    ("A,2026-01-01T00:00:00Z,1.5,x\nZ,2026-01-01T00:10:00Z,2.5,y\n\n", False),
+    # Windows line ends, a quoted station id: general reader
+    ("A,2026-01-01T00:00:00Z,1.5,x\r\nZ,2026-01-01T00:10:00Z,2.5,y\r\n", False),
+    ('"A",2026-01-01T00:00:00Z,1.5,x\nZ,2026-01-01T00:10:00Z,2.5,y\n', False),
+    # no newline after the last row: fast path
+    ("A,2026-01-01T00:00:00Z,1.5,x\nB,2026-01-01T00:10:00Z,2.5,y", True),
 ])
 def test_fast_path_choice_and_equal_results(tmp_path, monkeypatch, body, fast):
+    """Which files the fast path takes, and that both readers then give the same frames and rejections."""
     st = _write(tmp_path / "stations.csv", STATIONS)
-    obs = _write(tmp_path / "obs.csv", "station_id,time,air_temperature,note\n" + body)
+    obs = tmp_path / "obs.csv"
+    obs.write_bytes(("station_id,time,air_temperature,note\n" + body).encode("utf-8"))  # line ends as given
     cfg = config.Config()
     taken = ingest._read_typed_csv(obs, cfg, ingest.read_stations(st, cfg)) is not None
     assert taken == fast
@@ -158,3 +168,21 @@ def test_fast_path_choice_and_equal_results(tmp_path, monkeypatch, body, fast):
     pd.testing.assert_frame_equal(a.observations, b.observations)
     pd.testing.assert_frame_equal(a.rejected, b.rejected)
     assert a.accounting == b.accounting and a.ignored_columns == b.ignored_columns == ["note"]
+
+
+def test_fast_path_byte_order_mark_and_fixed_offset(tmp_path, monkeypatch):
+    """A UTF-8 byte-order mark and naive times at a fixed offset: the fast path reads them as the general
+    reader does (times 08:00 at +08:00 are 00:00 UTC)."""
+    st = _write(tmp_path / "stations.csv", STATIONS)
+    obs = tmp_path / "obs.csv"
+    obs.write_bytes(b"\xef\xbb\xbfstation_id,time,air_temperature\n"
+                    b"A,2026-01-01 08:00:00,1.5\nB,2026-01-01 08:10:00,2.5\n")
+    cfg = config.Config()
+    cfg["observations"]["timezone"] = "+08:00"
+    assert ingest._read_typed_csv(obs, cfg, ingest.read_stations(st, cfg)) is not None
+    a = ingest.read(obs, st, cfg)
+    with monkeypatch.context() as m:
+        m.setattr(ingest, "_read_typed_csv", lambda *a, **k: None)
+        b = ingest.read(obs, st, cfg)
+    pd.testing.assert_frame_equal(a.observations, b.observations)
+    assert list(a.observations["time"]) == list(pd.to_datetime(["2026-01-01T00:00Z", "2026-01-01T00:10Z"]))
