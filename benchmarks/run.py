@@ -14,8 +14,9 @@ cooling cycle, 0.1 K noise, 5 % of values missing at random) as a long CSV and a
 
 Sizes up to :data:`REPEAT_ROWS` input rows time the run and the floor three times, in turn, and
 report the best of each (as ``timeit`` does: the least disturbed run) with the medians beside it;
-the ratio is best over best.  Larger sizes run once.  Before each timing the page cache is written
-out (``os.sync``, not timed), so that no measurement pays for the previous one's output.
+the ratio is best over best.  Larger sizes run once.  Before each timing the previous run's outputs
+are removed and the page cache is written out (``os.sync``; neither timed), so that the run, like the
+floor, writes new files and no measurement pays for the previous one's output.
 
 Nothing here is asserted; ``tests/test_scale.py`` only checks that the harness runs on ``tiny``.
 """
@@ -25,6 +26,7 @@ from __future__ import annotations
 import json
 import os
 import platform
+import shutil
 import subprocess
 import sys
 import time
@@ -183,6 +185,7 @@ def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large
             times = repeats if row["input_rows"] <= REPEAT_ROWS else 1
             runs, floors = [], []
             for _ in range(times):
+                _empty(out)
                 _settle()
                 runs.append(bench_run(st_path, csv_path, out, extra))
                 _settle()
@@ -202,6 +205,8 @@ def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large
                         "output_rows": 0, "error": str(exc)[:200]})
         if n < 5000 or parquet_large:
             try:
+                _empty(folder / name / "out_pq")
+                _settle()
                 pq_run = bench_run(st_path, pq_path, folder / name / "out_pq", extra)
                 row["run_parquet_s"], row["peak_parquet_mb"] = pq_run["run_s"], pq_run["peak_mb"]
             except RuntimeError as exc:
@@ -211,6 +216,13 @@ def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large
         rows.append(row)
         print(_line(row), flush=True)
     return rows
+
+
+def _empty(out: Path) -> None:
+    """Remove a previous run's outputs (not timed): the floor writes a new file, so the run writes into an
+    empty folder too, as a first run does.  Replacing a gigabyte of old outputs costs this machine 1-3 s
+    more in the kernel (freeing their cached pages); docs/performance.md shows it separately."""
+    shutil.rmtree(out, ignore_errors=True)
 
 
 def _settle() -> None:
