@@ -134,23 +134,25 @@ def bench_floor(csv_path: Path, out_table: Path) -> float:
 
 
 _RUNNER = r"""
-import resource, sys, time
+import atexit, resource, sys, time
 t0 = time.perf_counter()
+
+
+def report():
+    # peak memory of this process: VmHWM belongs to the process image (ru_maxrss can carry over the
+    # parent's peak across fork and exec on Linux, which would overstate small runs)
+    try:
+        peak = int(next(ln.split()[1] for ln in open("/proc/self/status") if ln.startswith("VmHWM:")))
+    except (OSError, StopIteration):
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print("__bench__", time.perf_counter() - t0, peak, file=sys.stderr, flush=True)
+
+
+# at exit, as the command ends the process itself once it is done (see stationflow.cli.main)
+atexit.register(report)
 from stationflow.cli import main
 sys.argv = ["stationflow"] + sys.argv[1:]
-try:
-    main()
-except SystemExit as e:
-    code = e.code or 0
-else:
-    code = 0
-# peak memory of this process: VmHWM belongs to the process image (ru_maxrss can carry over the
-# parent's peak across fork and exec on Linux, which would overstate small runs)
-try:
-    peak = int(next(ln.split()[1] for ln in open("/proc/self/status") if ln.startswith("VmHWM:")))
-except (OSError, StopIteration):
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-print("__bench__", time.perf_counter() - t0, peak, code, file=sys.stderr)
+main()
 """
 
 
@@ -164,7 +166,7 @@ def bench_run(st_path: Path, obs_path: Path, out: Path, extra: list[str] | None 
     line = [ln for ln in res.stderr.splitlines() if ln.startswith("__bench__")]
     if res.returncode != 0 or not line:
         raise RuntimeError(f"benchmark run failed ({res.returncode}): {res.stderr[-2000:]}")
-    _, _, rss_kb, _ = line[-1].split()
+    _, _, rss_kb = line[-1].split()
     return {"run_s": wall, "peak_mb": int(rss_kb) / 1024}
 
 

@@ -417,8 +417,33 @@ def demo(
 
 
 def main() -> None:
-    """Entry point of the ``stationflow`` command."""
-    app()
+    """Entry point of the ``stationflow`` command.
+
+    When the command has finished, the process ends without tearing the interpreter down module by
+    module (0.15-0.2 s with pandas, pyarrow and scipy loaded, measured on the benchmark machine): the
+    ``atexit`` handlers still run (log handlers, worker processes and threads, a Dask cluster), the
+    standard streams are flushed, and every output file was already closed and renamed into place.
+    """
+    try:
+        app()
+    except SystemExit as done:
+        if done.code is None or isinstance(done.code, int):
+            _leave(done.code or 0)
+        raise
+
+
+def _leave(code: int) -> None:
+    """End the process with ``code`` after the interpreter's exit handlers, skipping its teardown."""
+    import atexit
+    import os
+
+    try:
+        atexit._run_exitfuncs()  # what a normal exit runs first (the only way to run them here)
+        sys.stdout.flush()
+        sys.stderr.flush()
+    except Exception:  # noqa: BLE001 - a handler or stream failed: leave the normal way, which reports it
+        return
+    os._exit(code)
 
 
 if __name__ == "__main__":  # pragma: no cover

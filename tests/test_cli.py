@@ -243,6 +243,30 @@ def test_python_dash_m_works():
     assert out.stdout.startswith("stationflow ")
 
 
+def test_command_ends_with_its_exit_code_and_flushed_output(tmp_path):
+    """The command ends the process itself once done (no interpreter teardown): the exit code, the
+    one-line error, all printed output and the interpreter's exit handlers survive that."""
+    import subprocess
+    import sys
+
+    marker = tmp_path / "atexit.txt"
+    code = ("import atexit, os, pathlib, sys\n"
+            "atexit.register(lambda: pathlib.Path(os.environ['MARKER']).write_text('ran'))\n"
+            "print('buffered line')\n"  # print() to a pipe stays in the buffer until flushed
+            "from stationflow.cli import main; sys.argv = ['stationflow'] + sys.argv[1:]; main()")
+    env = {**os.environ, "MARKER": str(marker)}
+    bad = subprocess.run([sys.executable, "-c", code, "check", "--obs", str(tmp_path / "missing.csv"),
+                          "--out", str(tmp_path / "out")], capture_output=True, text=True, env=env)
+    assert bad.returncode == 2
+    assert bad.stderr.strip().startswith("error:") and "missing.csv" in bad.stderr
+    assert bad.stdout == "buffered line\n"  # nothing else wrote to stdout: only the flush before the exit sends it
+    assert marker.read_text() == "ran"
+    marker.unlink()
+    ok = subprocess.run([sys.executable, "-c", code, "--help"], capture_output=True, text=True, env=env)
+    assert ok.returncode == 0 and "budget" in ok.stdout and ok.stdout.startswith("buffered line")
+    assert marker.read_text() == "ran"
+
+
 def test_python_api_page_runs(tmp_path, monkeypatch):
     import re
 
