@@ -69,17 +69,20 @@ def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True, varia
     missing in exactly the same places (u and v), reused when the masks agree.
     """
     ok = np.isfinite(values)
+    # the sparse products come out cluster-major: made time-major (C order) once here, like the plane fits,
+    # so that the budget arithmetic and the file columns read every array in memory order
+    tm = np.ascontiguousarray
     if counts is not None and np.array_equal(counts[0], ok):
         n = counts[1]
     else:
-        n = (membership.T @ ok.T.astype(float)).T
+        n = tm((membership.T @ ok.T.astype(float)).T)
     v0 = np.where(ok, values, 0.0)
-    s = (membership.T @ v0.T).T
+    s = tm((membership.T @ v0.T).T)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = s / n
     var = None
     if variance:
-        s2 = (membership.T @ (v0 * v0).T).T
+        s2 = tm((membership.T @ (v0 * v0).T).T)
         with np.errstate(invalid="ignore", divide="ignore"):
             var = np.where(n > 1, (s2 - n * mean * mean) / np.maximum(n - 1, 1), np.nan)
     if fallback:

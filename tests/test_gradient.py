@@ -197,3 +197,20 @@ def test_mixed_cluster_sizes_keep_order():
     f = fit_planes(np.tile(t, (2, 1)), x, y, members)
     assert np.allclose(f.grad_x, 1e-4)
     assert f.n_used[0].tolist() == [5, 3, 8, 3]
+
+
+def test_fit_and_cluster_means_are_time_major_in_memory():
+    """The (time, cluster) arrays are C-ordered, not views of the cluster-major storage: the budget's
+    arithmetic and the file writer read them in memory order (a layout guard, values are tested above)."""
+    from stationflow.budget import cluster_mean, membership_matrix
+
+    rng = np.random.default_rng(3)
+    x, y = rng.uniform(0, 20e3, 9), rng.uniform(0, 20e3, 9)
+    vals = 280 + 1e-4 * x[None, :] + rng.normal(0, 0.1, (40, 9))
+    vals[rng.random(vals.shape) < 0.1] = np.nan
+    members = [np.array([0, 1, 2]), np.array([2, 3, 4, 5]), np.array([5, 6, 7, 8])]
+    f = fit_planes(vals, x, y, members)
+    for a in (f.value, f.grad_x, f.grad_y, f.pattern, f.rms, f.chi2, f.var_x, f.n_used):
+        assert a.shape == (40, 3) and a.flags["C_CONTIGUOUS"]
+    mean, var, n = cluster_mean(vals, membership_matrix(members, 9))
+    assert all(a.shape == (40, 3) and a.flags["C_CONTIGUOUS"] for a in (mean, var, n))
