@@ -574,7 +574,9 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     first_seen = pd.factorize(observations["station_id"])[0]  # stations in order of first appearance
     t_all = observations["time"].to_numpy("datetime64[ns]").astype(np.int64)
     if n > 1 and bool((t_all[1:] >= t_all[:-1]).all()):  # in time order (as ingest leaves it)
-        order = np.argsort(first_seen, kind="stable")  # the same order as the two-key sort below
+        # the same order as the two-key sort below; 16-bit codes sort by radix (twice as fast)
+        key = first_seen.astype(np.int16) if 0 <= first_seen.min() and first_seen.max() < 2 ** 15 else first_seen
+        order = np.argsort(key, kind="stable")
     else:
         order = np.lexsort((t_all, first_seen))
     codes = first_seen[order]  # the factorisation of the sorted rows: stations are now 0, 1, 2, ...

@@ -196,6 +196,6 @@ def wrap_degrees(a: np.ndarray) -> np.ndarray:
 
 def wind_direction(u: np.ndarray, v: np.ndarray) -> np.ndarray:
     """Direction the wind blows from [degree, (0, 360]]; north is 360, calm NaN."""
-    d = wrap_degrees(np.rad2deg(np.arctan2(-np.asarray(u, float), -np.asarray(v, float))))
-    d = np.where(d == 0.0, 360.0, d)
+    d = np.rad2deg(np.arctan2(-np.asarray(u, float), -np.asarray(v, float)))  # in [-180, 180]
+    d = np.where(d <= 0.0, d + 360.0, d)  # = (d % 360, with 0 as 360) in one pass for that range
     return np.where(np.hypot(u, v) == 0.0, np.nan, d)
