@@ -65,13 +65,14 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict[str, Future]
     out.mkdir(parents=True, exist_ok=True)
     tz = run.check.config["observations"]["timezone"]
     local = None if is_utc(tz) else tz
-    panels = plots.timeseries_panels(run.summary, tz=local)
     summary = run.summary
-    return {
-        "timeseries": painter.submit(plots.draw_timeseries, panels, out / "budget_timeseries.png", unit=run.unit, tz=local),
-        "map": painter.submit(plots.network_map, run.network, out / "budget_map.png", colour_by=summary.dominant(),
-                              arrows=summary.arrows(), title="Clusters by dominant regime; mean wind and gradient"),
-    }
+    # the map first: the worker draws it while the time-series panels are prepared here
+    figs = {"map": painter.submit(plots.network_map, run.network, out / "budget_map.png", colour_by=summary.dominant(),
+                                  arrows=summary.arrows(), title="Clusters by dominant regime; mean wind and gradient")}
+    panels = plots.timeseries_panels(summary, tz=local)
+    figs["timeseries"] = painter.submit(plots.draw_timeseries, panels, out / "budget_timeseries.png", unit=run.unit,
+                                        tz=local)
+    return figs
 
 
 def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure: bool = True,
