@@ -320,10 +320,14 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
     from .report.painter import Painter
 
+    from concurrent.futures import ThreadPoolExecutor
+
     _import_ahead()
-    with Painter() as painter:
+    with Painter() as painter, ThreadPoolExecutor(1, thread_name_prefix="stationflow-qc-figure") as side:
         chk = run_check(obs, stations, cfg, progress=report)
-        qc_fig = submit_qc_figure(painter, out, chk)
+        # the QC overview's image is binned on a thread beside the budget's set-up (both only read the
+        # checked observations), then drawn by the figure worker
+        qc_job = side.submit(submit_qc_figure, painter, out, chk)
         figs: dict = {}
         if dask:
             from .scale import budget_to_files_dask
@@ -333,6 +337,7 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
         else:
             run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report,
                                   on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
+        qc_fig = qc_job.result()
         report("writing the report")
         _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
                                 tables_written=True, qc_figure=qc_fig, figures=figs)
