@@ -64,21 +64,43 @@ def interval_of_sorted(codes: np.ndarray, t: np.ndarray) -> pd.Timedelta:
     keep = (codes[1:] == codes[:-1]) & (dt > 0) & (codes[1:] >= 0)
     if not keep.any():
         return pd.Timedelta(minutes=10)
-    # per-station medians from one sort of (station, step in microseconds) packed in one integer;
-    # steps are capped at 2**43 us (about 100 days), stations below 2**20
-    group = codes[1:][keep].astype(np.int64)
-    if group.max() < (1 << 20):
-        key = np.sort((group << 43) | np.minimum(dt[keep] // 1000, (1 << 43) - 1))
-        group, step = key >> 43, (key & ((1 << 43) - 1)).astype(np.float64) * 1000.0
-    else:  # a million stations or more: two-key sort
-        srt = np.lexsort((dt[keep], group))
-        group, step = group[srt], dt[keep][srt].astype(np.float64)
+    group = codes[1:][keep]
+    step = dt[keep]  # each station's steps are contiguous (the rows are sorted by station)
     starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
     counts = np.diff(np.r_[starts, group.size])
-    per_station = (step[starts + (counts - 1) // 2] + step[starts + counts // 2]) / 2
+    # most stations report at one step: where both middle steps of a station's sorted steps equal a common
+    # one (counted, no sort), that is its median; the others are sorted
+    common = step[step.size // 2]
+    below = np.add.reduceat((step < common).view(np.int8), starts, dtype=np.int64)
+    equal = np.add.reduceat((step == common).view(np.int8), starts, dtype=np.int64)
+    settled = (below <= (counts - 1) // 2) & (counts // 2 < below + equal)
+    per_station = np.full(starts.size, _step_us(np.array([common]))[0])
+    if not settled.all():
+        rows = np.repeat(~settled, counts)
+        per_station[~settled] = _sorted_medians(group[rows], step[rows])
     ns = float(np.median(per_station))
     # round to whole seconds
     return pd.Timedelta(seconds=max(1.0, round(ns / 1e9)))
+
+
+def _step_us(step_ns: np.ndarray) -> np.ndarray:
+    """Steps [ns] truncated to whole microseconds and capped at 2**43 us (about 100 days), as float ns."""
+    return np.minimum(step_ns // 1000, (1 << 43) - 1).astype(np.float64) * 1000.0
+
+
+def _sorted_medians(group: np.ndarray, step: np.ndarray) -> np.ndarray:
+    """Median step of each station (``group`` sorted, ``step`` in ns), by one sort of (station, step in us)
+    packed in one integer (stations below 2**20), else a two-key sort."""
+    group = group.astype(np.int64)
+    if group.max() < (1 << 20):
+        key = np.sort((group << 43) | np.minimum(step // 1000, (1 << 43) - 1))
+        group, us = key >> 43, (key & ((1 << 43) - 1)).astype(np.float64) * 1000.0
+    else:  # a million stations or more
+        srt = np.lexsort((step, group))
+        group, us = group[srt], _step_us(step[srt])
+    starts = np.flatnonzero(np.r_[True, group[1:] != group[:-1]])
+    counts = np.diff(np.r_[starts, group.size])
+    return (us[starts + (counts - 1) // 2] + us[starts + counts // 2]) / 2
 
 
 @dataclass

@@ -60,6 +60,23 @@ def _interval_by_groupby(obs: pd.DataFrame) -> pd.Timedelta:
     return pd.Timedelta(seconds=max(1.0, round(float(np.median(per_station)))))
 
 
+@pytest.mark.parametrize("seed", range(12))
+def test_inferred_interval_of_mostly_regular_networks(seed):
+    """Regular series with gaps, stations at other steps and repeated times: the counted medians (most
+    stations) and the sorted ones (the rest) give the group-by definition."""
+    rng = np.random.default_rng(100 + seed)
+    frames = []
+    for k in range(int(rng.integers(3, 12))):
+        step = int(rng.choice([300, 300, 300, 600, 60, 3600]))
+        n = int(rng.integers(2, 60))
+        off = np.cumsum(rng.choice([step, step, step, 2 * step, 7 * step, 0], n) if rng.random() < 0.5
+                        else np.full(n, step))
+        frames.append(pd.DataFrame({"station_id": f"S{k:02d}",
+                                    "time": pd.Timestamp("2026-03-01", tz="UTC") + pd.to_timedelta(off, unit="s")}))
+    obs = pd.concat(frames, ignore_index=True).sort_values("time", kind="stable").reset_index(drop=True)
+    assert align.infer_interval(obs) == _interval_by_groupby(obs)
+
+
 @pytest.mark.parametrize("seed", range(40))
 def test_inferred_interval_equals_the_group_by_definition(seed):
     rng = np.random.default_rng(seed)
