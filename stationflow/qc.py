@@ -866,17 +866,23 @@ def flag_table(observations: pd.DataFrame, result: QCResult) -> pd.DataFrame:
 def summary(observations: pd.DataFrame, result: QCResult) -> dict[str, pd.DataFrame]:
     """Counts of fired tests per variable and test, and flags per station."""
     rows = []
+    combos = np.arange(1 << 16)
     for v, bits in result.tests.items():
+        # values per combination of fired tests (one pass), then per test the combinations that include it
+        fired = bits[bits != 0]  # most values pass every test
+        per_combo = np.bincount(fired.view(np.uint16), minlength=1 << 16)
         for name, b in TEST_BITS.items():
-            c = int(np.count_nonzero(bits & b))
+            c = int(per_combo[(combos & b) != 0].sum())
             if c:
                 rows.append({"variable": v, "test": name, "values": c})
     per_test = pd.DataFrame(rows, columns=["variable", "test", "values"])
     if result.flags:
         codes, ids = pd.factorize(observations["station_id"], sort=True)
         n_s = len(ids)
-        sus = sum(np.bincount(codes, weights=(f == SUSPECT), minlength=n_s) for f in result.flags.values())
-        bad = sum(np.bincount(codes, weights=(f == BAD), minlength=n_s) for f in result.flags.values())
+        # values per (station, flag) of each variable, in one count of the values that are not good
+        n = sum(np.bincount(codes[f != GOOD] * 4 + f[f != GOOD], minlength=4 * n_s)
+                for f in result.flags.values()).reshape(n_s, 4)
+        sus, bad = n[:, SUSPECT], n[:, BAD]
         per_station = pd.DataFrame({"station_id": np.asarray(ids, dtype=object), "suspect": np.asarray(sus, int),
                                     "bad": np.asarray(bad, int)})
     else:

@@ -304,3 +304,20 @@ def test_buddy_test_leaves_out_dew_points_already_failed_for_consistency():
     bits = res.tests["dew_point_temperature"][bad_rows]
     assert ((bits & qc.TEST_BITS["consistency"]) > 0).all()
     assert not ((bits & qc.TEST_BITS["spatial"]) > 0).any()
+
+
+def test_summary_counts_equal_a_plain_count():
+    """Per-test and per-station counts from the packed counting equal a row-by-row tally."""
+    obs, st, _ = _fault_network()
+    res = qc.run_qc(obs, st, from_dict({}))
+    s = qc.summary(obs, res)
+    expected = {(v, name): int(((bits & b) != 0).sum())
+                for v, bits in res.tests.items() for name, b in qc.TEST_BITS.items()}
+    got = {(r.variable, r.test): r.values for r in s["per_test"].itertuples()}
+    assert got == {k: c for k, c in expected.items() if c} and len(got) >= 3
+    sid = obs["station_id"].astype(str).to_numpy()
+    for row in s["per_station"].itertuples():
+        at = sid == row.station_id
+        assert row.suspect == sum(int((f[at] == qc.SUSPECT).sum()) for f in res.flags.values())
+        assert row.bad == sum(int((f[at] == qc.BAD).sum()) for f in res.flags.values())
+    assert s["per_station"]["bad"].sum() > 0 and s["per_station"]["suspect"].sum() > 0
