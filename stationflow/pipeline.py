@@ -277,7 +277,8 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
                                   obs["air_temperature"].to_numpy(float), np.nan)
     else:
         masts = None
-    frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
+    if not frame["time"].is_monotonic_increasing:  # ingest leaves the rows in time order: usually no sort
+        frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
     t = frame["time"]
     first = pd.Timestamp(t.min()).ceil(interval)
     n_t = int(np.ceil((pd.Timestamp(t.max()).value - first.value) / interval.value)) + 1
