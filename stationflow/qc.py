@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
+from concurrent.futures import Future
 from functools import partial
 from typing import Callable
 
@@ -614,7 +615,11 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
     # beside the sorting of the values and the persistence slots
     setup = pool.submit(spatial_setup) if (pool is not None and buddy) else None
     arr = {v: observations[v].to_numpy(float)[order] for v in variables}
-    slots = regular_slots(tns, codes)
+    # on threads, the persistence slots are found here after the tests are queued (the range and step
+    # tests, which do not need them, start meanwhile); the persistence tests wait for them
+    slots_ready: Future = Future()
+    if pool is None:
+        slots_ready.set_result(regular_slots(tns, codes))
 
     def first_tests(v: str) -> None:
         """Range, step and spike tests of ``v``."""
@@ -639,7 +644,7 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
                 exempt = ~(arr["wind_speed"] >= calm_speed)
             elif v == "relative_humidity":
                 exempt = x >= 99.0
-            fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt, slots=slots)
+            fired[v]["persistence"] = ~not_persistent(x, tns, codes, mr, win, exempt=exempt, slots=slots_ready.result())
 
     def all_tests(v: str) -> None:
         first_tests(v)
@@ -693,6 +698,10 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
             futures: list = []
             for task, needs in plan:  # a task waits only on tasks submitted (hence started) before it
                 futures.append(pool.submit(_after, [futures[j] for j in needs], task))
+            try:
+                slots_ready.set_result(regular_slots(tns, codes))
+            except BaseException as exc:  # the waiting persistence tests raise it
+                slots_ready.set_exception(exc)
             for fut in futures:
                 fut.result()
         else:
