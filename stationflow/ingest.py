@@ -875,7 +875,21 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
                 reasons.add(i, f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else
                             f"{name}: {_clip(raw)!r} is not a finite number")
         out_cols[name] = x
-    if "wind_from_direction" in out_cols:
+    if "wind_from_direction" in out_cols and not calm_codes.any():
+        # a direction of exactly 0 is calm (with a speed below calm_speed, or no speed column) or north
+        # (360); only those few rows change, so the others are not rewritten
+        d = out_cols["wind_from_direction"]
+        zero = np.flatnonzero(d == 0)
+        if zero.size:
+            if "wind_speed" in out_cols:
+                s = out_cols["wind_speed"][zero]
+                calm = np.isfinite(s) & (s < cfg["qc"]["calm_speed"])
+            else:
+                calm = np.ones(zero.size, bool)
+            d = d.copy()
+            d[zero] = np.where(calm, np.nan, 360.0)
+        out_cols["wind_from_direction"] = d
+    elif "wind_from_direction" in out_cols:  # calm codes were read (compass text): row-wise masks
         d = out_cols["wind_from_direction"]
         if "wind_speed" in out_cols:
             s = out_cols["wind_speed"]

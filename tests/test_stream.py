@@ -186,3 +186,25 @@ def test_fast_path_byte_order_mark_and_fixed_offset(tmp_path, monkeypatch):
         b = ingest.read(obs, st, cfg)
     pd.testing.assert_frame_equal(a.observations, b.observations)
     assert list(a.observations["time"]) == list(pd.to_datetime(["2026-01-01T00:00Z", "2026-01-01T00:10Z"]))
+
+
+@pytest.mark.parametrize("fast", [True, False])
+def test_direction_zero_is_calm_or_north(tmp_path, monkeypatch, fast):
+    """A direction of exactly 0: calm (no direction) under qc.calm_speed, north (360) otherwise or when
+    the speed is missing; without a speed column every 0 is calm. Same on both readers."""
+    st = _write(tmp_path / "stations.csv", STATIONS)
+    with_speed = _write(tmp_path / "a.csv", "station_id,time,wind_speed,wind_from_direction\n"
+                        "A,2026-01-01T00:00:00Z,0.1,0\nB,2026-01-01T00:00:00Z,4.0,0\n"
+                        "C,2026-01-01T00:00:00Z,,0\nA,2026-01-01T00:10:00Z,3.0,90\n")
+    no_speed = _write(tmp_path / "b.csv", "station_id,time,wind_from_direction\n"
+                      "A,2026-01-01T00:00:00Z,0\nB,2026-01-01T00:00:00Z,180\n")
+    cfg = config.Config()
+    if not fast:
+        monkeypatch.setattr(ingest, "_read_typed_csv", lambda *a, **k: None)
+    else:
+        assert ingest._read_typed_csv(with_speed, cfg, ingest.read_stations(st, cfg)) is not None
+    a = ingest.read(with_speed, st, cfg).observations["wind_from_direction"].to_numpy()
+    b = ingest.read(no_speed, st, cfg).observations["wind_from_direction"].to_numpy()
+    # rows come back in (time, station) order: A, B, C at 00:00, then A at 00:10
+    assert np.isnan(a[0]) and a[1] == 360.0 and a[2] == 360.0 and a[3] == 90.0
+    assert np.isnan(b[0]) and b[1] == 180.0
