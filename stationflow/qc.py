@@ -670,6 +670,34 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
         if (spatial := spatial_for(v)) is not None:
             spatial.finish(v, fired[v], np.isfinite(arr[v]))
 
+    # the flags and fired tests of each variable, in the variables' order whichever is combined first
+    flags: dict[str, np.ndarray | None] = dict.fromkeys(variables)
+    tests: dict[str, np.ndarray | None] = dict.fromkeys(variables)
+    inverse: list[np.ndarray] = []
+
+    def combine(v: str) -> None:
+        """Flags and test bits of ``v`` from its fired tests, back in the rows' own order."""
+        if not inverse:
+            inv = np.empty(n, np.int64)
+            inv[order] = np.arange(n)
+            inverse.append(inv)
+        inv = inverse[0]
+        present = ~np.isnan(arr[v])
+        f = np.full(n, MISSING, np.int8)
+        f[present] = GOOD
+        bits = np.zeros(n, np.int16)
+        spatial_bad = fired[v].pop("spatial_bad", None)
+        for name in TEST_BITS:  # a fixed order: the result does not depend on which thread finished first
+            if name not in fired[v]:
+                continue
+            mask = fired[v][name] & present  # in place below: no temporary arrays per test
+            np.bitwise_or(bits, TEST_BITS[name], out=bits, where=mask)
+            np.maximum(f, SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name]), out=f, where=mask)
+        if spatial_bad is not None:
+            np.maximum(f, BAD, out=f, where=spatial_bad & present)  # BAD is the highest flag of a present value
+        flags[v] = f[inv]
+        tests[v] = bits[inv]
+
     if qcfg["enabled"]:
         # the consistency tests use only the raw values: first, so that the buddy test skips what they fail
         if "dew_point_temperature" in arr and "air_temperature" in arr:
@@ -688,11 +716,16 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
         for v in buddy:
             before[v] = (len(plan), len(plan) + 1)
             plan += [(partial(first_tests, v), ()), (partial(persistence_test, v), ())]
-        plan += [(partial(all_tests, v), ()) for v in variables if v not in buddy]
+        last: dict[str, int] = {}  # each variable's last task: when it is done, so are all of them
+        for v in variables:
+            if v not in buddy:
+                last[v] = len(plan)
+                plan.append((partial(all_tests, v), ()))
         for v in buddy:
             g = len(plan)
             plan.append((partial(spatial_grid, v), before[v]))
             plan += [(partial(spatial_part, v, k), (g,)) for k in range(SPATIAL_PARTS)]
+            last[v] = len(plan)
             plan.append((partial(spatial_finish, v), tuple(range(g + 1, g + 1 + SPATIAL_PARTS))))
         if pool is not None:
             futures: list = []
@@ -702,6 +735,10 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
                 slots_ready.set_result(regular_slots(tns, codes))
             except BaseException as exc:  # the waiting persistence tests raise it
                 slots_ready.set_exception(exc)
+            # each variable's flags are combined here as soon as its tests are done, beside the others' tests
+            for v in sorted(variables, key=last.__getitem__):
+                futures[last[v]].result()
+                combine(v)
             for fut in futures:
                 fut.result()
         else:
@@ -709,26 +746,9 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
                 spatial_setup()
             for task, _ in plan:
                 task()
-    flags: dict[str, np.ndarray] = {}
-    tests: dict[str, np.ndarray] = {}
-    inv = np.empty(n, np.int64)
-    inv[order] = np.arange(n)
     for v in variables:
-        present = ~np.isnan(arr[v])
-        f = np.full(n, MISSING, np.int8)
-        f[present] = GOOD
-        bits = np.zeros(n, np.int16)
-        spatial_bad = fired[v].pop("spatial_bad", None)
-        for name in TEST_BITS:  # a fixed order: the result does not depend on which thread finished first
-            if name not in fired[v]:
-                continue
-            mask = fired[v][name] & present  # in place below: no temporary arrays per test
-            np.bitwise_or(bits, TEST_BITS[name], out=bits, where=mask)
-            np.maximum(f, SEVERITY_BY_VARIABLE.get((v, name), SEVERITY[name]), out=f, where=mask)
-        if spatial_bad is not None:
-            np.maximum(f, BAD, out=f, where=spatial_bad & present)  # BAD is the highest flag of a present value
-        flags[v] = f[inv]
-        tests[v] = bits[inv]
+        if flags[v] is None:
+            combine(v)
     return QCResult(flags, tests, interval)
 
 
