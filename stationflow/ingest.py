@@ -21,6 +21,7 @@ with one line that names the file, what is wrong and how to fix it.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import datetime as _dt
 import io
@@ -78,16 +79,23 @@ class IngestResult:
 # delimited text
 # --------------------------------------------------------------------------
 
-def _read_bytes(path: str | Path) -> bytes:
-    p = Path(path)
+@contextlib.contextmanager
+def _file_errors(p: Path):
+    """Turn the operating system's errors on opening or reading ``p`` into one-line :class:`IngestError` s."""
     try:
-        return p.read_bytes()
+        yield
     except FileNotFoundError:
         raise IngestError(f"{p}: file not found; check the path") from None
     except IsADirectoryError:
         raise IngestError(f"{p}: is a folder, expected a file") from None
     except OSError as exc:
         raise IngestError(f"{p}: cannot read the file ({exc.strerror})") from None
+
+
+def _read_bytes(path: str | Path) -> bytes:
+    p = Path(path)
+    with _file_errors(p):
+        return p.read_bytes()
 
 
 def _map_bytes(path: str | Path):
@@ -97,18 +105,11 @@ def _map_bytes(path: str | Path):
     on the benchmark machine).  It supports ``find``, slicing and the buffer protocol (for pyarrow).
     """
     p = Path(path)
-    try:
-        with open(p, "rb") as fh:
-            try:
-                return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
-            except (ValueError, OSError):  # empty, or a file that cannot be mapped (a pipe): read it
-                return fh.read()
-    except FileNotFoundError:
-        raise IngestError(f"{p}: file not found; check the path") from None
-    except IsADirectoryError:
-        raise IngestError(f"{p}: is a folder, expected a file") from None
-    except OSError as exc:
-        raise IngestError(f"{p}: cannot read the file ({exc.strerror})") from None
+    with _file_errors(p), open(p, "rb") as fh:
+        try:
+            return mmap.mmap(fh.fileno(), 0, access=mmap.ACCESS_READ)
+        except (ValueError, OSError):  # empty, or a file that cannot be mapped (a pipe): read it
+            return fh.read()
 
 
 def read_text_table(
