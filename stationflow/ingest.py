@@ -876,32 +876,24 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
                 reasons.add(i, f"{name}: cannot read {_clip(raw)!r} as a number" if not _looks_infinite(raw) else
                             f"{name}: {_clip(raw)!r} is not a finite number")
         out_cols[name] = x
-    if "wind_from_direction" in out_cols and not calm_codes.any():
-        # a direction of exactly 0 is calm (with a speed below calm_speed, or no speed column) or north
-        # (360); only those few rows change, so the others are not rewritten
+    if "wind_from_direction" in out_cols:
+        # a direction of exactly 0 is calm (with a speed below calm_speed, or with no speed column) or north
+        # (360), and a calm code (compass text) is calm whatever its number: only those rows change
         d = out_cols["wind_from_direction"]
         zero = np.flatnonzero(d == 0)
-        if zero.size:
-            if "wind_speed" in out_cols:
-                s = out_cols["wind_speed"][zero]
-                calm = np.isfinite(s) & (s < cfg["qc"]["calm_speed"])
-            else:
-                calm = np.ones(zero.size, bool)
-            d = d.copy()
-            d[zero] = np.where(calm, np.nan, 360.0)
-        out_cols["wind_from_direction"] = d
-    elif "wind_from_direction" in out_cols:  # calm codes were read (compass text): row-wise masks
-        d = out_cols["wind_from_direction"]
+        coded = bool(calm_codes.any())
         if "wind_speed" in out_cols:
             s = out_cols["wind_speed"]
-            calm = calm_codes | ((d == 0) & np.isfinite(s) & (s < cfg["qc"]["calm_speed"]))
-            north = (d == 0) & ~calm
-            if calm_codes.any():  # a new array: ``s`` may be the input's own
+            calm = np.isfinite(s[zero]) & (s[zero] < cfg["qc"]["calm_speed"])
+            if coded:  # a calm code without a speed is a speed of 0 (a new array: ``s`` may be the input's own)
                 out_cols["wind_speed"] = np.where(calm_codes & ~np.isfinite(s), 0.0, s)
         else:
-            calm = calm_codes | (d == 0)
-            north = np.zeros(n, bool)
-        out_cols["wind_from_direction"] = np.where(calm, np.nan, np.where(north, 360.0, d))
+            calm = np.ones(zero.size, bool)
+        if zero.size or coded:
+            d = d.copy()
+            d[zero] = np.where(calm, np.nan, 360.0)
+            d[calm_codes] = np.nan
+        out_cols["wind_from_direction"] = d
     out = pd.DataFrame(out_cols, copy=False)
     # station table
     coords_in_obs = "latitude" in frame and "longitude" in frame
