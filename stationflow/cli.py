@@ -316,11 +316,11 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     the QC overview as soon as QC is done, the budget figures as soon as the
     last partition is (while the files are closed).
     """
+    from concurrent.futures import ThreadPoolExecutor
+
     from .pipeline import budget_to_files, run_check
     from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
     from .report.painter import Painter
-
-    from concurrent.futures import ThreadPoolExecutor
 
     _import_ahead()
     with Painter() as painter, ThreadPoolExecutor(1, thread_name_prefix="stationflow-qc-figure") as side:

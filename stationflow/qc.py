@@ -20,8 +20,8 @@ light wind the spatial test is relaxed and can only make a value suspect.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass, field
 from concurrent.futures import Future
+from dataclasses import dataclass, field
 from functools import partial
 from typing import Callable
 
@@ -673,15 +673,11 @@ def _run_tests(observations: pd.DataFrame, stations: pd.DataFrame, cfg: Config, 
     # the flags and fired tests of each variable, in the variables' order whichever is combined first
     flags: dict[str, np.ndarray | None] = dict.fromkeys(variables)
     tests: dict[str, np.ndarray | None] = dict.fromkeys(variables)
-    inverse: list[np.ndarray] = []
+    inv = np.empty(n, np.int64)  # sorted row -> the row's own position
+    inv[order] = np.arange(n)
 
     def combine(v: str) -> None:
         """Flags and test bits of ``v`` from its fired tests, back in the rows' own order."""
-        if not inverse:
-            inv = np.empty(n, np.int64)
-            inv[order] = np.arange(n)
-            inverse.append(inv)
-        inv = inverse[0]
         present = ~np.isnan(arr[v])
         f = np.full(n, MISSING, np.int8)
         f[present] = GOOD
