@@ -222,8 +222,8 @@ def run_suite(names: list[str], folder: Path, *, repeats: int = 3, parquet_large
 
 def _empty(out: Path) -> None:
     """Remove a previous run's outputs (not timed): the floor writes a new file, so the run writes into an
-    empty folder too, as a first run does.  Replacing a gigabyte of old outputs costs this machine 1-3 s
-    more in the kernel (freeing their cached pages); docs/performance.md shows it separately."""
+    empty folder too, as a first run does.  Replacing a gigabyte of old outputs costs this machine 2-3 s
+    more (freeing their cached pages, then touching reclaimed memory); docs/performance.md describes it."""
     shutil.rmtree(out, ignore_errors=True)
 
 
