@@ -86,6 +86,41 @@ def test_summary_arrows_and_medians_match_the_table(memory_run):
     assert s.median_se("advection_se") == pytest.approx(float(np.nanmedian(det["advection_se"])), rel=1e-6)
 
 
+def test_running_regime_tally_matches_the_table(memory_run):
+    # the per-cluster regime counts kept partition by partition equal a count over the whole table
+    t, s = memory_run.table, memory_run.summary
+    assert s.steps_added == len(s.times)
+    want = pd.crosstab(t["cluster"].astype(str), t["regime"].astype(str)).reindex(columns=list(REGIMES), fill_value=0)
+    got = s.cluster_counts()
+    assert got.loc[want.index].to_numpy().tolist() == want.to_numpy().tolist()
+    # and equal the count from the stored regime codes (the path without a tally)
+    s.tally, kept = None, s.tally
+    try:
+        assert s.cluster_counts().equals(got) and s.busiest(4) == [int(i) for i in np.argsort(
+            -(got["undetermined"].rsub(len(s.times))).to_numpy(), kind="stable")[:4]]
+    finally:
+        s.tally = kept
+
+
+@pytest.mark.parametrize("n", [1, 2, 7, 10, 1001])
+def test_median_se_equals_numpy_median_over_determined_finite_values(n):
+    from stationflow.summary import UNDETERMINED, BudgetSummary
+
+    rng = np.random.default_rng(n)
+    clusters = pd.DataFrame({"cluster": ["a", "b"], "stations": ["x+y+z", "y+z+w"], "latitude": [0.0, 0.1],
+                             "longitude": [0.0, 0.1]})
+    s = BudgetSummary.allocate(pd.date_range("2026-01-01", periods=n, freq="5min", tz="UTC"), clusters)
+    s.regime[:] = rng.integers(0, len(REGIMES), s.regime.shape)
+    s.regime[0, 0] = 0 if UNDETERMINED else 1  # at least one determined step
+    se = rng.lognormal(size=s.regime.shape).astype(np.float32)
+    se[rng.random(se.shape) < 0.2] = np.nan
+    se[0, 0] = 1.0
+    s.terms["advection_se"][:] = se
+    vals = se[(s.regime != UNDETERMINED) & np.isfinite(se)].astype(float)
+    assert s.median_se("advection_se") == pytest.approx(float(np.median(vals)), rel=1e-12)
+    assert s.terms["advection_se"][0, 0] == 1.0  # the kept terms are not reordered
+
+
 def test_failure_part_way_leaves_no_files(tmp_path):
     cfg = _cfg(FROST, chunk="1h")
     chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
