@@ -1,12 +1,15 @@
 """Figures drawn in the second process: same files as drawn here, errors reach the caller."""
 
+import os
+import sys
+
 import numpy as np
 import pandas as pd
 import pytest
 
 from stationflow import synthetic
 from stationflow.report import plots
-from stationflow.report.painter import Painter
+from stationflow.report.painter import Painter, _together
 
 
 def _image():
@@ -101,3 +104,66 @@ def test_a_worker_killed_mid_figure_means_it_is_drawn_here(tmp_path):
             proc.kill()
         assert fut.result(timeout=120) == tmp_path / "slow.png"
     assert (tmp_path / "slow.png").stat().st_size > 0
+
+
+def _killed_once(flag):
+    """Die (as if killed for memory) the first time, while ``flag`` exists; then answer where it runs."""
+    import os
+    import signal
+
+    if flag.exists():
+        flag.unlink()
+        os.kill(os.getpid(), signal.SIGKILL)
+    return os.getpid()
+
+
+def test_figures_drawn_together_match_inline_and_keep_their_own_errors(tmp_path):
+    obs, flags = _image()
+    image = plots.qc_overview_image(obs, flags)
+    inline = plots.draw_qc_overview(image, tmp_path / "inline.png")
+    with Painter(background=True) as painter:
+        a, b, c = painter.submit_together([(plots.draw_qc_overview, (image, tmp_path / "a.png"), {}),
+                                           (_fails, (tmp_path / "x.png",), {}),
+                                           (plots.draw_qc_overview, (image, tmp_path / "c.png"), {})])
+        assert a.result(timeout=120) == tmp_path / "a.png" and c.result(timeout=120) == tmp_path / "c.png"
+        with pytest.raises(ValueError, match="cannot draw"):
+            b.result(timeout=120)
+        assert a.exception() is None and isinstance(b.exception(), ValueError) and a.done() and b.done()
+    assert (tmp_path / "a.png").read_bytes() == (tmp_path / "c.png").read_bytes() == inline.read_bytes()
+    assert not list(tmp_path.glob(".*.part"))
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux") or (os.cpu_count() or 1) < 2, reason="forks on Linux only")
+def test_figures_drawn_together_run_in_separate_processes(tmp_path):
+    with Painter(background=True) as painter:
+        first, last = painter.submit_together([(os.getpid, (), {}), (os.getpid, (), {})])
+        pids = {first.result(timeout=120), last.result(timeout=120)}
+    assert len(pids) == 2 and os.getpid() not in pids
+
+
+@pytest.mark.skipif(not hasattr(os, "fork"), reason="needs fork")
+def test_a_figure_whose_child_dies_is_drawn_by_the_worker(tmp_path):
+    flag = tmp_path / "die"
+    flag.touch()
+    with Painter(background=True) as painter:  # in the worker: a child killed here would be the test run
+        child, worker = painter.submit(_together, [(_killed_once, (flag,), {}), (os.getpid, (), {})], os.getpid()).result(120)
+    assert child[0] and worker[0] and child == worker  # drawn again by the worker, after its child died
+    assert not flag.exists() and worker[1] != os.getpid()
+
+
+def test_together_does_not_fork_a_process_with_threads():
+    import threading
+
+    stop = threading.Event()
+    other = threading.Thread(target=stop.wait)
+    other.start()
+    try:
+        outcomes = _together([(os.getpid, (), {}), (os.getpid, (), {})], home=-1)  # "another process"
+    finally:
+        stop.set()
+        other.join()
+    assert outcomes == [(True, os.getpid())] * 2
+
+
+def test_together_never_forks_the_submitting_process():
+    assert _together([(os.getpid, (), {}), (os.getpid, (), {})], home=os.getpid()) == [(True, os.getpid())] * 2
