@@ -58,7 +58,7 @@ def submit_qc_figure(painter: Painter, out: Path, chk) -> Future:
     return painter.submit(plots.draw_qc_overview, image, out / "qc_overview.png")
 
 
-def submit_budget_figures(painter: Painter, out: Path, run) -> dict[str, Future]:
+def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     """Start drawing budget_timeseries.png and budget_map.png from the run's summary."""
     from . import plots
 
@@ -66,13 +66,14 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict[str, Future]
     tz = run.check.config["observations"]["timezone"]
     local = None if is_utc(tz) else tz
     summary = run.summary
-    # the map first: the worker draws it while the time-series panels are prepared here
-    figs = {"map": painter.submit(plots.network_map, run.network, out / "budget_map.png", colour_by=summary.dominant(),
-                                  arrows=summary.arrows(), title="Clusters by dominant regime; mean wind and gradient")}
     panels = plots.timeseries_panels(summary, tz=local)
-    figs["timeseries"] = painter.submit(plots.draw_timeseries, panels, out / "budget_timeseries.png", unit=run.unit,
-                                        tz=local)
-    return figs
+    # one job: the worker draws the two side by side (see Painter.submit_together)
+    ts, mp = painter.submit_together([
+        (plots.draw_timeseries, (panels, out / "budget_timeseries.png"), {"unit": run.unit, "tz": local}),
+        (plots.network_map, (run.network, out / "budget_map.png"),
+         {"colour_by": summary.dominant(), "arrows": summary.arrows(),
+          "title": "Clusters by dominant regime; mean wind and gradient"})])
+    return {"timeseries": ts, "map": mp}
 
 
 def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure: bool = True,
@@ -89,11 +90,11 @@ def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure:
     written.append(files.write_csv(chk.periods, out / "qc_periods.csv", time_columns=("start", "end")))
     if figure:
         written.append(qc_figure.result())
-    qc_counts = {f"{r.variable}:{r.test}": int(r.values) for r in chk.per_test.itertuples()}
-    extra = {"qc": {"tests_fired": qc_counts, "flags": _flag_counts(chk)},
-             "stations": int(len(chk.data.stations)), "variables": chk.data.variables,
-             "units": chk.data.units, "ignored_columns": chk.data.ignored_columns}
-    if command == "check":
+    if command == "check":  # (budget writes its own run.json)
+        qc_counts = {f"{r.variable}:{r.test}": int(r.values) for r in chk.per_test.itertuples()}
+        extra = {"qc": {"tests_fired": qc_counts, "flags": _flag_counts(chk)},
+                 "stations": int(len(chk.data.stations)), "variables": chk.data.variables,
+                 "units": chk.data.units, "ignored_columns": chk.data.ignored_columns}
         rec = run_record(command, inputs, chk.config, chk.data.accounting, extra)
         rec["outputs"] = [p.name for p in written] + ["run.json"]
         written.append(files.write_json(rec, out / "run.json"))
@@ -103,8 +104,7 @@ def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure:
 def _flag_counts(chk) -> dict:
     out = {}
     for v, f in chk.qc.flags.items():
-        out[v] = {"good": int(np.sum(f == 0)), "suspect": int(np.sum(f == 1)), "bad": int(np.sum(f == 2)),
-                  "missing": int(np.sum(f == 3))}
+        out[v] = {name: int(np.count_nonzero(f == code)) for code, name in enumerate(("good", "suspect", "bad", "missing"))}
     return out
 
 
@@ -155,7 +155,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     tz = run.check.config["observations"]["timezone"]
     lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     # everything the report says is prepared while the figures are still being drawn
-    pieces = _report_pieces(run, lines, inputs) if report else None
+    flags = _flag_counts(run.check)
+    pieces = _report_pieces(run, lines, inputs, flags) if report else None
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
@@ -164,7 +165,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
         "main_periods": lines,
-        "qc": {"flags": _flag_counts(run.check)},
+        "qc": {"flags": flags},
     })
     if report:
         ts, mp = figures["timeseries"].result(), figures["map"].result()
@@ -177,8 +178,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     return written, notes
 
 
-def _report_pieces(run, lines: list[str], inputs: dict) -> dict:
-    """The text and tables of report.html (all but the figures and the file list)."""
+def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
+    """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`."""
     data = run.check.data
     obs = data.observations
     t0, t1 = obs["time"].min(), obs["time"].max()
@@ -203,8 +204,8 @@ def _report_pieces(run, lines: list[str], inputs: dict) -> dict:
         "Regimes over all clusters and times: " + ", ".join(f"{k.replace('_', ' ')} {int(v)}" for k, v in counts.items()) + ".",
         (f"Median standard error of the advection {bs.median_se('advection_se'):.3g} and of the residual "
          f"{bs.median_se('residual_se'):.3g} {run.unit}/h." if determined else "No cluster could be evaluated."),
-        f"Quality control flagged {int(sum(np.sum(f == 1) for f in run.check.qc.flags.values()))} values suspect and "
-        f"{int(sum(np.sum(f == 2) for f in run.check.qc.flags.values()))} bad (see qc_flags.csv); the estimator used "
+        f"Quality control flagged {sum(c['suspect'] for c in flags.values())} values suspect and "
+        f"{sum(c['bad'] for c in flags.values())} bad (see qc_flags.csv); the estimator used "
         f"{'good and suspect' if run.check.config['qc']['use_suspect'] else 'only good'} values.",
         "'undetermined' means too few good stations in the cluster for a plane, or gaps at the window ends.",
     ]
