@@ -15,7 +15,7 @@ from stationflow import docgen
 from stationflow.budget import REGIMES
 from stationflow.cli import app
 from stationflow.pipeline import TABLE_COLUMNS
-from stationflow.report import files
+from stationflow.report import atomic, files
 
 from .conftest import ROOT
 
@@ -135,7 +135,7 @@ def test_atomic_write_leaves_old_file_on_failure(tmp_path):
 def test_atomic_write_replaces_an_existing_file(tmp_path, monkeypatch, swap):
     # swap: the old and new files are exchanged in one step (Linux); otherwise a plain rename
     if not swap:
-        monkeypatch.setattr(files, "_exchange", lambda a, b: False)
+        monkeypatch.setattr(atomic, "_exchange", lambda a, b: False)
     target = tmp_path / "budget.nc"
     target.write_text("old\n")
     with files.atomic_write(target) as tmp:

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .files import atomic_write
+from .atomic import atomic_write
 
 CAUTIONS = [
     "This report is a decision aid, not an alarm system or a forecast. Keep independent low-temperature "

@@ -70,7 +70,7 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     # one job: the worker draws the two side by side (see Painter.submit_together)
     ts, mp = painter.submit_together([
         (plots.draw_timeseries, (panels, out / "budget_timeseries.png"), {"unit": run.unit, "tz": local}),
-        (plots.network_map, (run.network, out / "budget_map.png"),
+        (plots.draw_map, (plots.map_layers(run.network), out / "budget_map.png"),
          {"colour_by": summary.dominant(), "arrows": summary.arrows(),
           "title": "Clusters by dominant regime; mean wind and gradient"})])
     return {"timeseries": ts, "map": mp}

@@ -1,17 +1,24 @@
 """PNG figures: QC overview, network map, budget over time.
 
 matplotlib is imported inside the functions (Agg backend), so importing
-stationflow stays fast.
+stationflow stays fast.  Each figure is prepared (``*_image``, ``*_panels``,
+``map_layers``: small arrays, from the pandas objects of a run) and drawn
+(``draw_*``) separately: the drawing runs in the figure worker process
+(:mod:`stationflow.report.painter`), which then needs neither the data nor
+pandas (0.3 s of start-up there).
 """
 
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
-import pandas as pd
 
-from .files import write_with
+from .atomic import write_with
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 REGIME_COLOURS = {
     "advective": "#2f6db5",
@@ -54,6 +61,8 @@ def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], 
     for f in flags.values():
         present = f != 3
         worst = np.where(present & ((worst == 3) | (f > worst)), f, worst)
+    import pandas as pd
+
     codes, uniq = pd.factorize(observations["station_id"])
     names = np.array([str(u) for u in uniq], dtype=object)
     by_id = np.argsort(names, kind="stable")  # stations sorted by id
@@ -72,7 +81,9 @@ def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], 
     order = np.argsort(np.where(worst == 3, -1, worst), kind="stable")
     img[codes[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
     img = np.where(img < 0, 3, img)
-    return {"img": img, "stations": stations, "t0": pd.Timestamp(t0, tz="UTC"), "span": span, "bins": nb}
+    start = pd.Timestamp(t0, tz="UTC")
+    labels = [(start + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in np.linspace(0, nb, 6)]
+    return {"img": img, "stations": stations, "tick_labels": labels, "bins": nb}
 
 
 def draw_qc_overview(image: dict, path: str | Path) -> Path:
@@ -81,7 +92,7 @@ def draw_qc_overview(image: dict, path: str | Path) -> Path:
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
 
-    img, stations, t0, span, nb = image["img"], image["stations"], image["t0"], image["span"], image["bins"]
+    img, stations, nb = image["img"], image["stations"], image["bins"]
     fig, ax = plt.subplots(figsize=(10, min(14.0, max(2.5, 0.22 * len(stations) + 1.2))))
     ax.imshow(img, aspect="auto", interpolation="nearest", cmap=ListedColormap(FLAG_COLOURS), vmin=0, vmax=3,
               extent=(0, nb, len(stations) - 0.5, -0.5))
@@ -90,9 +101,8 @@ def draw_qc_overview(image: dict, path: str | Path) -> Path:
         ax.set_yticklabels(stations, fontsize=7)
     else:
         ax.set_ylabel(f"{len(stations)} stations (sorted by id)")
-    ticks = np.linspace(0, nb, 6)
-    ax.set_xticks(ticks)
-    ax.set_xticklabels([(t0 + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in ticks], fontsize=7)
+    ax.set_xticks(np.linspace(0, nb, len(image["tick_labels"])))
+    ax.set_xticklabels(image["tick_labels"], fontsize=7)
     ax.set_xlabel("time (UTC)")
     ax.set_title("Quality control: worst flag per station and time", y=1.0)
     ax.legend(handles=[Patch(facecolor=c, edgecolor="#999999", label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
@@ -105,6 +115,23 @@ def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: 
     return draw_qc_overview(qc_overview_image(observations, flags, max_bins=max_bins), path)
 
 
+def map_layers(network) -> dict:
+    """What :func:`draw_map` draws of ``network``: station and cluster geometry on the grid [km] (small arrays)."""
+    st, cl = network.stations, network.clusters
+    x, y = st["x"].to_numpy(float) / 1000, st["y"].to_numpy(float) / 1000
+    polys = []
+    for m in network.members:  # one polygon per cluster, its corners in order around the centre
+        pts = np.column_stack([x[m], y[m]])
+        if len(m) > 3:
+            c = pts.mean(axis=0)
+            pts = pts[np.argsort(np.arctan2(pts[:, 1] - c[1], pts[:, 0] - c[0]))]
+        polys.append(pts)
+    return {"x": x, "y": y, "station_id": [str(v) for v in st["station_id"]],
+            "surface": (st["role"] == "surface").to_numpy(bool), "polygons": polys,
+            "cluster": [str(v) for v in cl["cluster"]], "ok": (cl["status"] == "ok").to_numpy(bool),
+            "centroid_x": cl["centroid_x"].to_numpy(float) / 1000, "centroid_y": cl["centroid_y"].to_numpy(float) / 1000}
+
+
 def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
                 title: str = "Network and clusters") -> Path:
     """Stations and clusters on the local grid [km].
@@ -114,23 +141,21 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     per-cluster ``u``, ``v`` [m s-1] and ``gx``, ``gy`` (gradient, any unit)
     drawn at the cluster centroids.
     """
+    return draw_map(map_layers(network), path, colour_by=colour_by, arrows=arrows, title=title)
+
+
+def draw_map(layers: dict, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
+             title: str = "Network and clusters") -> Path:
+    """Draw the map from :func:`map_layers` (runs in the figure process); arguments as :func:`network_map`."""
     plt = _plt()
+    from matplotlib.collections import PolyCollection
+    from matplotlib.colors import to_rgba
     from matplotlib.patches import Patch
 
-    st = network.stations
-    x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
+    x, y, ok, names = layers["x"], layers["y"], layers["ok"], layers["cluster"]
     fig, ax = plt.subplots(figsize=(7.5, 6.5))
-    from matplotlib.collections import PolyCollection
-
-    polys, faces, alphas, styles = [], [], [], []
-    ok = (network.clusters["status"] == "ok").to_numpy()
-    names = network.clusters["cluster"].to_numpy()
-    for i, m in enumerate(network.members):  # drawing only: one polygon per cluster
-        pts = np.column_stack([x[m], y[m]])
-        if len(m) > 3:
-            c = pts.mean(axis=0)
-            pts = pts[np.argsort(np.arctan2(pts[:, 1] - c[1], pts[:, 0] - c[0]))]
-        polys.append(pts)
+    faces, alphas, styles = [], [], []
+    for i in range(len(names)):
         if colour_by is not None:
             faces.append(REGIME_COLOURS.get(colour_by.get(names[i]), "#ffffff") if ok[i] else "#ffffff")
             alphas.append(0.75 if ok[i] else 0.3)
@@ -138,28 +163,26 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
             faces.append(STATUS_COLOURS["ok" if ok[i] else "rejected"])
             alphas.append(0.35 if ok[i] else 0.2)
         styles.append("-" if ok[i] else ":")
-    from matplotlib.colors import to_rgba
-
+    polys = layers["polygons"]
     coll = PolyCollection(polys, facecolors=[to_rgba(f, a) for f, a in zip(faces, alphas)], edgecolors="#555555",
                           linewidths=0.8 if len(polys) < 300 else 0.2, linestyles=styles)
     ax.add_collection(coll)
     if ok.sum() <= 150:
         for i in np.flatnonzero(ok):
-            row = network.clusters.iloc[i]
-            ax.text(row["centroid_x"] / 1000, row["centroid_y"] / 1000, row["cluster"], fontsize=6.5, ha="center",
+            ax.text(layers["centroid_x"][i], layers["centroid_y"][i], names[i], fontsize=6.5, ha="center",
                     va="center", color="#222222")
-    surface = (st["role"] == "surface").to_numpy()
+    surface = layers["surface"]
     ax.scatter(x[surface], y[surface], s=18 if len(x) < 300 else 2, color="#111111", zorder=3)
     ax.scatter(x[~surface], y[~surface], s=50, facecolor="none", edgecolor="#111111", zorder=3)
     if len(x) <= 80:
-        for xi, yi, sid in zip(x[surface], y[surface], st["station_id"][surface]):
-            ax.annotate(str(sid), (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
+        for xi, yi, sid in zip(x[surface], y[surface], np.asarray(layers["station_id"], dtype=object)[surface]):
+            ax.annotate(sid, (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
     if arrows:
-        cx = network.clusters.set_index("cluster")
-        ids = [c for c in arrows.get("cluster", []) if c in cx.index]
+        where = {c: i for i, c in enumerate(names)}
+        ids = [c for c in arrows.get("cluster", []) if c in where]
         if ids:
-            px = cx.loc[ids, "centroid_x"].to_numpy() / 1000
-            py = cx.loc[ids, "centroid_y"].to_numpy() / 1000
+            at = np.array([where[c] for c in ids])
+            px, py = layers["centroid_x"][at], layers["centroid_y"][at]
             ax.quiver(px, py, arrows["u"], arrows["v"], color="#1b3a6b", scale_units="inches", scale=8, width=0.004,
                       label="wind (m/s)")
             g = np.hypot(arrows["gx"], arrows["gy"])
@@ -181,7 +204,7 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     return _save(fig, path)
 
 
-def _shade_regimes(ax, times: pd.DatetimeIndex, regimes: np.ndarray, *, alpha: float = 0.14) -> None:
+def _shade_regimes(ax, times: np.ndarray, regimes: np.ndarray, *, alpha: float = 0.14) -> None:
     """Shade the background by regime: one image strip (fast for long records, unlike one polygon per run)."""
     from matplotlib import dates as mdates
     from matplotlib.colors import to_rgba
@@ -205,6 +228,8 @@ def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels:
     """What :func:`draw_timeseries` draws: per cluster panel, the (block-mean) series and regimes."""
     import warnings
 
+    import pandas as pd
+
     from ..ingest import _timezone
 
     if clusters is None:
@@ -225,7 +250,7 @@ def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels:
                 cols = {name: np.nanmean(v[:m].reshape(-1, k), axis=1) for name, v in cols.items()}
             tt = tt[:m:k]
             reg = reg[k // 2:m:k]  # the regime in the middle of each block
-        panels.append({"time": tt, "columns": cols, "regime": reg, "label": summary.clusters["cluster"].iloc[c],
+        panels.append({"time": tt.to_numpy("datetime64[ns]"), "columns": cols, "regime": reg, "label": summary.clusters["cluster"].iloc[c],
                        "stations": summary.clusters["stations"].iloc[c]})
     return panels
 
