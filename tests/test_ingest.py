@@ -210,3 +210,14 @@ def test_unknown_timezone_is_a_config_error(tmp_path, stations_file):
     obs = _dst_obs(tmp_path, ["A,2026-05-01 08:00,1"])
     with pytest.raises(ConfigError, match="not an IANA time zone"):
         ingest.read(obs, stations_file, config.from_dict({"observations": {"timezone": "Mars/Olympus"}}))
+
+
+@pytest.mark.parametrize("unused", [False, True])
+def test_station_labels_of_a_categorical_equal_those_of_plain_text(unused):
+    # the typed reader hands over coded labels: they must give exactly what the labels as text give
+    values = [" B2", "A1", None, "C3 ", "A1", " B2"]
+    cats = ["C3 ", " B2", "A1"] + (["Z9"] if unused else [])
+    coded = pd.Series(pd.Categorical(values, categories=cats))
+    got, want = ingest._station_labels(coded), ingest._station_labels(pd.Series(values, dtype=object))
+    assert got.tolist() == want.tolist() == ["B2", "A1", "", "C3", "A1", "B2"]
+    assert list(got.cat.categories) == list(want.cat.categories) == ["", "A1", "B2", "C3"]
