@@ -213,13 +213,15 @@ def fit_planes(
     sizes = np.array([len(m) for m in members], dtype=int)
     if n_c and sizes.max() > 62:
         raise ValueError("clusters of more than 62 stations are not supported")
-    # cluster-major storage in size order; the public arrays are (time, cluster) views
+    # time-major storage (time, cluster) with the clusters in size order: each time chunk is solved in a small
+    # cluster-major buffer and copied in transposed, in cache; every later step (budget terms, window sums, the
+    # Parquet and NetCDF columns) then reads the arrays in order, and the file writer copies none of them
     order = np.argsort(sizes, kind="stable")
-    coef_all = np.empty((n_c, p, n_t))
-    pattern = np.empty((n_c, n_t), np.int32)
+    coef_all = np.empty((p, n_t, n_c))
+    pattern = np.empty((n_t, n_c), np.int32)
     want_res = residuals and bool(np.any(sizes > p))
-    chi2 = np.full((n_c, n_t), np.nan) if want_res else None
-    rms = np.full((n_c, n_t), np.nan) if residuals else None
+    chi2 = np.full((n_t, n_c), np.nan) if want_res else None
+    rms = np.full((n_t, n_c), np.nan) if residuals else None
     tables: list[dict[str, np.ndarray]] = []
     n_rows = 0
     vt = np.ascontiguousarray(values.T)  # (n_s, n_t)
@@ -285,11 +287,10 @@ def fit_planes(
             complete = (np.ones((len(sel), t1 - t0), bool) if code_all is None
                         else code_all[:, ts] == full_code)  # (C, T)
             all_complete = bool(complete.all())
-            coef = coef_all[rows, :, ts]
             # (C, p, T); einsum avoids per-batch BLAS calls.  Each element is its own sum, so the
             # incomplete ones (NaN here) are simply overwritten below
-            np.einsum("cpk,ckt->cpt", Pf, X, out=coef)
-            pat = pattern[rows, ts]
+            coef = np.einsum("cpk,ckt->cpt", Pf, X)
+            pat = np.empty((len(sel), t1 - t0), np.int32)
             pat[...] = full_rows[:, None]
             if not all_complete:
                 ci, ti = np.nonzero(~complete)
@@ -316,31 +317,28 @@ def fit_planes(
                 dof = nu_t - p
                 fine = np.isfinite(coef[:, 0])
                 with np.errstate(invalid="ignore", divide="ignore"):
-                    chi2[rows, ts] = np.where(fine & (dof > 0), rss_w / dof, np.nan)
-                    rms[rows, ts] = np.where(fine, np.sqrt((res * res).sum(axis=1) / nu_t), np.nan)
+                    chi2[ts, rows] = np.where(fine & (dof > 0), rss_w / dof, np.nan).T
+                    rms[ts, rows] = np.where(fine, np.sqrt((res * res).sum(axis=1) / nu_t), np.nan).T
             elif residuals:
-                rms[rows, ts] = np.where(np.isfinite(coef[:, 0]), 0.0, np.nan)
-    coef_all[:, 1:3] /= scale_m
+                rms[ts, rows] = np.where(np.isfinite(coef[:, 0]), 0.0, np.nan).T
+            coef_all[:, ts, rows] = coef.transpose(1, 2, 0)
+            pattern[ts, rows] = pat.T
+    coef_all[1:3] /= scale_m
     if zz is not None:
-        coef_all[:, 3] /= scale_z
+        coef_all[3] /= scale_z
     if not np.array_equal(order, np.arange(n_c)):
         back = np.argsort(order)
-        coef_all, pattern = coef_all[back], pattern[back]
-        chi2 = None if chi2 is None else chi2[back]
-        rms = None if rms is None else rms[back]
+        coef_all, pattern = coef_all[:, :, back], pattern[:, back]
+        chi2 = None if chi2 is None else chi2[:, back]
+        rms = None if rms is None else rms[:, back]
     table = {key: np.concatenate([t[key] for t in tables]) if tables else np.empty(0) for key in
              ("var_value", "var_x", "var_y", "cov_xy", "var_z", "cond", "n_used", "reason")}
     for key in ("var_x", "var_y", "cov_xy"):
         table[key] = table[key] / scale_m ** 2
     table["var_z"] = table["var_z"] / scale_z ** 2
-    # the public arrays time-major in memory as well: every later step (budget terms, window sums, the
-    # Parquet and NetCDF columns) then reads them in order instead of across the cluster-major storage,
-    # and the file writer needs no copy of each column (measured: 0.3 s of writer time on the benchmark)
-    tm = np.ascontiguousarray
-    return PlaneFit(value=tm(coef_all[:, 0].T), grad_x=tm(coef_all[:, 1].T), grad_y=tm(coef_all[:, 2].T),
-                    grad_z=None if zz is None else tm(coef_all[:, 3].T),
-                    pattern=tm(pattern.T), table=table, chi2=None if chi2 is None else tm(chi2.T),
-                    rms=None if rms is None else tm(rms.T), n_params=p)
+    return PlaneFit(value=coef_all[0], grad_x=coef_all[1], grad_y=coef_all[2],
+                    grad_z=None if zz is None else coef_all[3], pattern=pattern, table=table, chi2=chi2, rms=rms,
+                    n_params=p)
 
 
 def _table_rows(Ninv: np.ndarray, cond: np.ndarray, ok: np.ndarray, n_used: np.ndarray, p: int) -> dict[str, np.ndarray]:
