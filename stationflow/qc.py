@@ -121,27 +121,6 @@ def _segments(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return new, start_of_run
 
 
-def _prev_finite(x: np.ndarray, codes: np.ndarray) -> np.ndarray:
-    """Index of the previous finite value of the same station (-1 if none)."""
-    n = x.size
-    idx = np.where(np.isfinite(x), np.arange(n), -1)
-    last = np.maximum.accumulate(idx)
-    prev = np.empty(n, np.int64)
-    prev[0] = -1
-    prev[1:] = last[:-1]
-    _, run_start = _segments(codes)
-    prev[prev < run_start] = -1
-    return prev
-
-
-def _next_finite(x: np.ndarray, codes: np.ndarray) -> np.ndarray:
-    """Index of the next finite value of the same station (-1 if none)."""
-    n = x.size
-    rev = _prev_finite(x[::-1], codes[::-1])
-    nxt = np.where(rev >= 0, n - 1 - rev, -1)[::-1]
-    return nxt
-
-
 def row_nanmedian(a: np.ndarray) -> np.ndarray:
     """Median of the finite values of each row of a 2-D array (NaN for a row without any).
 
@@ -258,8 +237,30 @@ def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
     ``spike`` instead.  The return from a spike is not a step.
     """
     x = np.asarray(values, float)
-    prev = _prev_finite(x, codes)
-    nxt = _next_finite(x, codes)
+    n = x.size
+    if n == 0:
+        return np.ones(0, bool), np.ones(0, bool)
+    fin = np.isfinite(x)
+    # each row's previous and next finite row of the same station (-1: none), from running max / min of
+    # the finite rows' positions, cut at the station's run of rows
+    new = np.empty(n, bool)
+    new[0] = True
+    np.not_equal(codes[1:], codes[:-1], out=new[1:])
+    starts = np.flatnonzero(new)
+    lengths = np.diff(np.append(starts, n))
+    pos = np.arange(n)
+    last = np.where(fin, pos, -1)
+    np.maximum.accumulate(last, out=last)
+    prev = np.empty(n, np.int64)
+    prev[0] = -1
+    prev[1:] = last[:-1]
+    prev[prev < np.repeat(starts, lengths)] = -1
+    nxt = np.where(fin, pos, n)[::-1]
+    nxt = np.minimum.accumulate(nxt)[::-1]
+    nxt[:-1] = nxt[1:]
+    nxt[-1] = n
+    nxt[nxt > np.repeat(np.append(starts[1:], n) - 1, lengths)] = -1
+    del last, pos
     has_p, has_n = prev >= 0, nxt >= 0
     p = np.where(has_p, prev, 0)
     q = np.where(has_n, nxt, 0)
@@ -268,7 +269,6 @@ def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
     max_gap = max(float(a) for a, _ in table) * 1.5
     d_in = x - x[p]
     d_out = x[q] - x
-    fin = np.isfinite(x)
     ex_in = fin & has_p & (dt_in <= max_gap) & _exceeds(d_in, dt_in, table)
     ex_out = fin & has_n & (dt_out <= max_gap) & _exceeds(d_out, dt_out, table)
     spike = ex_in & ex_out & (np.sign(d_in) != np.sign(d_out))

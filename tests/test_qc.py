@@ -321,3 +321,50 @@ def test_summary_counts_equal_a_plain_count():
         assert row.suspect == sum(int((f[at] == qc.SUSPECT).sum()) for f in res.flags.values())
         assert row.bad == sum(int((f[at] == qc.BAD).sum()) for f in res.flags.values())
     assert s["per_station"]["bad"].sum() > 0 and s["per_station"]["suspect"].sum() > 0
+
+
+def _steps_row_by_row(x, t, codes, table):
+    """The step and spike rules of qc.plausible_steps, one row at a time (the reference)."""
+    n = len(x)
+    fin = np.isfinite(x)
+    prev, nxt = np.full(n, -1), np.full(n, -1)
+    for i in range(n):
+        for j in range(i - 1, -1, -1):
+            if codes[j] != codes[i]:
+                break
+            if fin[j]:
+                prev[i] = j
+                break
+        for j in range(i + 1, n):
+            if codes[j] != codes[i]:
+                break
+            if fin[j]:
+                nxt[i] = j
+                break
+    max_gap = max(a for a, _ in table) * 1.5
+
+    def exceeds(i, j, a, b):  # the change from row a to row b, seen from row i
+        minutes = (t[b] - t[a]) / 6e10
+        return j >= 0 and fin[i] and minutes <= max_gap and abs(x[b] - x[a]) > qc.step_limit(table, np.array([minutes]))[0]
+
+    ex_in = [exceeds(i, prev[i], prev[i], i) for i in range(n)]
+    ex_out = [exceeds(i, nxt[i], i, nxt[i]) for i in range(n)]
+    spike = [ex_in[i] and ex_out[i] and np.sign(x[i] - x[prev[i]]) != np.sign(x[nxt[i]] - x[i]) for i in range(n)]
+    step = [ex_in[i] and not spike[i] and not (prev[i] >= 0 and spike[prev[i]]) for i in range(n)]
+    return ~np.array(step, bool), ~np.array(spike, bool)
+
+
+def test_step_and_spike_tests_equal_the_row_by_row_rules():
+    rng = np.random.default_rng(3)
+    table = [(5.0, 2.0), (60.0, 6.0)]
+    for _ in range(60):
+        n = int(rng.integers(1, 50))
+        codes = np.sort(rng.integers(0, 4, n))
+        t = np.zeros(n, np.int64)
+        for c in np.unique(codes):
+            m = codes == c
+            t[m] = np.cumsum(rng.integers(1, 30, m.sum())) * 60 * 10**9
+        x = np.cumsum(rng.normal(0, 2, n)) + rng.choice([0, 0, 0, 9, -9], n)
+        x[rng.random(n) < 0.3] = np.nan
+        got, want = qc.plausible_steps(x, t, codes, table), _steps_row_by_row(x, t, codes, table)
+        assert np.array_equal(got[0], want[0]) and np.array_equal(got[1], want[1])
