@@ -112,13 +112,15 @@ class QCResult:
 # helpers
 # --------------------------------------------------------------------------
 
-def _segments(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Start index of each element's station run (data sorted by station, time)."""
+def _run_bounds(codes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """First and last index of each element's station run (consecutive equal codes: data sorted by station)."""
     n = codes.size
-    new = np.ones(n, bool)
-    new[1:] = codes[1:] != codes[:-1]
-    start_of_run = np.maximum.accumulate(np.where(new, np.arange(n), 0))
-    return new, start_of_run
+    new = np.empty(n, bool)
+    new[:1] = True
+    np.not_equal(codes[1:], codes[:-1], out=new[1:])
+    starts = np.flatnonzero(new)
+    lengths = np.diff(np.append(starts, n))
+    return np.repeat(starts, lengths), np.repeat(np.append(starts[1:], n) - 1, lengths)
 
 
 def row_nanmedian(a: np.ndarray) -> np.ndarray:
@@ -243,24 +245,19 @@ def plausible_steps(values: np.ndarray, times_ns: np.ndarray, codes: np.ndarray,
     fin = np.isfinite(x)
     # each row's previous and next finite row of the same station (-1: none), from running max / min of
     # the finite rows' positions, cut at the station's run of rows
-    new = np.empty(n, bool)
-    new[0] = True
-    np.not_equal(codes[1:], codes[:-1], out=new[1:])
-    starts = np.flatnonzero(new)
-    lengths = np.diff(np.append(starts, n))
+    run_start, run_end = _run_bounds(codes)
     pos = np.arange(n)
     last = np.where(fin, pos, -1)
     np.maximum.accumulate(last, out=last)
     prev = np.empty(n, np.int64)
     prev[0] = -1
     prev[1:] = last[:-1]
-    prev[prev < np.repeat(starts, lengths)] = -1
-    nxt = np.where(fin, pos, n)[::-1]
-    nxt = np.minimum.accumulate(nxt)[::-1]
+    prev[prev < run_start] = -1
+    nxt = np.minimum.accumulate(np.where(fin, pos, n)[::-1])[::-1]
     nxt[:-1] = nxt[1:]
     nxt[-1] = n
-    nxt[nxt > np.repeat(np.append(starts[1:], n) - 1, lengths)] = -1
-    del last, pos
+    nxt[nxt > run_end] = -1
+    del last, pos, run_start, run_end
     has_p, has_n = prev >= 0, nxt >= 0
     p = np.where(has_p, prev, 0)
     q = np.where(has_n, nxt, 0)
@@ -395,7 +392,7 @@ def _persistent_on_rows(x: np.ndarray, times_ns: np.ndarray, codes: np.ndarray, 
                         window_minutes: float) -> np.ndarray:
     """Rows that fall in a failing persistence window, on rows sorted by (station, time) (any spacing)."""
     n = x.size
-    _, run_start = _segments(codes)
+    run_start, _ = _run_bounds(codes)
     w = int(window_minutes * 6e10)
     key = codes.astype(np.int64)
     # first index of the same station whose time is >= t - w
