@@ -61,21 +61,23 @@ def _warm_up() -> None:
     plt.close(fig)
 
 
-def _inline(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Future:
-    fut: Future = Future()
-    try:
-        fut.set_result(fn(*args, **kwargs))
-    except Exception as exc:  # noqa: BLE001 - handed to the caller through the future
-        fut.set_exception(exc)
-    return fut
-
-
 def _outcome(fn: Callable[..., Any], args: tuple, kwargs: dict) -> tuple[bool, Any]:
     """(True, return value) or (False, the error) of one call."""
     try:
         return True, fn(*args, **kwargs)
     except Exception as exc:  # noqa: BLE001 - handed to the caller through the future
         return False, exc
+
+
+def _inline(fn: Callable[..., Any], args: tuple, kwargs: dict) -> Future:
+    """Run ``fn`` here; its value or error in a finished future."""
+    fut: Future = Future()
+    ok, value = _outcome(fn, args, kwargs)
+    if ok:
+        fut.set_result(value)
+    else:
+        fut.set_exception(value)
+    return fut
 
 
 def _together(calls: list[tuple[Callable[..., Any], tuple, dict]], home: int | None) -> list[tuple[bool, Any]]:
