@@ -1002,12 +1002,10 @@ def _station_labels(col: pd.Series) -> pd.Series:
 
     Works on the distinct labels only, so it costs little for millions of rows.
     """
-    codes = uniques = None
-    if isinstance(col.dtype, pd.CategoricalDtype):  # labels already coded (the typed reader's): no factorising
-        codes, uniques = col.cat.codes.to_numpy(), col.cat.categories
-        if not np.bincount(codes[codes >= 0], minlength=len(uniques)).all():  # unused labels: as factorised
-            codes = uniques = None
-    if codes is None:
+    coded = col.cat.codes.to_numpy() if isinstance(col.dtype, pd.CategoricalDtype) else None
+    if coded is not None and np.bincount(coded[coded >= 0], minlength=len(col.cat.categories)).all():
+        codes, uniques = coded, col.cat.categories  # every label used (the typed reader's): no factorising
+    else:
         codes, uniques = pd.factorize(col)
     labels = pd.Series(uniques).astype("string").str.strip().fillna("").astype(str).to_numpy(object)
     labels = np.append(labels, "")  # code -1 (missing) -> ""
