@@ -104,7 +104,8 @@ def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure:
 def _flag_counts(chk) -> dict:
     out = {}
     for v, f in chk.qc.flags.items():
-        out[v] = {name: int(np.count_nonzero(f == code)) for code, name in enumerate(("good", "suspect", "bad", "missing"))}
+        out[v] = {name: int(np.count_nonzero(f == code))
+                  for code, name in enumerate(("good", "suspect", "bad", "missing"))}
     return out
 
 

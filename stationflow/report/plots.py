@@ -250,8 +250,8 @@ def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels:
                 cols = {name: np.nanmean(v[:m].reshape(-1, k), axis=1) for name, v in cols.items()}
             tt = tt[:m:k]
             reg = reg[k // 2:m:k]  # the regime in the middle of each block
-        panels.append({"time": tt.to_numpy("datetime64[ns]"), "columns": cols, "regime": reg, "label": summary.clusters["cluster"].iloc[c],
-                       "stations": summary.clusters["stations"].iloc[c]})
+        panels.append({"time": tt.to_numpy("datetime64[ns]"), "columns": cols, "regime": reg,
+                       "label": summary.clusters["cluster"].iloc[c], "stations": summary.clusters["stations"].iloc[c]})
     return panels
 
 
