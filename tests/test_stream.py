@@ -137,6 +137,28 @@ def test_failure_part_way_leaves_no_files(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == []  # neither results nor temporary files
 
 
+@pytest.mark.parametrize("which", ["_write_tables", "_write_netcdf"])
+def test_a_failing_writer_raises_its_error_and_leaves_no_files(tmp_path, monkeypatch, which):
+    # the two writer threads: an error in either (the disk filling up, say) is raised from the stream, once
+    # the other writer is done with the partition, and nothing is left behind
+    cfg = _cfg(FROST, chunk="1h")
+    chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)
+    plan = pipeline.plan_budget(chk, cfg)
+    original = getattr(stream.BudgetFiles, which)
+
+    def failing(self, first, block):
+        if first > 0:
+            raise OSError(28, "No space left on device")
+        original(self, first, block)
+
+    monkeypatch.setattr(stream.BudgetFiles, which, failing)
+    with pytest.raises(OSError, match="No space left"):
+        with stream.BudgetFiles(tmp_path, plan.layout) as sink:
+            for first, last in pipeline.partitions(len(plan.times), 6)[:3]:
+                sink.add(first, pipeline.derive(pipeline.run_partition(plan, first, last), plan.layout.convergence))
+    assert list(tmp_path.iterdir()) == []
+
+
 def test_incomplete_stream_is_an_error_and_leaves_no_files(tmp_path):
     cfg = _cfg(FROST)
     chk = pipeline.run_check(FROST / "observations.csv", FROST / "stations.csv", cfg)

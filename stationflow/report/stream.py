@@ -7,9 +7,11 @@ groups, as a slab of the (time, cluster) NetCDF variables and, when the
 table is small enough (or asked for), as CSV rows.  Nothing but the current
 partition is held, so memory does not grow with the length of the record.
 
-Writing runs on one background thread while the next partition is
-computed (pyarrow and HDF5 do their work outside the Python lock); at most
-one partition waits to be written.  All files are written to temporary
+Writing runs on two background threads while the next partition is
+computed, one for the NetCDF slab and one for the Parquet (and CSV) rows
+(pyarrow and HDF5 do their work outside the Python lock; each file is
+written by one task at a time, in time order); at most one partition
+waits to be written.  All files are written to temporary
 names and renamed into place only when every partition has been written;
 after an error nothing half-written is left behind.
 """
@@ -72,8 +74,10 @@ class BudgetFiles:
             self.notes.append(csv_skipped(self.rows))
         self.paths = [self.out / "budget.parquet", self.out / "budget.nc"] + ([self.out / "budget.csv"] if self.write_csv else [])
         self._stack = contextlib.ExitStack()
-        self._pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="stationflow-writer") if background else None
-        self._pending: Future | None = None
+        # two writers: much of a write is the kernel's (fresh page-cache pages for the new files), and when the
+        # machine is slow at that, one writer thread held up the partitions while a core stood idle
+        self._pool = ThreadPoolExecutor(max_workers=2, thread_name_prefix="stationflow-writer") if background else None
+        self._pending: list[Future] = []
         self._opened = False
         self._time_ns = layout.times.tz_convert("UTC").tz_localize(None).as_unit("ns").asi8
         self._written = 0
@@ -107,27 +111,34 @@ class BudgetFiles:
             self._pool.shutdown(wait=True)
 
     def _wait(self) -> None:
-        if self._pending is not None:
-            pending, self._pending = self._pending, None
-            pending.result()
+        """Wait for the partition being written; raise the first error once both writers are done."""
+        pending, self._pending = self._pending, []
+        errors = [f.exception() for f in pending]  # waits for each: no writer is left running on an error
+        for err in errors:
+            if err is not None:
+                raise err
 
     # ---- the sink --------------------------------------------------------------------------
 
     def add(self, first: int, block: dict[str, np.ndarray]) -> None:
         """Write the derived arrays of analysis steps ``first ..`` (in time order)."""
-        if self._pool is None:
-            self._write(first, block)
-            return
         self._wait()  # at most one partition in flight: memory stays bounded
-        self._pending = self._pool.submit(self._write, first, block)
-
-    def _write(self, first: int, block: dict[str, np.ndarray]) -> None:
         if not self._opened:
             self._open(block)
         k = block["regime"].shape[0]
         if first != self._written:
             raise RuntimeError(f"budget files: partition starting at step {first} after {self._written} steps")
-        self._write_netcdf(first, block)
+        if self._pool is None:
+            self._write_netcdf(first, block)
+            self._write_tables(first, block)
+        else:
+            self._pending = [self._pool.submit(self._write_netcdf, first, block),
+                             self._pool.submit(self._write_tables, first, block)]
+        self._written += k
+
+    def _write_tables(self, first: int, block: dict[str, np.ndarray]) -> None:
+        """The Parquet row groups (and CSV rows) of a partition."""
+        k = block["regime"].shape[0]
         n_c = len(self.layout.clusters)
         step = max(1, ROWS_PER_GROUP // max(1, n_c))
         for a in range(0, k, step):
@@ -135,7 +146,6 @@ class BudgetFiles:
             self._parquet.write_table(table, row_group_size=ROWS_PER_GROUP)
             if self.write_csv:
                 self._csv.write_table(self._csv_table(table))
-        self._written += k
 
     # ---- Arrow / Parquet / CSV --------------------------------------------------------------
 
