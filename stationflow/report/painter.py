@@ -3,7 +3,7 @@
 matplotlib's import and the drawing of the report figures are pure Python
 and cost a few seconds; on a machine with two or more cores they can run
 beside the budget computation instead of after it.  A :class:`Painter`
-starts a worker process (``spawn``: safe with the writer thread, and no
+starts a worker process (``spawn``: safe with the writer threads, and no
 copy of a large heap; one by default: a second drew the two budget figures
 at once but its start-up, 1.3 s of CPU, cost more than it saved on two
 cores), warms it up (imports matplotlib, draws a throw-away figure), and takes drawing
