@@ -1,7 +1,7 @@
 """The command line: a thin typer layer over :mod:`stationflow.pipeline`.
 
-Exit codes: 0 done; 2 bad input or configuration (one ``error:`` line on
-stderr); 1 an unexpected fault.
+Exit codes: 0 done; 2 bad input or configuration, or an output the file
+system refused (one ``error:`` line on stderr); 1 an unexpected fault.
 """
 
 from __future__ import annotations
@@ -52,6 +52,15 @@ def _err(message: str) -> None:
     typer.echo(f"error: {message}", err=True)
 
 
+def _os_error_line(exc: OSError) -> str:
+    """One line for an output the file system refused: which path, why, what to do."""
+    where = f"{exc.filename}: " if exc.filename else ""
+    if isinstance(exc, (FileExistsError, NotADirectoryError)):
+        return f"{where}a file is in the way where a folder is needed; --out names a folder, choose another"
+    reason = exc.strerror or str(exc)
+    return f"{where}cannot write ({reason}); check the path, its permissions and the free space (no output was left half-written)"
+
+
 def _progress(quiet: bool):
     """A stage reporter on stderr (a spinner with the current stage), or nothing."""
     if quiet:
@@ -88,6 +97,9 @@ def _run(fn, *, quiet: bool):
     except KeyboardInterrupt:
         _err("interrupted; no output file was left half-written")
         raise typer.Exit(130) from None
+    except OSError as exc:  # the file system refused (the inputs' own errors are IngestErrors): not a bug
+        _err(_os_error_line(exc))
+        raise typer.Exit(2) from None
     except Exception as exc:  # noqa: BLE001 - the last line of defence: a bug, not a user error
         if STATE["verbose"]:
             traceback.print_exc()

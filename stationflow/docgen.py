@@ -28,7 +28,7 @@ def cli_reference() -> str:
     parts = ["# Command-line reference", "",
              "Generated from the commands' own `--help` by `python -m stationflow.docgen`; "
              "a test fails when this page is stale.", "",
-             "Exit codes: `0` done; `2` bad input or configuration (one line on stderr starting `error:`); "
+             "Exit codes: `0` done; `2` bad input or configuration, or an output the file system refused (one line on stderr starting `error:`); "
              "`1` an unexpected fault (please report it, with `--verbose` output).", ""]
     for c in COMMANDS:
         parts += [f"## `stationflow{' ' + c if c else ''}`", "", "```text", help_text(c).rstrip(), "```", ""]

@@ -173,6 +173,32 @@ def test_unknown_variable_is_exit_2(tmp_path, runner):
     assert res.stderr.startswith("error: variable 'ozone' is not in the observations; available: air_temperature")
 
 
+def test_output_folder_that_is_a_file_is_exit_2(tmp_path, runner):
+    in_the_way = tmp_path / "results"
+    in_the_way.write_text("not a folder\n")
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(FROST / "config.toml"), "--out", str(in_the_way), "--quiet"])
+    assert res.exit_code == 2
+    assert res.stderr == f"error: {in_the_way}: a file is in the way where a folder is needed; --out names a folder, choose another\n"
+    assert in_the_way.read_text() == "not a folder\n"  # left as it was
+
+
+def test_disk_full_while_writing_is_exit_2_and_leaves_no_budget_files(tmp_path, runner, monkeypatch):
+    from stationflow.report import stream
+
+    def full(self, first, block):
+        raise OSError(28, "No space left on device", str(self.out / "budget.parquet"))
+
+    monkeypatch.setattr(stream.BudgetFiles, "_write_tables", full)
+    out = tmp_path / "o"
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(FROST / "config.toml"), "--out", str(out), "--quiet"])
+    assert res.exit_code == 2
+    assert res.stderr.startswith(f"error: {out / 'budget.parquet'}: cannot write (No space left on device); check the path")
+    assert len(res.stderr.splitlines()) == 1
+    assert not list(out.glob("budget*")) and not list(out.glob(".*.part"))
+
+
 def test_regression_needs_bigger_clusters(tmp_path, runner):
     cfg = tmp_path / "c.toml"
     cfg.write_text((FROST / "config.toml").read_text().replace('vertical = "potential_temperature"', 'vertical = "regression"'))
