@@ -73,6 +73,21 @@ def test_close_waits_for_every_job_then_stops_the_workers(tmp_path):
     assert procs and all(not p.is_alive() for p in procs)
 
 
+def test_a_failed_run_stops_the_worker_and_its_executor_before_going_on():
+    # the executor's own thread is done when the with-block has been left: left running, it released the
+    # queue's semaphores too late for a process that ends at once (Python's resource tracker then warned on
+    # stderr, after the command's one error line)
+    import concurrent.futures.process as cfp
+    import threading
+
+    with pytest.raises(KeyError):
+        with Painter(background=True) as painter:
+            procs = list(getattr(painter._pool, "_processes", {}).values())
+            raise KeyError("a bad input, say")
+    assert procs and all(not p.is_alive() for p in procs)
+    assert not [t for t in threading.enumerate() if isinstance(t, cfp._ExecutorManagerThread)]
+
+
 def test_a_killed_worker_means_the_figure_is_drawn_here(tmp_path):
     obs, flags = _image()
     image = plots.qc_overview_image(obs, flags)

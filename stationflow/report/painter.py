@@ -269,6 +269,9 @@ class Painter:
     def __exit__(self, *exc) -> None:
         if exc[0] is not None and self._pool is not None:  # the run failed: do not wait for figures
             self._stop_workers()
-            self._pool.shutdown(wait=False, cancel_futures=True)
+            # waiting costs nothing once the workers are stopped, and lets the executor release its queue's
+            # semaphores before the command ends its process: without it, Python's resource tracker warned on
+            # stderr after the one error line (in 4 of about 100 failed runs; none in 140 with it)
+            self._pool.shutdown(wait=True, cancel_futures=True)
             self._pool = None
         self.close()
