@@ -160,6 +160,71 @@ def design(x: np.ndarray, y: np.ndarray, z: np.ndarray | None, members: np.ndarr
 
 
 _ENTRIES = (("var_value", 0, 0), ("var_x", 1, 1), ("var_y", 2, 2), ("cov_xy", 1, 2), ("var_z", 3, 3))
+#: the table entries that also come as a reading-noise part (``<name>_noise``)
+NOISE_ENTRIES = ("var_value", "var_x", "var_y", "cov_xy")
+#: clusters with more members than this are solved per time step, not per missing-data bit pattern
+MAX_PATTERN_BITS = 62
+
+
+def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | None, *, p: int, min_n: int,
+              max_cond: float, residuals: bool, chunk_elements: int) -> dict[str, np.ndarray]:
+    """One cluster of many stations, each time step from its normal equations.
+
+    ``X`` (k, T) values, ``A`` (k, p) scaled design, ``w`` (k,) weights
+    (0 = unusable station), ``noise2`` (k,) reading-noise variances or None.
+    With centred, scaled coordinates and at most four coefficients the
+    normal equations are well conditioned wherever the SVD route would
+    accept the fit; the condition number of ``sqrt(W) A`` is
+    ``sqrt(lambda_max / lambda_min)`` of ``A^T W A``.  Returns the table rows
+    (one per time step) and ``coef`` (p, T), ``chi2``, ``rms`` (T,).
+    """
+    k, n_t = X.shape
+    out: dict[str, list[np.ndarray]] = {}
+    coef_all = np.full((p, n_t), np.nan)
+    chi2 = np.full(n_t, np.nan)
+    rms = np.full(n_t, np.nan)
+    step = max(16, chunk_elements // max(1, k))
+    outer = np.einsum("kp,kq->kpq", A, A).reshape(k, p * p)
+    for t0 in range(0, n_t, step):  # time chunks bound the memory; each is one batched solve
+        ts = slice(t0, min(n_t, t0 + step))
+        xc = X[:, ts]
+        present = np.isfinite(xc) & (w > 0)[:, None]
+        wt = np.where(present, w[:, None], 0.0)  # (k, T)
+        x0 = np.where(present, xc, 0.0)
+        N = (wt.T @ outer).reshape(-1, p, p)
+        b = (wt * x0).T @ A  # (T, p)
+        n_used = present.sum(axis=0)
+        enough = n_used >= p
+        lam = np.ones((N.shape[0], p))
+        if enough.any():
+            lam[enough] = np.linalg.eigvalsh(N[enough])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            cond = np.where(enough & (lam[:, 0] > 0), np.sqrt(lam[:, -1] / lam[:, 0]), np.inf)
+        ok = enough & (cond <= max_cond) & (n_used >= min_n)
+        Ninv = np.full_like(N, np.nan)
+        if ok.any():
+            Ninv[ok] = np.linalg.inv(N[ok])
+        coef = np.einsum("tpq,tq->tp", Ninv, b)
+        coef_all[:, ts] = coef.T
+        rows = _table_rows(Ninv, cond, ok, n_used, p)
+        if noise2 is not None:
+            # P = Ninv A^T W: the noise covariance is Ninv (A^T W diag(noise^2) W A) Ninv
+            M2 = ((wt * wt * noise2[:, None]).T @ outer).reshape(-1, p, p)
+            Cn = Ninv @ M2 @ Ninv
+            for name, i, j in _ENTRIES[:4]:
+                rows[f"{name}_noise"] = np.where(ok, Cn[:, i, j], np.nan)
+        for key, val in rows.items():
+            out.setdefault(key, []).append(val)
+        if residuals:
+            res = np.where(present, xc - A @ coef.T, 0.0)
+            dof = n_used - p
+            with np.errstate(invalid="ignore", divide="ignore"):
+                chi2[ts] = np.where(ok & (dof > 0), (wt * res * res).sum(axis=0) / dof, np.nan)
+                rms[ts] = np.where(ok, np.sqrt((res * res).sum(axis=0) / n_used), np.nan)
+    table = {key: np.concatenate(val) for key, val in out.items()}
+    table.update(coef=coef_all, chi2=chi2, rms=rms)
+    return table
+
 
 
 def fit_planes(
@@ -170,6 +235,7 @@ def fit_planes(
     *,
     z: np.ndarray | None = None,
     sigma: float | np.ndarray = 1.0,
+    noise: float | np.ndarray | None = None,
     centres: np.ndarray | None = None,
     min_stations: int = 3,
     max_cond: float = 1e6,
@@ -187,11 +253,24 @@ def fit_planes(
     x, y
         Station grid coordinates [m].
     members
-        Station indices of each cluster (at most 62 stations per cluster).
+        Station indices of each cluster (any size; clusters of more than
+        :data:`MAX_PATTERN_BITS` stations are solved time step by time step
+        from their normal equations instead of by missing-data pattern).
     z
         Station elevations [m]; when given, elevation is a fourth regressor.
     sigma
-        Standard uncertainty of one reading, scalar or per station [unit].
+        Standard uncertainty of one reading, scalar or per station [unit]:
+        the weights are ``1/sigma^2`` and the prior covariance
+        ``(A^T W A)^-1``.
+    noise
+        The part of ``sigma`` that is independent from one time step to the
+        next (reading noise), scalar or per station [unit].  When given, the
+        table also holds the covariance of the coefficients due to that part
+        alone (``var_value_noise``, ``var_x_noise``, ``var_y_noise``,
+        ``cov_xy_noise``: ``P diag(noise^2) P^T`` with P the weighted
+        least-squares operator); the rest of the prior covariance comes from
+        errors that persist in time (sensor offsets) and cancels in a
+        tendency.
     centres
         (n_clusters, 2) fit centres [m]; default the member centroid.
     min_stations
@@ -211,8 +290,7 @@ def fit_planes(
     min_n = max(min_stations, p)
     n_c = len(members)
     sizes = np.array([len(m) for m in members], dtype=int)
-    if n_c and sizes.max() > 62:
-        raise ValueError("clusters of more than 62 stations are not supported")
+    noise2 = None if noise is None else np.broadcast_to(np.asarray(noise, float) ** 2, (n_s,))
     # time-major storage (time, cluster) with the clusters in size order: each time chunk is solved in a small
     # cluster-major buffer and copied in transposed, in cache; every later step (budget terms, window sums, the
     # Parquet and NetCDF columns) then reads the arrays in order, and the file writer copies none of them
@@ -238,10 +316,25 @@ def fit_planes(
         if zz is not None:
             W = np.where(np.isfinite(A).all(axis=2), W, 0.0)
             A = np.nan_to_num(A)
+        N2 = None if noise2 is None else noise2[M]
+        if k > MAX_PATTERN_BITS:
+            # too many members for a bit pattern: each time step from its own normal equations
+            for j, col in enumerate(range(rows.start, rows.stop)):  # loop over the (few) wide clusters
+                wide = _fit_wide(vt[M[j]], A[j], W[j], None if N2 is None else N2[j], p=p, min_n=min_n,
+                                 max_cond=max_cond, residuals=residuals, chunk_elements=chunk_elements)
+                coef_all[:, :, col] = wide.pop("coef")
+                pattern[:, col] = n_rows + np.arange(n_t, dtype=np.int32)
+                n_rows += n_t
+                if chi2 is not None:
+                    chi2[:, col] = wide.pop("chi2")
+                if rms is not None:
+                    rms[:, col] = wide.pop("rms")
+                tables.append(wide)
+            continue
         Pf, Nf, cf, okf = _operators(A, W, max_cond)
         Pf = Pf.copy()
         full_ok = okf & ((W > 0).sum(axis=1) >= min_n)
-        tables.append(_table_rows(Nf, cf, full_ok, (W > 0).sum(axis=1), p))
+        tables.append(_table_rows(Nf, cf, full_ok, (W > 0).sum(axis=1), p, Pf, N2))
         full_rows = n_rows + np.arange(len(sel), dtype=np.int32)
         n_rows += len(sel)
         full_code = (1 << k) - 1
@@ -253,7 +346,7 @@ def fit_planes(
         else:
             code_type = np.uint8 if k <= 8 else np.uint16 if k <= 16 else np.uint32 if k <= 32 else np.int64
             code_all = np.zeros((len(sel), n_t), code_type)
-            for j in range(k):  # k is the cluster size (<= 62), not time or stations
+            for j in range(k):  # k is the cluster size (<= MAX_PATTERN_BITS), not time or stations
                 code_all |= present_st[M[:, j]].astype(code_type) << j
             if zz is not None:
                 code_all &= ((W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None].astype(code_type)
@@ -275,7 +368,7 @@ def fit_planes(
                 Pu[solve], Nu[solve], cu[solve], oku[solve] = _operators(A[uc[solve]], W[uc[solve]] * mask[solve],
                                                                          max_cond)
             oku &= nu >= min_n
-            tables.append(_table_rows(Nu, cu, oku, nu, p))
+            tables.append(_table_rows(Nu, cu, oku, nu, p, Pu, None if N2 is None else N2[uc] * mask))
             base_row = n_rows
             n_rows += uniq.size
         # time chunks sized to stay in cache; each chunk is one batched product
@@ -331,9 +424,11 @@ def fit_planes(
         coef_all, pattern = coef_all[:, :, back], pattern[:, back]
         chi2 = None if chi2 is None else chi2[:, back]
         rms = None if rms is None else rms[:, back]
-    table = {key: np.concatenate([t[key] for t in tables]) if tables else np.empty(0) for key in
-             ("var_value", "var_x", "var_y", "cov_xy", "var_z", "cond", "n_used", "reason")}
-    for key in ("var_x", "var_y", "cov_xy"):
+    keys = ["var_value", "var_x", "var_y", "cov_xy", "var_z", "cond", "n_used", "reason"]
+    if noise2 is not None:
+        keys += [f"{name}_noise" for name in NOISE_ENTRIES]
+    table = {key: np.concatenate([t[key] for t in tables]) if tables else np.empty(0) for key in keys}
+    for key in ("var_x", "var_y", "cov_xy") + (("var_x_noise", "var_y_noise", "cov_xy_noise") if noise2 is not None else ()):
         table[key] = table[key] / scale_m ** 2
     table["var_z"] = table["var_z"] / scale_z ** 2
     return PlaneFit(value=coef_all[0], grad_x=coef_all[1], grad_y=coef_all[2],
@@ -341,10 +436,15 @@ def fit_planes(
                     n_params=p)
 
 
-def _table_rows(Ninv: np.ndarray, cond: np.ndarray, ok: np.ndarray, n_used: np.ndarray, p: int) -> dict[str, np.ndarray]:
+def _table_rows(Ninv: np.ndarray, cond: np.ndarray, ok: np.ndarray, n_used: np.ndarray, p: int,
+                P: np.ndarray | None = None, noise2: np.ndarray | None = None) -> dict[str, np.ndarray]:
+    """Per-pattern table rows; with ``P`` (n, p, k) and ``noise2`` (n, k) also the reading-noise covariance."""
     rows: dict[str, np.ndarray] = {}
     for name, i, j in _ENTRIES:
         rows[name] = np.where(ok, Ninv[:, i, j], np.nan) if i < p else np.full(len(ok), np.nan)
+    if noise2 is not None and P is not None:
+        for name, i, j in _ENTRIES[:4]:
+            rows[f"{name}_noise"] = np.where(ok, np.einsum("nk,nk,nk->n", P[:, i], P[:, j], noise2), np.nan)
     rows["cond"] = cond
     rows["n_used"] = n_used.astype(np.int32)
     rows["reason"] = np.where(ok, OK, np.where(n_used >= p, SINGULAR, TOO_FEW)).astype(np.int8)

@@ -6,6 +6,7 @@ import statsmodels.api as sm
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from stationflow import gradient
 from stationflow.gradient import OK, SINGULAR, TOO_FEW, fit_planes, triangle_gradient
 
 from .conftest import equilateral
@@ -214,3 +215,55 @@ def test_fit_and_cluster_means_are_time_major_in_memory():
         assert a.shape == (40, 3) and a.flags["C_CONTIGUOUS"]
     mean, var, n = cluster_mean(vals, membership_matrix(members, 9))
     assert all(a.shape == (40, 3) and a.flags["C_CONTIGUOUS"] for a in (mean, var, n))
+
+
+def _wide_case(seed=1, n=40, n_t=50):
+    rng = np.random.default_rng(seed)
+    x, y = rng.uniform(-2e4, 2e4, n), rng.uniform(-2e4, 2e4, n)
+    z = rng.uniform(0, 500, n)
+    vals = 280 + 1e-4 * x - 2e-4 * y + 0.005 * z + rng.normal(0, 0.1, (n_t, n))
+    vals[rng.random((n_t, n)) < 0.3] = np.nan
+    vals[5, :] = np.nan  # nobody reports
+    vals[6, 3:] = np.nan  # too few report
+    return x, y, z, vals, rng.uniform(0.1, 0.3, n)
+
+
+def test_many_station_clusters_match_the_pattern_solver(monkeypatch):
+    """Clusters above the bit-pattern limit are solved per time step; the numbers are the same."""
+    x, y, z, vals, sig = _wide_case()
+    members = [np.arange(40), np.arange(10), np.arange(3, 30)]
+    a = fit_planes(vals, x, y, members, z=z, sigma=sig, noise=sig / 2)
+    monkeypatch.setattr(gradient, "MAX_PATTERN_BITS", 5)
+    b = fit_planes(vals, x, y, members, z=z, sigma=sig, noise=sig / 2)
+    for name in ("value", "grad_x", "grad_y", "grad_z", "chi2", "var_value", "var_x", "var_y", "cov_xy", "var_z",
+                 "n_used", "reason"):
+        np.testing.assert_allclose(getattr(b, name), getattr(a, name), rtol=1e-8, atol=1e-12, err_msg=name)
+    np.testing.assert_allclose(b.rms, a.rms, rtol=1e-6, atol=1e-9)
+    for name in ("var_value_noise", "var_x_noise", "cov_xy_noise"):
+        np.testing.assert_allclose(b._get(name), a._get(name), rtol=1e-8, atol=1e-14, err_msg=name)
+    assert (a.reason[5] == TOO_FEW).all() and (a.reason[6] == TOO_FEW).all()
+
+
+def test_a_cluster_of_two_thousand_stations_fits_a_linear_field():
+    """No size limit a user can hit (issue: more than 62 stations used to fail)."""
+    rng = np.random.default_rng(4)
+    n = 2000
+    x, y, z = rng.uniform(-6e4, 6e4, n), rng.uniform(-6e4, 6e4, n), rng.uniform(100, 900, n)
+    vals = (281 + 2e-5 * x + 3e-5 * y + 0.004 * z)[None, :] * np.ones((3, 1))
+    vals[1, ::7] = np.nan
+    f = fit_planes(vals, x, y, [np.arange(n)], z=z)
+    np.testing.assert_allclose(f.grad_x[:, 0], 2e-5, rtol=1e-9)
+    np.testing.assert_allclose(f.grad_y[:, 0], 3e-5, rtol=1e-9)
+    np.testing.assert_allclose(f.grad_z[:, 0], 0.004, rtol=1e-9)
+    assert f.n_used[1, 0] == n - len(range(0, n, 7))
+
+
+def test_noise_part_of_the_covariance():
+    """With all of sigma as reading noise the noise covariance is the whole prior; with half, a quarter."""
+    x, y, z, vals, sig = _wide_case(seed=2, n=12, n_t=20)
+    members = [np.arange(3), np.arange(12), np.array([2, 5, 7, 9])]
+    full = fit_planes(vals, x, y, members, sigma=sig, noise=sig)
+    half = fit_planes(vals, x, y, members, sigma=sig, noise=sig / 2)
+    for name in ("var_value", "var_x", "var_y", "cov_xy"):
+        np.testing.assert_allclose(full._get(f"{name}_noise"), getattr(full, name), rtol=1e-9, atol=1e-15)
+        np.testing.assert_allclose(half._get(f"{name}_noise"), getattr(full, name) / 4, rtol=1e-9, atol=1e-15)
