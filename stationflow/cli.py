@@ -169,19 +169,33 @@ def check(
             --obs sample_data/frost/observations.csv \\
             --config sample_data/frost/config.toml --out check_out
     """
-    from .pipeline import run_check
     from .report.outputs import write_check
 
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
         cfg = _config(config)
-        chk = run_check(obs, stations, cfg, progress=report)
+        chk = _checked(obs, stations, cfg, out, report, command="check")
         report("writing outputs")
         write_check(out, chk, inputs={"observations": obs, "stations": stations})
         if not quiet:
             typer.echo(_check_summary(chk, out))
 
     _run(job, quiet=quiet)
+
+
+def _checked(obs: Path, stations: Path | None, cfg, out: Path, report, *, command: str):
+    """``run_check``; when no row is usable, rejected_rows.csv and run.json are written before the error."""
+    from .errors import NoUsableRows
+    from .pipeline import run_check
+
+    try:
+        return run_check(obs, stations, cfg, progress=report)
+    except NoUsableRows as exc:
+        from .report.outputs import write_rejected_only
+
+        write_rejected_only(out, exc.data, inputs={"observations": obs, "stations": stations}, command=command,
+                            config=cfg)
+        raise
 
 
 def _check_summary(chk, out: Path) -> str:
@@ -330,13 +344,13 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     """
     from concurrent.futures import ThreadPoolExecutor
 
-    from .pipeline import budget_to_files, run_check
+    from .pipeline import budget_to_files
     from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
     from .report.painter import Painter
 
     _import_ahead()
     with Painter() as painter, ThreadPoolExecutor(1, thread_name_prefix="stationflow-qc-figure") as side:
-        chk = run_check(obs, stations, cfg, progress=report)
+        chk = _checked(obs, stations, cfg, out, report, command="budget")
         # the QC overview's image is binned on a thread beside the budget's set-up (both only read the
         # checked observations), then drawn by the figure worker
         qc_job = side.submit(submit_qc_figure, painter, out, chk)

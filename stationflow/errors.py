@@ -20,6 +20,14 @@ class IngestError(StationflowError):
     """A station or observation file cannot be read as a whole."""
 
 
+class NoUsableRows(IngestError):
+    """Every row of the observations was rejected; ``data`` holds what was read (for rejected_rows.csv)."""
+
+    def __init__(self, message: str, data: object) -> None:
+        super().__init__(message)
+        self.data = data
+
+
 class GeometryError(StationflowError):
     """The network cannot be used: too few stations, no usable cluster."""
 

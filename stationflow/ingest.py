@@ -68,6 +68,7 @@ class IngestResult:
     units: dict[str, str]
     sources: list[str]
     ignored_columns: list[str] = field(default_factory=list)
+    reading: dict[str, str] = field(default_factory=dict)  # how the file was read (time layout, zone): for run.json
 
     @property
     def variables(self) -> list[str]:
@@ -337,9 +338,13 @@ def parse_times(
     time_format: str,
     timezone: str,
     station: pd.Series,
-) -> tuple[pd.Series, np.ndarray, list[str | None]]:
-    """Parse times to UTC. Returns (times, bad_mask, reasons per bad row).
+) -> tuple[pd.Series, np.ndarray, list[str | None], str]:
+    """Parse times to UTC. Returns (times, bad_mask, reasons per bad row, layout used).
 
+    Without ``time_format`` the layout is found from the data
+    (:func:`stationflow.times.detect_layout`: ISO 8601 or a common
+    spreadsheet/logger layout, day-first against month-first settled by the
+    data).
     Naive times are local times in ``timezone``.  At a daylight-saving
     fall-back, an ambiguous local time is resolved from the station's order
     in the file (first occurrence summer time, second standard time); if
@@ -348,7 +353,9 @@ def parse_times(
     """
     n = len(frame)
     reasons: list[str | None] = [None] * n
+    layout = time_format or "ISO8601"
     if time_columns:
+        layout = "columns: " + ", ".join(time_columns)
         parts = {}
         for key, colname in zip(("year", "month", "day", "hour", "minute", "second"), time_columns):
             parts[key] = pd.to_numeric(_as_text(frame[colname]), errors="coerce")
@@ -372,7 +379,7 @@ def parse_times(
             reasons_t: list[str | None] = [None] * n
             for i in np.flatnonzero(missing_t):
                 reasons_t[i] = "time is missing"
-            return t, missing_t, reasons_t
+            return t, missing_t, reasons_t, "ISO8601"
         if pd.api.types.is_datetime64_dtype(col.dtype):
             naive = col
             aware_mask = np.zeros(n, bool)
@@ -380,7 +387,11 @@ def parse_times(
         else:
             text = _as_text(col)
             aware_mask = text.str.contains(_TZ_SUFFIX, regex=True).fillna(False).to_numpy(bool)
-            fmt = time_format or "ISO8601"
+            if not time_format and not aware_mask.all():
+                from .times import detect_layout
+
+                layout = detect_layout(text.where(~aware_mask), station)
+            fmt = layout
             naive = pd.to_datetime(text.where(~aware_mask), errors="coerce", format=fmt)
             if aware_mask.any():
                 aware = pd.to_datetime(text.where(aware_mask), errors="coerce", utc=True,
@@ -431,7 +442,7 @@ def parse_times(
                 raw = frame[time_column].iloc[i]
                 reasons[i] = ("time is missing" if (pd.isna(raw) or str(raw).strip() == "")
                               else f"cannot parse time {_clip(raw)!r}")
-    return out, bad, reasons
+    return out, bad, reasons, layout
 
 
 def _resolve_ambiguous(naive: pd.Series, station: pd.Series, ambiguous: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -846,7 +857,7 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     n = len(frame)
     reasons = _Reasons()
     station = _station_labels(frame["station_id"])
-    times, bad_t, t_reasons = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
+    times, bad_t, t_reasons, layout = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
                                           time_format=oc["time_format"], timezone=oc["timezone"], station=station)
     for i in np.flatnonzero(bad_t):
         reasons.add(i, t_reasons[i])
@@ -953,7 +964,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     if pd.DatetimeIndex(good["time"]).unit != "ns":
         good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
     units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
-    return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored)
+    return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored,
+                        reading={"time_layout": layout, "timezone": oc["timezone"]})
 
 
 class _Reasons(dict):

@@ -21,7 +21,7 @@ import pandas as pd
 from . import align, geometry, ingest, qc
 from .budget import REGIMES, BudgetSettings, compute_budget, row_mean_var
 from .config import Config
-from .errors import ConfigError, GeometryError
+from .errors import ConfigError, GeometryError, NoUsableRows
 from .summary import BudgetSummary
 from .thermo import KAPPA, P_REF, standard_pressure
 from .variables import CANONICAL, si_unit
@@ -85,7 +85,11 @@ def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, p
     progress("reading observations")
     data = ingest.read(obs, stations, config)
     if data.observations.empty:
-        raise ingest.IngestError(f"{obs}: no usable rows ({data.accounting['rows_rejected']} rejected; see rejected_rows.csv)")
+        raise NoUsableRows(f"{obs}: no usable rows ({data.accounting['rows_rejected']} rejected; "
+                           "see rejected_rows.csv for the line and reason of each)", data)
+    slips = qc.unit_slips(data.observations, config["observations"]["units"], qc.thresholds(config)["range"])
+    if slips:
+        raise ConfigError(f"{obs}: {slips[0]}" + (f" (and {len(slips) - 1} more variable(s))" if len(slips) > 1 else ""))
     progress("quality control")
     result = qc.run_qc(data.observations, data.stations, config)
     flags = qc.flag_table(data.observations, result)

@@ -27,3 +27,68 @@ def test_networks_with_elevations_of_any_size_run_with_the_default_config(runner
     assert table["cluster"].nunique() > n  # a Delaunay network has about two triangles per station
     acc = json.loads((tmp_path / "out" / "run.json").read_text())["accounting"]
     assert acc["rows_accepted"] == len(obs)
+
+
+@pytest.mark.parametrize("layout, tz", [
+    ("%m/%d/%Y %H:%M", "America/Los_Angeles"),  # a US logger export in local time
+    ("%d/%m/%Y %H:%M", "Europe/Vienna"),
+    ("%d.%m.%Y %H:%M:%S", "+01:00"),
+    ("%m/%d/%y %I:%M %p", "America/Denver"),
+    ("%Y/%m/%d %H:%M", "UTC"),
+    ("%Y-%m-%d %H:%M", "Asia/Tokyo"),
+])
+def test_common_time_layouts_are_read_without_a_time_format(runner, tmp_path, layout, tz):
+    st, obs = linear_night(8, 40, seed=3, elevation=False, missing=0.0, start="2026-04-10 20:00", tz=tz)
+    paths = write_export(tmp_path / "in", st, obs, time_format=layout, tz=tz)
+    res = _run(runner, paths, tmp_path / "out", command="check")
+    assert res.exit_code == 0, res.stderr
+    run = json.loads((tmp_path / "out" / "run.json").read_text())
+    assert run["accounting"]["rows_rejected"] == 0
+    assert run["reading"]["time_layout"] in (layout, "ISO8601")
+    flags = pd.read_csv(tmp_path / "out" / "qc_flags.csv")
+    assert len(flags) == 0  # times read right: no step or spike fires on a smooth field
+
+
+def test_month_first_is_settled_by_a_continuous_night(runner, tmp_path):
+    """04/10 then 04/11 after midnight: only month-first runs on without a jump of weeks."""
+    st, obs = linear_night(6, 36, seed=5, elevation=False, missing=0.0, start="2026-04-10 20:00", tz="America/Chicago")
+    paths = write_export(tmp_path / "in", st, obs, time_format="%m/%d/%Y %H:%M", tz="America/Chicago")
+    assert "04/10/2026 20:00" in paths["obs"].read_text()
+    res = _run(runner, paths, tmp_path / "out", command="check")
+    assert res.exit_code == 0, res.stderr
+    assert json.loads((tmp_path / "out" / "run.json").read_text())["reading"]["time_layout"] == "%m/%d/%Y %H:%M"
+
+
+def test_undecidable_day_and_month_name_both_layouts_and_the_key(runner, tmp_path):
+    st, obs = linear_night(6, 12, seed=5, elevation=False, missing=0.0, start="2026-04-10 08:00")  # one morning
+    paths = write_export(tmp_path / "in", st, obs, time_format="%m/%d/%Y %H:%M")
+    res = _run(runner, paths, tmp_path / "out", command="check")
+    assert res.exit_code == 2
+    line = res.stderr.strip()
+    assert line.startswith("error:") and "\n" not in line
+    assert '"%m/%d/%Y %H:%M"' in line and '"%d/%m/%Y %H:%M"' in line and "observations.time_format" in line
+
+
+def test_unit_slip_is_caught_with_its_fix(runner, tmp_path):
+    st, obs = linear_night(10, 6, seed=2)
+    paths = write_export(tmp_path / "in", st, obs)
+    paths["config"].write_text("", encoding="utf-8")  # degC values, no unit declared: read as kelvin
+    for command in ("check", "budget"):
+        res = _run(runner, paths, tmp_path / command, command=command)
+        assert res.exit_code == 2, res.stderr
+        assert "observations.units.air_temperature" in res.stderr and '"degC"' in res.stderr
+        assert len(res.stderr.strip().splitlines()) == 1
+
+
+def test_no_usable_rows_still_writes_the_files_the_error_names(runner, tmp_path):
+    st, obs = linear_night(5, 4, seed=2, elevation=False)
+    paths = write_export(tmp_path / "in", st, obs, time_format="%H:%M on day %j")  # no date a reader can use
+    for command in ("check", "budget"):
+        out = tmp_path / command
+        res = _run(runner, paths, out, command=command)
+        assert res.exit_code == 2
+        assert "rejected_rows.csv" in res.stderr
+        rej = pd.read_csv(out / "rejected_rows.csv")
+        assert len(rej) == len(obs) and rej["reason"].str.contains("cannot parse time").all()
+        acc = json.loads((out / "run.json").read_text())["accounting"]
+        assert acc["rows_rejected"] == acc["rows_read"] == len(obs)

@@ -180,7 +180,7 @@ def test_empty_station_id(runner, tmp_path):
 
 
 def test_quoted_fields_and_crlf(runner, tmp_path):
-    text = 'station_id,time,air_temperature\r\n"A","2026-01-01T00:00Z","1.5"\r\n"B, north","2026-01-01T00:00Z",2\r\n'
+    text = 'station_id,time,air_temperature\r\n"A","2026-01-01T00:00Z","271.5"\r\n"B, north","2026-01-01T00:00Z",272\r\n'
     res = _check(runner, tmp_path, text.encode())
     _rejected(res, tmp_path, {3: "station 'B, north' is not in the stations file"}, accepted=1)
 

@@ -94,10 +94,21 @@ def write_check(out: Path, chk, *, inputs: dict, command: str = "check", figure:
         qc_counts = {f"{r.variable}:{r.test}": int(r.values) for r in chk.per_test.itertuples()}
         extra = {"qc": {"tests_fired": qc_counts, "flags": _flag_counts(chk)},
                  "stations": int(len(chk.data.stations)), "variables": chk.data.variables,
-                 "units": chk.data.units, "ignored_columns": chk.data.ignored_columns}
+                 "units": chk.data.units, "ignored_columns": chk.data.ignored_columns, "reading": chk.data.reading}
         rec = run_record(command, inputs, chk.config, chk.data.accounting, extra)
         rec["outputs"] = [p.name for p in written] + ["run.json"]
         written.append(files.write_json(rec, out / "run.json"))
+    return written
+
+
+def write_rejected_only(out: Path, data, *, inputs: dict, command: str, config) -> list[Path]:
+    """rejected_rows.csv and run.json of a run that stopped because no row could be used."""
+    out.mkdir(parents=True, exist_ok=True)
+    written = [files.write_rejected(data.rejected, out / "rejected_rows.csv")]
+    rec = run_record(command, inputs, config, data.accounting, {"status": "failed: no usable rows",
+                                                                "reading": data.reading})
+    rec["outputs"] = ["rejected_rows.csv", "run.json"]
+    written.append(files.write_json(rec, out / "run.json"))
     return written
 
 
@@ -159,7 +170,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     flags = _flag_counts(run.check)
     pieces = _report_pieces(run, lines, inputs, flags) if report else None
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
-        "variable": run.variable, "quantity": run.quantity, "unit": run.unit,
+        "variable": run.variable, "quantity": run.quantity, "unit": run.unit, "reading": run.check.data.reading,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
         "sensor_uncertainty": run.settings.sigma, "wind_uncertainty": run.settings.wind_sigma,
         "projection": run.network.crs,
