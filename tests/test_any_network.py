@@ -17,7 +17,7 @@ def _run(runner, paths, out, command="budget", config=True):
     return runner.invoke(app, args)
 
 
-@pytest.mark.parametrize("n", [70, 300])
+@pytest.mark.parametrize("n", [70, 300, 2000])
 def test_networks_with_elevations_of_any_size_run_with_the_default_config(runner, tmp_path, n):
     st, obs = linear_night(n, 12, seed=n)
     paths = write_export(tmp_path / "in", st, obs)
