@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from .errormodel import curvature_bias, curvature_geometry
 from .gradient import PlaneFit, fit_planes
 from .ingest import _timezone, is_utc
 
@@ -41,11 +42,17 @@ ERROR_MODELS = ("prior", "posterior", "larger")
 
 @dataclass
 class BudgetSettings:
-    """Settings of :func:`compute_budget` (from the ``[budget]`` and ``[uncertainty]`` tables)."""
+    """Settings of :func:`compute_budget` (from the ``[budget]`` and ``[uncertainty]`` tables).
 
-    sigma: float = 0.2  # standard uncertainty of one reading [unit]
+    The error model (see :mod:`stationflow.errormodel`): ``sigma`` is each
+    sensor's reading noise (scalar or per station; independent in time),
+    ``offset`` the standard uncertainty of each sensor's persistent offset
+    (enters values and gradients, cancels in tendencies).
+    """
+
+    sigma: float | np.ndarray = 0.2  # reading noise of one reading [unit], scalar or per station
     wind_sigma: float = 0.5  # standard uncertainty of u and v [m s-1]
-    calibration: float = 0.0  # constant per-sensor offset uncertainty [unit]
+    offset: float = 0.0  # persistent per-sensor offset uncertainty [unit]
     error_model: str = "larger"
     half_window: int = 1  # h, in analysis intervals
     interval_s: float = 600.0
@@ -54,6 +61,15 @@ class BudgetSettings:
     dominance: float = 0.67
     min_rate: float = 0.0  # [unit h-1]
     vertical_regression: bool = False
+    model_error: bool = True  # add the neighbour-spread model error to gradient variances
+    model_half_window: int = 0  # smoothing of the model error, steps each side (0: one hour, at least half_window)
+
+    @property
+    def model_steps(self) -> int:
+        """Half-width [steps] of the model error's smoothing: persistent errors are averaged over longer than a window."""
+        if self.model_half_window > 0:
+            return int(self.model_half_window)
+        return max(int(self.half_window), int(round(3600.0 / self.interval_s)))
 
 
 def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True, variance: bool = True,
@@ -238,23 +254,27 @@ def shift(a: np.ndarray, k: int) -> np.ndarray:
 
 def classify(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, advection_se: np.ndarray,
              residual_se: np.ndarray, *, significance: float = 2.0, dominance: float = 0.67,
-             min_rate: float = 0.0) -> np.ndarray:
+             min_rate: float = 0.0, tendency_se: np.ndarray | None = None) -> np.ndarray:
     """Regime per element: advective, in_situ, mixed, steady or undetermined.
 
     A term is significant when ``|term| > max(significance * se, min_rate)``.
     Both significant: the advective share ``f = |A| / (|A| + |R|)`` decides
     (``f >= dominance`` advective, ``f <= 1 - dominance`` in situ, else
     mixed).  One significant: that one, if it is also the larger; else mixed.
-    Neither: steady (too small to tell).  Any term missing: undetermined.
+    Neither: steady (too small to tell) - unless the tendency itself is
+    significant (with ``tendency_se``): then the change goes to one part when
+    the other's bound ``|term| + significance * se`` is below
+    ``(1 - dominance)`` of it (in calm air the advection's bound is small), and
+    is undetermined otherwise.  Any term missing: undetermined.
     """
     return np.asarray(REGIMES, dtype=object)[classify_codes(
         tendency, advection, residual, advection_se, residual_se, significance=significance, dominance=dominance,
-        min_rate=min_rate)]
+        min_rate=min_rate, tendency_se=tendency_se)]
 
 
 def classify_codes(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, advection_se: np.ndarray,
                    residual_se: np.ndarray, *, significance: float = 2.0, dominance: float = 0.67,
-                   min_rate: float = 0.0) -> np.ndarray:
+                   min_rate: float = 0.0, tendency_se: np.ndarray | None = None) -> np.ndarray:
     """:func:`classify` as int8 codes into :data:`REGIMES` (compact for large runs)."""
     a, r = np.abs(advection), np.abs(residual)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -271,6 +291,19 @@ def classify_codes(tendency: np.ndarray, advection: np.ndarray, residual: np.nda
     only_r = sig_r & ~sig_a
     out[only_a] = np.where(share[only_a] >= 0.5, adv, mix)
     out[only_r] = np.where(share[only_r] <= 0.5, ins, mix)
+    if tendency_se is not None:
+        # a clearly significant change is never 'steady': when neither part is significant on its own, the
+        # bound of one part (|term| + significance * se) below half the change gives the change to the other;
+        # otherwise the split cannot be told
+        t = np.abs(tendency)
+        with np.errstate(invalid="ignore"):
+            sig_t = t > np.fmax(significance * tendency_se, min_rate)
+            neither = sig_t & ~sig_a & ~sig_r
+            a_small = a + significance * advection_se < (1 - dominance) * t
+            r_small = r + significance * residual_se < (1 - dominance) * t
+        out[neither] = undet
+        out[neither & a_small] = ins
+        out[neither & r_small] = adv
     undetermined = ~(np.isfinite(tendency) & np.isfinite(advection) & np.isfinite(advection_se) & np.isfinite(residual_se))
     out[undetermined] = undet
     return out
@@ -288,6 +321,7 @@ def compute_budget(
     z: np.ndarray | None = None,
     wind_speed: np.ndarray | None = None,
     fit: PlaneFit | None = None,
+    lapse: tuple[np.ndarray, np.ndarray, np.ndarray, float] | None = None,
 ) -> dict[str, np.ndarray]:
     """Budget terms per (time, cluster) from gridded values and winds.
 
@@ -304,6 +338,13 @@ def compute_budget(
         Station indices per cluster.
     fit
         A precomputed plane fit of ``values`` (to share work); else fitted here.
+    lapse
+        ``(gamma, gamma_var, gamma_var_noise, z_ref)`` when a measured
+        vertical gradient gamma(t) [unit m-1] (variance, and its part from
+        reading noise alone [unit2 m-2]) was removed from
+        ``values`` as ``gamma (z - z_ref)`` before the fit: the cluster value
+        is put back at the members' mean height and the gamma error is
+        carried into values and gradients (needs ``z``).
 
     Returns a dict of (n_times, n_clusters) arrays: value, tendency,
     advection, residual and their standard errors [unit h-1], grad_x,
@@ -313,16 +354,39 @@ def compute_budget(
     [unit per 100 m].
     """
     s = settings
+    n_s = values.shape[1]
+    noise = np.broadcast_to(np.asarray(s.sigma, float), (n_s,))
+    total = np.sqrt(noise ** 2 + s.offset ** 2)
     if fit is None:
-        fit = fit_planes(values, x, y, members, z=z if s.vertical_regression else None, sigma=s.sigma,
+        fit = fit_planes(values, x, y, members, z=z if s.vertical_regression else None, sigma=total, noise=noise,
                          min_stations=s.min_stations, residuals=True)
     if s.error_model not in ERROR_MODELS:
         raise ValueError(f"error_model must be one of {ERROR_MODELS}")
+    h = max(1, int(s.half_window))
     scale = fit.error_scale(s.error_model)
-    vx, vy, cxy = fit.var_x * scale, fit.var_y * scale, fit.cov_xy * scale
-    va = fit.var_value * scale
+    # prior covariances: the whole (noise + offsets) and the reading-noise part alone
+    vx, vy, cxy, va = fit.var_x, fit.var_y, fit.cov_xy, fit.var_value
+    if "var_x_noise" in fit.table:
+        vxn, vyn, cxyn, van = (fit._get(f"{k}_noise") for k in ("var_x", "var_y", "cov_xy", "var_value"))
+    else:  # a fit made without the noise split: all of it is noise
+        vxn, vyn, cxyn, van = vx, vy, cxy, va
     gx, gy = fit.grad_x, fit.grad_y
-    memb = membership_matrix(members, values.shape[1])
+    if lapse is not None:  # a measured vertical gradient was removed before the fit: its error, and the value back
+        gamma, gamma_var, gamma_var_noise, z_ref = lapse
+        dz, zx, zy = _cluster_terrain(x, y, z, members, z_ref)
+        gv, gn = gamma_var[:, None], gamma_var_noise[:, None]
+        vx, vy, cxy = vx + zx * zx * gv, vy + zy * zy * gv, cxy + zx * zy * gv
+        vxn, vyn, cxyn = vxn + zx * zx * gn, vyn + zy * zy * gn, cxyn + zx * zy * gn
+        va, van = va + dz * dz * gv, van + dz * dz * gn
+    # model error: the departure from a plane, persistent in time (neighbour spread; chi-square where dof > 0)
+    model_var = np.zeros_like(gx)
+    if s.model_error:
+        geom = curvature_geometry(x, y, members, n_s)
+        bx, by, structure = curvature_bias(gx, gy, vx, vy, geom, s.model_steps)
+        model_var = 0.5 * (bx * bx + by * by) + structure
+    excess = (scale - 1.0) * 0.5 * (vx + vy)  # chi-square above 1: what the residuals show beyond the noise
+    model_var = np.fmax(model_var, np.where(np.isfinite(excess), excess, 0.0))
+    memb = membership_matrix(members, n_s)
     um, uvar, n_w = cluster_mean(u, memb)
     vm, vvar, _ = cluster_mean(v, memb, counts=(np.isfinite(u), n_w))
     nw = np.maximum(n_w, 1)
@@ -333,21 +397,29 @@ def compute_budget(
     se2_v = np.where(n_w == 0, s.wind_sigma ** 2 + np.nan_to_num(vvar), se2_v)
     hour = 3600.0
     adv = -(um * gx + vm * gy) * hour
-    var_adv = (um * um * vx + vm * vm * vy + 2 * um * vm * cxy + gx * gx * se2_u + gy * gy * se2_v) * hour ** 2
-    h = max(1, int(s.half_window))
+    # errors independent in time (reading noise, wind) average down over the window; persistent ones
+    # (offsets, model error) do not
+    var_noise = (um * um * vxn + vm * vm * vyn + 2 * um * vm * cxyn + gx * gx * se2_u + gy * gy * se2_v) * hour ** 2
+    var_persist = (um * um * (vx - vxn + model_var) + vm * vm * (vy - vyn + model_var)
+                   + 2 * um * vm * (cxy - cxyn)) * hour ** 2
+    var_adv = var_noise + var_persist
     span = 2 * h * s.interval_s
     # bridge short gaps (a station missing for a step or two) so one gap does not void a whole window
     gap = max(1, h // 2)
-    value, va = fill_short_gaps_like([fit.value, va], gap)
+    value = fit.value if lapse is None else fit.value + lapse[0][:, None] * dz
+    value, va, van = fill_short_gaps_like([value, va, van], gap)
     filled = ~np.isfinite(fit.value) & np.isfinite(value)
     a_plus, a_minus = shift(value, h), shift(value, -h)
     tendency = (a_plus - a_minus) / span * hour
-    tendency_var = (shift(va, h) + shift(va, -h)) / span ** 2 * hour ** 2
-    adv_mean, adv_var = window_mean_and_variance(adv, var_adv, h)
-    if s.calibration > 0:
-        ratio = (s.calibration / s.sigma) ** 2  # prior variances are sigma^2 (A^T A)^-1
-        ub, vb = window_mean(um, h), window_mean(vm, h)
-        adv_var = adv_var + (ub * ub * fit.var_x + vb * vb * fit.var_y + 2 * ub * vb * fit.cov_xy) * ratio * hour ** 2
+    # offsets cancel in the difference when the same stations were used at both ends; else they count too
+    sizes = np.array([len(m) for m in members])[None, :]
+    complete = (fit.n_used == sizes).astype(float)
+    same = ((shift(fit.pattern.astype(float), h) == shift(fit.pattern.astype(float), -h))
+            | ((shift(complete, h) == 1.0) & (shift(complete, -h) == 1.0)))
+    end_var = van + np.where(same, 0.0, 1.0) * (va - van)
+    tendency_var = (shift(end_var, h) + shift(end_var, -h)) / span ** 2 * hour ** 2
+    adv_mean, adv_var_noise = window_mean_and_variance(adv, var_noise, h)
+    adv_var = adv_var_noise + window_mean(var_persist, h)
     residual = tendency - adv_mean
     res_var = tendency_var + adv_var
     out = {
@@ -357,7 +429,8 @@ def compute_budget(
         "residual": residual, "residual_se": np.sqrt(res_var),
         "advection_instant": adv, "advection_instant_se": np.sqrt(var_adv),
         "grad_x": gx * 1000.0, "grad_y": gy * 1000.0,
-        "grad_x_se": np.sqrt(vx) * 1000.0, "grad_y_se": np.sqrt(vy) * 1000.0,
+        "grad_x_se": np.sqrt(vx + model_var) * 1000.0, "grad_y_se": np.sqrt(vy + model_var) * 1000.0,
+        "model_error": np.sqrt(model_var) * 1000.0,
         "u": um, "v": vm, "u_se": np.sqrt(se2_u), "v_se": np.sqrt(se2_v),
         "n_used": fit.n_used, "n_wind": n_w.astype(np.int32), "dof": fit.dof,
         "rms": fit.rms if fit.rms is not None else np.full_like(gx, np.nan),
@@ -367,6 +440,9 @@ def compute_budget(
     if fit.grad_z is not None:
         out["vertical_gradient"] = fit.grad_z * 100.0
         out["vertical_gradient_se"] = np.sqrt(fit.var_z * scale) * 100.0
+    elif lapse is not None:
+        out["vertical_gradient"] = np.broadcast_to(lapse[0][:, None] * 100.0, gx.shape).copy()
+        out["vertical_gradient_se"] = np.broadcast_to(np.sqrt(lapse[1])[:, None] * 100.0, gx.shape).copy()
     if wind_speed is not None:
         sp, _, _ = cluster_mean(wind_speed, memb, variance=False)
         out["wind_speed"] = sp
@@ -379,8 +455,19 @@ def compute_budget(
         for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
             out[name] = kin[name]
     out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
-                                   significance=s.significance, dominance=s.dominance, min_rate=s.min_rate)
+                                   significance=s.significance, dominance=s.dominance, min_rate=s.min_rate,
+                                   tendency_se=out["tendency_se"])
     return out
+
+
+def _cluster_terrain(x: np.ndarray, y: np.ndarray, z: np.ndarray, members: list[np.ndarray], z_ref: float
+                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per cluster (as (1, n_clusters) rows): mean member height above ``z_ref`` [m] and the terrain's
+    plane gradient (dz/dx, dz/dy) [1] through the members."""
+    zz = np.asarray(z, float)
+    f = fit_planes(zz[None, :], x, y, members, residuals=False)
+    dz = np.array([zz[np.asarray(m)].mean() for m in members]) - z_ref  # once per run and cluster, not per time
+    return dz[None, :], np.nan_to_num(f.grad_x), np.nan_to_num(f.grad_y)
 
 
 def periods_from_arrays(times: pd.DatetimeIndex, clusters: np.ndarray, terms: dict[str, np.ndarray], *, unit: str,

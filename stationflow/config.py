@@ -35,6 +35,7 @@ FREE_TABLES = {
     "observations.columns",
     "observations.units",
     "uncertainty.sensor",
+    "uncertainty.offset",
     "qc.range",
     "qc.step",
     "qc.persistence",
@@ -64,9 +65,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "units": Key({}, (dict,), "canonical name -> unit of the source values"),
     },
     "uncertainty": {
-        "sensor": Key({}, (dict,), "variable -> standard uncertainty of one reading, in the variable's SI (or declared) unit"),
+        "sensor": Key({}, (dict,), "variable -> reading noise: the random error of one reading, independent from report to report, "
+                                   "in the variable's SI (or declared) unit (default: learned per station from the data; see docs/method.md)"),
+        "offset": Key({}, (dict,), "variable -> standard uncertainty of each sensor's persistent offset (enters values and gradients, "
+                                   "cancels in tendencies) (default per variable: air_temperature 0.1 K, see docs/method.md)"),
         "wind_component": Key(0.5, (int, float), "standard uncertainty of u and v [m s-1] (WMO-No. 8 Annex 1.E, from memory)"),
-        "calibration": Key(0.0, (int, float), "standard uncertainty of each sensor's constant offset, correlated in time [variable unit]"),
+        "calibration": Key(0.0, (int, float), "older spelling of uncertainty.offset for the budgeted variable (0 = not set) [variable unit]"),
         "gradient_error": Key("larger", (str,), "prior: from sensor uncertainty; posterior: from fit residuals where dof > 0; larger: the larger of the two",
                               ("prior", "posterior", "larger")),
     },
@@ -101,14 +105,19 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
     "budget": {
         "variable": Key("air_temperature", (str,), "the scalar to budget (air_temperature or a user scalar such as pm2_5)"),
-        "vertical": Key("potential_temperature", (str,), "elevation handling for air temperature",
-                        ("potential_temperature", "regression", "none")),
+        "vertical": Key("auto", (str,), "elevation handling for air temperature: measured = a vertical gradient fitted per time "
+                                        "over the whole network is removed before the horizontal fits; auto = measured where "
+                                        "station heights differ by more than 30 m, else none",
+                        ("auto", "measured", "potential_temperature", "regression", "none")),
         "interval": Key("", (str,), "analysis time step, e.g. '10min' (default: inferred from the data)"),
-        "window": Key("", (str,), "centred window for tendencies and averaged terms (default: 3 intervals)"),
+        "window": Key("", (str,), "centred window for tendencies and averaged terms (default: from the data, the shortest "
+                                  "whose tendency error is at most budget.min_rate, capped at 60 min)"),
         "min_stations": Key(3, (int,), "fewest good stations a plane fit may use"),
         "significance": Key(2.0, (int, float), "a term counts when it exceeds this many standard errors (REFERENCES 2.1, common practice)"),
         "dominance": Key(0.67, (int, float), "share |A|/(|A|+|R|) above which the change is advective (below 1 - this: in situ) (common practice)"),
-        "min_rate": Key(0.0, (int, float), "terms smaller than this are never significant [variable unit per hour]"),
+        "min_rate": Key(None, (int, float), "terms smaller than this are never significant, and the tendency error the default "
+                                            "window aims at [variable unit per hour] (default per variable: 0.25 K/h for "
+                                            "temperatures, 1 %/h humidity, 20 Pa/h pressure, 1 unit/h concentrations; common practice)"),
         "chunk": Key("", (str,), "process this much time at once, e.g. '7D' (default: automatic, about half a million cluster-steps per partition; results are identical)"),
     },
 }
@@ -134,6 +143,8 @@ class Config:
 
 
 def _check_type(where: str, value: Any, key: Key) -> Any:
+    if value is None and key.default is None:  # "not set" (a resolved configuration read back)
+        return value
     if isinstance(value, bool) and bool not in key.types:
         raise ConfigError(f"{where} must be {_type_names(key.types)}, got {value!r}")
     if not isinstance(value, key.types):
@@ -185,9 +196,13 @@ def _validate_values(cfg: Config, where0: str) -> None:
     for k, v in cfg["observations"]["units"].items():
         if not isinstance(v, str):
             raise ConfigError(f"{where0}observations.units.{k} must be a string, got {v!r}")
-    for k, v in cfg["uncertainty"]["sensor"].items():
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or v <= 0:
-            raise ConfigError(f"{where0}uncertainty.sensor.{k} must be a positive number, got {v!r}")
+    for table in ("sensor", "offset"):
+        for k, v in cfg["uncertainty"][table].items():
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0 or (table == "sensor" and v == 0):
+                raise ConfigError(f"{where0}uncertainty.{table}.{k} must be a {'positive' if table == 'sensor' else 'non-negative'} "
+                                  f"number, got {v!r}")
+    if cfg["budget"]["min_rate"] is not None and cfg["budget"]["min_rate"] < 0:
+        raise ConfigError(f"{where0}budget.min_rate must not be negative")
     for k, v in cfg["qc"]["range"].items():
         if not (isinstance(v, list) and len(v) == 2 and all(isinstance(x, (int, float)) for x in v) and v[0] < v[1]):
             raise ConfigError(f"{where0}qc.range.{k} must be [low, high] with low < high, got {v!r}")

@@ -161,7 +161,7 @@ def design(x: np.ndarray, y: np.ndarray, z: np.ndarray | None, members: np.ndarr
 
 _ENTRIES = (("var_value", 0, 0), ("var_x", 1, 1), ("var_y", 2, 2), ("cov_xy", 1, 2), ("var_z", 3, 3))
 #: the table entries that also come as a reading-noise part (``<name>_noise``)
-NOISE_ENTRIES = ("var_value", "var_x", "var_y", "cov_xy")
+NOISE_ENTRIES = ("var_value", "var_x", "var_y", "cov_xy", "var_z")
 #: clusters with more members than this are solved per time step, not per missing-data bit pattern
 MAX_PATTERN_BITS = 62
 
@@ -211,8 +211,8 @@ def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | 
             # P = Ninv A^T W: the noise covariance is Ninv (A^T W diag(noise^2) W A) Ninv
             M2 = ((wt * wt * noise2[:, None]).T @ outer).reshape(-1, p, p)
             Cn = Ninv @ M2 @ Ninv
-            for name, i, j in _ENTRIES[:4]:
-                rows[f"{name}_noise"] = np.where(ok, Cn[:, i, j], np.nan)
+            for name, i, j in _ENTRIES:
+                rows[f"{name}_noise"] = np.where(ok, Cn[:, i, j], np.nan) if i < p else np.full(len(ok), np.nan)
         for key, val in rows.items():
             out.setdefault(key, []).append(val)
         if residuals:
@@ -431,6 +431,8 @@ def fit_planes(
     for key in ("var_x", "var_y", "cov_xy") + (("var_x_noise", "var_y_noise", "cov_xy_noise") if noise2 is not None else ()):
         table[key] = table[key] / scale_m ** 2
     table["var_z"] = table["var_z"] / scale_z ** 2
+    if noise2 is not None:
+        table["var_z_noise"] = table["var_z_noise"] / scale_z ** 2
     return PlaneFit(value=coef_all[0], grad_x=coef_all[1], grad_y=coef_all[2],
                     grad_z=None if zz is None else coef_all[3], pattern=pattern, table=table, chi2=chi2, rms=rms,
                     n_params=p)
@@ -443,8 +445,9 @@ def _table_rows(Ninv: np.ndarray, cond: np.ndarray, ok: np.ndarray, n_used: np.n
     for name, i, j in _ENTRIES:
         rows[name] = np.where(ok, Ninv[:, i, j], np.nan) if i < p else np.full(len(ok), np.nan)
     if noise2 is not None and P is not None:
-        for name, i, j in _ENTRIES[:4]:
-            rows[f"{name}_noise"] = np.where(ok, np.einsum("nk,nk,nk->n", P[:, i], P[:, j], noise2), np.nan)
+        for name, i, j in _ENTRIES:
+            rows[f"{name}_noise"] = (np.where(ok, np.einsum("nk,nk,nk->n", P[:, i], P[:, j], noise2), np.nan) if i < p
+                                     else np.full(len(ok), np.nan))
     rows["cond"] = cond
     rows["n_used"] = n_used.astype(np.int32)
     rows["reason"] = np.where(ok, OK, np.where(n_used >= p, SINGULAR, TOO_FEW)).astype(np.int8)

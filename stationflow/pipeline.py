@@ -18,8 +18,9 @@ from typing import Callable
 import numpy as np
 import pandas as pd
 
-from . import align, geometry, ingest, qc
+from . import align, errormodel, geometry, ingest, qc
 from .budget import REGIMES, BudgetSettings, compute_budget, row_mean_var
+from .gradient import fit_planes
 from .config import Config
 from .errors import ConfigError, GeometryError, NoUsableRows
 from .summary import BudgetSummary
@@ -78,6 +79,7 @@ class BudgetRun:
     extras: dict = field(default_factory=dict)
     summary: BudgetSummary | None = None
     layout: Layout | None = None
+    choices: dict = field(default_factory=dict)  # what the defaults resolved to (see BudgetPlan.choices)
 
 
 def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, progress: Progress = _noop) -> CheckResult:
@@ -103,26 +105,26 @@ def run_network(stations: pd.DataFrame, config: Config) -> geometry.Network:
     return geometry.build_network(stations, config)
 
 
-def default_sigma(variable: str, config: Config) -> float:
-    """Sensor standard uncertainty for ``variable`` [its unit].
-
-    Configured value, else: air temperature 0.2 K (WMO-No. 8 Annex 1.E,
-    achievable accuracy, from memory); dew point 0.3 K and relative humidity
-    3 % (same source, from memory); particulate matter 2 ug m-3 (common
-    practice for calibrated low-cost sensors at 5-60 min).
-    """
+def declared_noise(variable: str, config: Config) -> float | None:
+    """The reading noise declared for ``variable`` (``uncertainty.sensor``) [its unit], or None (learned)."""
     table = config["uncertainty"]["sensor"]
+    return float(table[variable]) if variable in table else None
+
+
+def offset_uncertainty(variable: str, config: Config) -> tuple[float, str]:
+    """(standard uncertainty of each sensor's persistent offset [unit], where it comes from).
+
+    ``uncertainty.offset.<variable>``, else the older ``uncertainty.calibration``
+    (when non-zero), else the documented default of
+    :func:`stationflow.errormodel.default_offset`.
+    """
+    table = config["uncertainty"]["offset"]
     if variable in table:
-        return float(table[variable])
-    defaults = {"air_temperature": 0.2, "dew_point_temperature": 0.3, "relative_humidity": 3.0,
-                "air_pressure": 15.0, "wind_speed": 0.5}
-    if variable in defaults:
-        return defaults[variable]
-    if qc._is_pm(variable):
-        return 2.0
-    raise ConfigError(
-        f"no sensor uncertainty for {variable!r}; set uncertainty.sensor.{variable} = <standard uncertainty of one reading>"
-    )
+        return float(table[variable]), "uncertainty.offset"
+    if config["uncertainty"]["calibration"] > 0:
+        return float(config["uncertainty"]["calibration"]), "uncertainty.calibration"
+    value, source = errormodel.default_offset(variable)
+    return value, f"default: {source}"
 
 
 def _quantity(obs: pd.DataFrame, stations: pd.DataFrame, variable: str, vertical: str, usable: dict) -> tuple[np.ndarray, str]:
@@ -145,19 +147,33 @@ def _quantity(obs: pd.DataFrame, stations: pd.DataFrame, variable: str, vertical
     return x * (P_REF / p) ** KAPPA, "potential_temperature"
 
 
-def _durations(config: Config, observations: pd.DataFrame, known: pd.Timedelta | None = None
-               ) -> tuple[pd.Timedelta, pd.Timedelta, int]:
-    """(interval, window, half-window in steps); ``known``: the reporting interval QC already found."""
+def _interval(config: Config, observations: pd.DataFrame, known: pd.Timedelta | None = None) -> pd.Timedelta:
+    """The analysis interval; ``known``: the reporting interval QC already found."""
     bc = config["budget"]
     if bc["interval"]:
-        interval = align.parse_duration(bc["interval"])
-    else:
-        interval = known if known is not None else align.infer_interval(observations)
-    window = align.parse_duration(bc["window"]) if bc["window"] else 2 * interval
-    h = int(round(window / interval / 2))
-    if h < 1:
-        raise ConfigError(f"budget.window = {bc['window'] or window} must be at least two analysis intervals ({2 * interval})")
-    return interval, 2 * h * interval, h
+        return align.parse_duration(bc["interval"])
+    return known if known is not None else align.infer_interval(observations)
+
+
+def _window(config: Config, interval: pd.Timedelta, value_noise_var: float, min_rate: float
+            ) -> tuple[pd.Timedelta, int, str]:
+    """(window, half-window in steps, how it was chosen).
+
+    ``budget.window`` when set; else the shortest window whose tendency
+    error from reading noise (``value_noise_var``, the median over clusters
+    of the centre value's noise variance) is at most ``min_rate``, capped
+    at :data:`stationflow.errormodel.MAX_AUTO_WINDOW_S` (:func:`errormodel.window_steps`).
+    """
+    text = config["budget"]["window"]
+    if text:
+        window = align.parse_duration(text)
+        h = int(round(window / interval / 2))
+        if h < 1:
+            raise ConfigError(f"budget.window = {text} must be at least two analysis intervals ({2 * interval})")
+        return 2 * h * interval, h, "budget.window"
+    h = errormodel.window_steps(value_noise_var, interval.total_seconds(), min_rate)
+    return 2 * h * interval, h, (f"from the data: tendency error from reading noise at most {min_rate:g} per hour "
+                                 f"(capped at {errormodel.MAX_AUTO_WINDOW_S / 60:g} min)")
 
 
 def run_budget(obs: str | Path, stations: str | Path | None, config: Config, *, variable: str | None = None,
@@ -199,6 +215,8 @@ class BudgetPlan:
     window: pd.Timedelta
     times: pd.DatetimeIndex
     frame: pd.DataFrame
+    lapse_stations: np.ndarray | None = None  # with vertical = measured: stations of the network-wide vertical fit
+    choices: dict = field(default_factory=dict)  # what the defaults resolved to (vertical, window, noise...): run.json
 
     @cached_property
     def layout(self) -> Layout:
@@ -210,7 +228,7 @@ class BudgetPlan:
     def halo(self) -> int:
         """Analysis steps needed on each side of a partition for identical results."""
         h = self.settings.half_window
-        return 2 * h + 1
+        return 2 * h + 1 + (self.settings.model_steps if self.settings.model_error else 0)
 
 
 def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None,
@@ -223,10 +241,10 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         have = [v for v in data.variables if v not in ("wind_speed", "wind_from_direction")]
         raise ConfigError(f"variable {var!r} is not in the observations; available: {', '.join(have) or 'none'} "
                           "(choose one with --variable or budget.variable)")
-    vertical = bc["vertical"]
     usable = chk.qc.usable(use_suspect=config["qc"]["use_suspect"])
     obs = data.observations
     progress("preparing the budget")
+    vertical = _vertical_mode(bc["vertical"], var, data.stations)
     quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
     mask_q = usable.get(var, np.ones(len(obs), bool))
     has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
@@ -236,29 +254,45 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         raise GeometryError(f"only {len(st_var)} station(s) have good {var} values; a plane needs at least 3")
     progress("building the network")
     net = geometry.build_network(st_var, config)
-    if vertical == "regression" and var == "air_temperature" and len(net.usable) and net.usable["n_stations"].min() < 4:
+    if vertical == "regression" and len(net.usable) and net.usable["n_stations"].min() < 4:
         raise ConfigError("budget.vertical = 'regression' needs clusters of at least 4 stations; "
-                          "set network.clusters = 'nearest' (with network.k >= 5) or use 'potential_temperature'")
+                          "set network.clusters = 'nearest' (with network.k >= 5) or use 'measured'")
     if net.usable.empty:
         raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
                             "and relax [network] min_angle/min_shape/max_side_km")
-    interval, window, h = _durations(config, obs, chk.qc.interval)
+    interval = _interval(config, obs, chk.qc.interval)
     ids = st_all["station_id"].tolist()
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
     index = {s: i for i, s in enumerate(ids)}
     ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
     to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
     members = [to_full[net.members[i]] for i in ok_rows]
+    # the error model: reading noise per station (declared or learned), offsets (declared or default)
+    codes = pd.Categorical(obs["station_id"].astype(str), categories=ids).codes.astype(np.int64)
+    time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    noise, noise_info = _reading_noise(var, quantity, config, codes, time_ns,
+                                       np.where(mask_q, quantity_values, np.nan), len(ids))
+    offset, offset_source = offset_uncertainty(var, config)
+    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
+    total = np.sqrt(noise ** 2 + offset ** 2)
+    typical = fit_planes(np.zeros((1, len(ids))), x_all, y_all, members, sigma=total, noise=noise, residuals=False)
+    value_noise = float(np.nanmedian(typical._get("var_value_noise"))) if members else np.nan
+    window, h, window_source = _window(config, interval, value_noise, min_rate)
     settings = BudgetSettings(
-        sigma=default_sigma(var, config), wind_sigma=float(config["uncertainty"]["wind_component"]),
-        calibration=float(config["uncertainty"]["calibration"]), error_model=config["uncertainty"]["gradient_error"],
+        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"]), offset=offset,
+        error_model=config["uncertainty"]["gradient_error"],
         half_window=h, interval_s=interval.total_seconds(), min_stations=bc["min_stations"],
-        significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=float(bc["min_rate"]),
-        vertical_regression=(vertical == "regression" and var == "air_temperature"),
+        significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
+        vertical_regression=(vertical == "regression"),
     )
     z = st_all["elevation"].to_numpy(float)
     if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
         raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
+    lapse_stations = None
+    if vertical == "measured":
+        lapse_stations = np.flatnonzero(np.isfinite(z) & np.isin(np.arange(len(ids)), np.unique(codes[mask_q])))
+    choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
+               "min_rate": min_rate, "offset": offset, "offset_source": offset_source, **noise_info}
     # the rows and values the estimator may use
     frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
     frame["q"] = np.where(mask_q, quantity_values, np.nan)
@@ -290,7 +324,40 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     clusters = net.clusters.iloc[ok_rows].reset_index(drop=True)
     unit = si_unit(var, data.units.get(var))
     return BudgetPlan(var, quantity, unit, net, clusters, members, ids, x_all, y_all, z, conv, masts, settings,
-                      interval, window, times, frame)
+                      interval, window, times, frame, lapse_stations, choices)
+
+
+#: height range above which ``vertical = "auto"`` measures the vertical gradient [m] (the QC spatial test's own limit)
+AUTO_VERTICAL_RANGE_M = 30.0
+
+
+def _vertical_mode(setting: str, variable: str, stations: pd.DataFrame) -> str:
+    """The elevation handling in force: ``setting``, with ``auto`` resolved from the station heights.
+
+    Only air temperature has a vertical treatment; ``auto`` is ``measured``
+    where at least 6 stations have heights spanning more than
+    :data:`AUTO_VERTICAL_RANGE_M`, else ``none``.
+    """
+    if variable != "air_temperature":
+        return "none"
+    if setting != "auto":
+        return setting
+    z = stations["elevation"].to_numpy(float) if "elevation" in stations else np.full(len(stations), np.nan)
+    z = z[np.isfinite(z)]
+    return "measured" if z.size >= 6 and np.ptp(z) > AUTO_VERTICAL_RANGE_M else "none"
+
+
+def _reading_noise(variable: str, quantity: str, config: Config, codes: np.ndarray, time_ns: np.ndarray,
+                   values: np.ndarray, n_stations: int) -> tuple[np.ndarray, dict]:
+    """Reading noise per station [unit]: declared, or learned (:func:`errormodel.reading_noise`); and what to record."""
+    declared = declared_noise(variable, config)
+    if declared is not None:
+        return np.full(n_stations, declared), {"noise_source": "uncertainty.sensor"}
+    noise, resolution, count = errormodel.reading_noise(codes, time_ns, values, n_stations,
+                                                        floor=errormodel.noise_floor(quantity))
+    return noise, {"noise_source": "learned from second differences of each station's series",
+                   "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
+                   "resolution_per_station": resolution}
 
 
 def _masts(stations: pd.DataFrame, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
@@ -329,13 +396,47 @@ def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: in
     else:
         ug = vg = np.full(values.shape, np.nan)
         speed = None
-    terms = compute_budget(values, ug, vg, plan.x, plan.y, plan.members, plan.settings, z=plan.z, wind_speed=speed)
+    lapse = None
+    if plan.lapse_stations is not None:
+        values, lapse = remove_lapse(values, plan)
+    terms = compute_budget(values, ug, vg, plan.x, plan.y, plan.members, plan.settings, z=plan.z, wind_speed=speed,
+                           lapse=lapse)
     if plan.masts is not None and "t_air" in grid.values:
         upper, partner = plan.masts
         t = grid.values["t_air"]
         inv, _ = row_mean_var(t[:, upper] - t[:, partner])  # no warnings machinery: this may run on a thread
         terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
     return terms
+
+
+def remove_lapse(values: np.ndarray, plan: BudgetPlan
+                 ) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray, np.ndarray, float]]:
+    """Take the measured vertical gradient out of ``values`` (n_times, n_stations) before the horizontal fits.
+
+    One plane with height as a regressor is fitted per time through every
+    station with a height (:func:`gradient.fit_planes`, the same estimator;
+    networks of any size), its vertical coefficient gamma(t) [unit m-1]
+    with the larger of its prior and posterior variance (the whole network
+    is rarely a plane) and the variance from reading noise alone (what a
+    tendency sees: the misfit of the network plane persists in time), and
+    ``values - gamma (z - z_ref)`` returned with ``(gamma, variance,
+    noise variance, z_ref)``; z_ref is the mean height of those stations.
+    Times with no vertical fit keep gamma = 0 with variance 0 (their
+    horizontal fits lack stations too).
+    """
+    idx = plan.lapse_stations
+    s = plan.settings
+    noise = np.broadcast_to(np.asarray(s.sigma, float), (len(plan.ids),))[idx]
+    net = fit_planes(values[:, idx], plan.x[idx], plan.y[idx], [np.arange(idx.size)], z=plan.z[idx],
+                     sigma=np.sqrt(noise ** 2 + s.offset ** 2), noise=noise, min_stations=6, residuals=True)
+    gamma = net.grad_z[:, 0]
+    var = net.var_z[:, 0] * net.error_scale("larger")[:, 0]
+    var_noise = net._get("var_z_noise")[:, 0]
+    fine = np.isfinite(gamma) & np.isfinite(var) & np.isfinite(var_noise)
+    gamma, var, var_noise = (np.where(fine, a, 0.0) for a in (gamma, var, var_noise))
+    z_ref = float(np.mean(plan.z[idx]))
+    dz = np.where(np.isfinite(plan.z), plan.z - z_ref, np.nan)
+    return values - gamma[:, None] * dz[None, :], (gamma, var, var_noise, z_ref)
 
 
 def partitions(n_times: int, steps: int) -> list[tuple[int, int]]:
@@ -459,7 +560,7 @@ def finish(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, pieces: l
     extras = {"inversion": summary.inversion.copy()} if summary.inversion is not None else {}
     periods = summary.periods(f"{plan.unit} h-1")
     return BudgetRun(chk, plan.network, ds, table, periods, plan.variable, plan.quantity, plan.unit, plan.interval,
-                     plan.window, plan.settings, extras, summary, layout)
+                     plan.window, plan.settings, extras, summary, layout, plan.choices)
 
 
 def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None = None,
@@ -530,6 +631,7 @@ LONG_NAMES = {
     "rms": "residual RMS of the plane fit",
     "cond": "condition number of the scaled design",
     "vertical_gradient": "fitted vertical gradient (positive: inversion)",
+    "model_error": "standard error of each gradient component from the departure of the field from a plane",
     "vertical_gradient_se": "standard error of vertical_gradient",
     "wind_speed": "cluster mean of station wind speeds (scalar mean)",
     "wind_from_direction": "direction the cluster-mean wind blows from (true north)",
@@ -553,6 +655,7 @@ def _units(unit: str) -> dict[str, str]:
         "advection_instant_se": rate, "grad_x": grad, "grad_y": grad, "grad_x_se": grad, "grad_y_se": grad,
         "u": "m s-1", "v": "m s-1", "u_se": "m s-1", "v_se": "m s-1", "n_used": "1", "n_wind": "1", "dof": "1",
         "rms": unit, "cond": "1", "vertical_gradient": f"{unit} (100 m)-1", "vertical_gradient_se": f"{unit} (100 m)-1",
+        "model_error": grad,
         "wind_speed": "m s-1", "wind_from_direction": "degree", "gradient_bearing": "degree", "inversion": "K",
         "regime": "1", "gap_filled": "1",
         "divergence": "s-1", "divergence_se": "s-1", "vorticity": "s-1", "vorticity_se": "s-1",

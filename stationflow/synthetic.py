@@ -241,13 +241,16 @@ def local_xy(stations: pd.DataFrame, lat0: float, lon0: float) -> tuple[Array, A
 
 def sample(f: Field, stations: pd.DataFrame, times: pd.DatetimeIndex, *, variable: str = "air_temperature",
            noise: float = 0.0, wind_noise: float = 0.0, direction_noise: float = 0.0, seed: int = 0,
-           missing: float = 0.0, start: pd.Timestamp | None = None, wind: bool = True) -> pd.DataFrame:
+           missing: float = 0.0, start: pd.Timestamp | None = None, wind: bool = True,
+           offset: float = 0.0) -> pd.DataFrame:
     """Sample a field at the stations: tidy observations in SI units.
 
     ``times`` are UTC; the field's clock starts at ``start`` (default the
     first time).  Wind is reported as speed and direction from the field's
     uniform wind plus noise; ``missing`` is the fraction of rows dropped at
-    random.
+    random; ``offset``: each station reads high or low by a constant drawn
+    from a normal distribution of this standard deviation (calibration
+    offsets, as real sensors have).
     """
     rng = np.random.default_rng(seed)
     start = start or times[0]
@@ -259,6 +262,8 @@ def sample(f: Field, stations: pd.DataFrame, times: pd.DatetimeIndex, *, variabl
     h = np.broadcast_to(stations["sensor_height"].to_numpy(float), (n_t, n_s))
     tt = np.broadcast_to(ts[:, None], (n_t, n_s))
     val = f.value(x, y, z, tt, h) + rng.normal(0, noise, (n_t, n_s)) if noise else f.value(x, y, z, tt, h)
+    if offset:
+        val = val + np.random.default_rng(seed + 7919).normal(0, offset, n_s)[None, :]
     out = pd.DataFrame({"station_id": np.tile(stations["station_id"].to_numpy(), n_t),
                         "time": np.repeat(times, n_s), variable: np.asarray(val).reshape(-1)})
     if wind:
@@ -446,7 +451,7 @@ def frost_valley(seed: int = 7) -> Scenario:
     f = LinearField(base=273.15 + 12.0, gx=gx, gy=gy, u=u, v=v, source=source, gamma=gamma, z_ref=460.0,
                     cold_pool=pool, z_floor=z_floor, pool_depth=20.0, mast_inversion=inv)
     times = pd.date_range(start, periods=15 * 12 + 1, freq="5min")
-    obs = sample(f, st, times, noise=0.12, wind_noise=0.25, direction_noise=0.0, seed=seed, start=start)
+    obs = sample(f, st, times, noise=0.12, wind_noise=0.25, direction_noise=0.0, seed=seed, start=start, offset=0.1)
     # the upper mast sensor carries temperature only
     upper = obs["station_id"] == "HV07U"
     obs.loc[upper, ["wind_speed", "wind_from_direction"]] = np.nan
@@ -470,9 +475,7 @@ def frost_valley(seed: int = 7) -> Scenario:
                          "columns": {"Site": "station_id", "LocalTime": "time", "Temp_F": "air_temperature",
                                      "WindSpd_mph": "wind_speed", "WindDir": "wind_from_direction"},
                          "units": {"air_temperature": "degF", "wind_speed": "mph", "wind_from_direction": "degree"}},
-        "uncertainty": {"sensor": {"air_temperature": 0.15}},
-        "budget": {"variable": "air_temperature", "vertical": "potential_temperature", "interval": "5min", "window": "60min",
-                   "min_rate": 0.2},
+        "budget": {"variable": "air_temperature"},
     }
     return Scenario("frost", st, obs, f, start, lat0, lon0, "air_temperature", fault_table, phases, config)
 
@@ -509,7 +512,7 @@ def smoke_town(seed: int = 11) -> Scenario:
                    u=u, v=v, source=lambda t: src(t) / 3600.0, blob_centre=(500.0, -500.0), blob_width_m=7000.0)
     times = pd.date_range(start, periods=12 * 12 + 1, freq="5min")
     rng = np.random.default_rng(seed)
-    pm = sample(f, st, times, variable="pm2_5", noise=0.0, seed=seed, start=start, wind=False)
+    pm = sample(f, st, times, variable="pm2_5", noise=0.0, seed=seed, start=start, wind=False, offset=1.0)
     noise_sd = 1.5 + 0.05 * pm["pm2_5"].to_numpy()
     pm["pm2_5"] = np.round(np.maximum(pm["pm2_5"].to_numpy() + rng.normal(0, 1, len(pm)) * noise_sd, 0.0), 1)
     w = sample(f, met.assign(elevation=700.0), times, variable="air_temperature", noise=0.0, wind_noise=0.3,
@@ -529,8 +532,7 @@ def smoke_town(seed: int = 11) -> Scenario:
         "observations": {"columns": {"sensor": "station_id", "timestamp_utc": "time", "pm25_ugm3": "pm2_5",
                                      "wind_ms": "wind_speed", "wind_dir": "wind_from_direction"},
                          "units": {"pm2_5": "ug/m3"}},
-        "uncertainty": {"sensor": {"pm2_5": 2.5}},
-        "budget": {"variable": "pm2_5", "interval": "5min", "window": "60min", "min_rate": 2.0},
+        "budget": {"variable": "pm2_5"},
     }
     return Scenario("town", stations, obs, f, start, lat0, lon0, "pm2_5", pd.DataFrame(columns=["station_id", "time", "variable", "kind"]),
                     phases, config)

@@ -68,7 +68,8 @@ def test_netcdf_is_cf_style(frost_out):
         assert ds["tendency"].attrs["units"] == "K h-1"
         assert ds["grad_x"].attrs["units"] == "K km-1"
         assert ds["u"].attrs["units"] == "m s-1"
-        assert ds["value"].attrs["standard_name"] == "air_potential_temperature"
+        assert ds["value"].attrs["standard_name"] == "air_temperature"  # the lapse is measured, not assumed
+        assert ds["model_error"].attrs["units"] == "K km-1"
         assert ds["latitude"].attrs["units"] == "degrees_north"
         # regime as CF flags: integer codes with flag_values and flag_meanings
         assert ds["regime"].attrs["flag_meanings"].split() == list(REGIMES)
@@ -82,9 +83,12 @@ def test_run_json_accounting(frost_out):
     run = json.loads((frost_out / "run.json").read_text())
     acc = run["accounting"]
     assert acc["rows_read"] == acc["rows_accepted"] + acc["rows_rejected"] == 2686
-    assert run["config"]["budget"]["window"] == "60min"
+    assert run["config"]["budget"]["window"] == ""  # untuned: chosen from the data and said so
+    assert run["window"] == "30min" and run["window_source"].startswith("from the data")
     assert run["versions"]["numpy"] and run["variable"] == "air_temperature"
-    assert run["quantity"] == "potential_temperature"
+    assert run["quantity"] == "air_temperature" and run["vertical"] == {"setting": "auto", "used": "measured"}
+    noise = run["error_model"]["reading_noise_per_station"]
+    assert len(noise) == 15 and 0.08 < run["error_model"]["reading_noise_median"] < 0.16  # the demo's noise is 0.12 K
 
 
 def test_qc_flags_csv_contract(frost_out):
@@ -201,7 +205,7 @@ def test_disk_full_while_writing_is_exit_2_and_leaves_no_budget_files(tmp_path, 
 
 def test_regression_needs_bigger_clusters(tmp_path, runner):
     cfg = tmp_path / "c.toml"
-    cfg.write_text((FROST / "config.toml").read_text().replace('vertical = "potential_temperature"', 'vertical = "regression"'))
+    cfg.write_text((FROST / "config.toml").read_text().replace('[budget]', '[budget]\nvertical = "regression"'))
     res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
                               "--config", str(cfg), "--out", str(tmp_path / "o")])
     assert res.exit_code == 2 and "needs clusters of at least 4 stations" in res.stderr

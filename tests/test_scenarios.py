@@ -42,6 +42,8 @@ def town_run():
 
 
 def _joined(run, sc, quantity=None):
+    if quantity is None and run.quantity == "potential_temperature":
+        quantity = synthetic.potential_temperature_field(sc.field)
     truth = sc.cluster_truth(run.table, half_window=run.settings.half_window, quantity=quantity)
     d = run.table.merge(truth, on=["time", "cluster"])
     return d.dropna(subset=["advection", "advection_true", "residual", "residual_true"])
@@ -53,16 +55,19 @@ def _phase(d, phase):
 
 def test_frost_phases_and_truth(frost_run):
     run, sc = frost_run
-    d = _joined(run, sc, synthetic.potential_temperature_field(sc.field))
+    d = _joined(run, sc)
+    assert run.choices["vertical"] == "measured"  # untuned: heights differ by ~180 m, so the lapse is measured
     front, calm = sc.phases
     f = _phase(d, front)
-    # the evening front: carried in. Truth about -1.9 K/h of advection; recovered to 0.2 K/h (median)
+    # the evening front: carried in. Truth about -1.9 K/h of advection; recovered to 0.35 K/h (median) with the
+    # sensors' 0.1 K offsets (at 5 km and 5.5 m/s an offset of 0.1 K alone is worth about 0.3 K/h of advection)
     assert (f["regime"] == "advective").mean() > 0.9
-    assert np.median(np.abs(f["advection"] - f["advection_true"])) < 0.2
+    assert np.median(np.abs(f["advection"] - f["advection_true"])) < 0.35
     assert np.mean(np.abs(f["advection"] - f["advection_true"]) <= 1.96 * f["advection_se"]) > 0.9
     c = _phase(d, calm)
     # the calm night: made in place; the plane model is weakest here (cold pool), so looser tolerances
-    assert (c["regime"] == "in_situ").mean() > 0.7
+    assert (c["regime"] == "in_situ").mean() > 0.8
+    assert (c["regime"] == "steady").mean() < 0.1  # a clear cooling is not called steady
     assert np.median(np.abs(c["residual"] - c["residual_true"])) < 0.4
     assert c["residual"].median() < -0.5
 
@@ -95,12 +100,16 @@ def test_town_phases_and_truth(town_run):
     arrive, leave, evening = sc.phases
     for phase in (arrive, leave):
         p = _phase(d, phase)
-        assert (p["regime"] == "advective").mean() > 0.7, phase["name"]
+        # with sensor offsets of ~1 ug/m3 at 2-3 km spacing, not every row can be split; those that are, are right
+        determined = p[p["regime"] != "undetermined"]
+        assert len(determined) > 0.5 * len(p), phase["name"]
+        assert (determined["regime"] == "advective").mean() > 0.9, phase["name"]
         rel = np.median(np.abs(p["advection"] - p["advection_true"])) / np.median(np.abs(p["advection_true"]))
         assert rel < 0.25, (phase["name"], rel)
     assert _phase(d, arrive)["advection"].median() > 10 and _phase(d, leave)["advection"].median() < -10
     e = _phase(d, evening)
-    assert (e["regime"] == "in_situ").mean() > 0.6
+    determined = e[e["regime"] != "undetermined"]
+    assert len(determined) > 0.5 * len(e) and (determined["regime"] == "in_situ").mean() > 0.85
     assert e["residual"].median() > 5
     # the bearing toward higher PM2.5 during the arrival points back upwind (west, about 270 degrees)
     b = _phase(run.table, arrive)["gradient_bearing"].dropna()

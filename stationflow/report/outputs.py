@@ -172,7 +172,11 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit, "reading": run.check.data.reading,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
-        "sensor_uncertainty": run.settings.sigma, "wind_uncertainty": run.settings.wind_sigma,
+        "sensor_uncertainty": float(np.median(np.hypot(run.settings.sigma, run.settings.offset))),
+        "wind_uncertainty": run.settings.wind_sigma,
+        "error_model": error_model_record(run),
+        "vertical": {"setting": run.choices.get("vertical_setting"), "used": run.choices.get("vertical")},
+        "window_source": run.choices.get("window_source"), "min_rate": run.settings.min_rate,
         "projection": run.network.crs,
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
@@ -206,8 +210,8 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         ("Period", f"{pd.Timestamp(t0):%Y-%m-%d %H:%M} to {pd.Timestamp(t1):%Y-%m-%d %H:%M} UTC"),
         ("Quantity fitted", f"{quantity} [{run.unit}]"),
         ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
-        ("Sensor uncertainty", f"{run.settings.sigma:g} {run.unit} per reading; wind components "
-                               f"{run.settings.wind_sigma:g} m/s"),
+        ("Analysis step / window chosen", run.choices.get("window_source", "")),
+        ("Sensor errors", noise_sentence(run)),
     ]
     bs = run.summary
     counts = bs.regime_counts()
@@ -239,17 +243,52 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         "fitted per cluster and time to the good values, giving the centre value and the horizontal gradient with its covariance.",
         "Tendency: centred difference of the centre value over the window. Advection: -(u dT/dx + v dT/dy) with "
         "the cluster-mean wind, averaged over the same window. Residual (in situ) = tendency - advection.",
-        "Uncertainty: first-order propagation of sensor noise (gradient covariance, wind error, tendency error). "
-        "Sensor offsets that are constant in time are not in the error bars unless uncertainty.calibration is set.",
+        "Uncertainty: first-order propagation of three parts. Reading noise (learned per station from its series "
+        "unless declared) enters values, gradients and tendencies; sensor offsets enter values and gradients but cancel "
+        "in tendencies; the model error (how far neighbouring clusters' gradients disagree beyond the noise, smoothed "
+        "over an hour: the field is not a plane) enters gradients and advection. See docs/method.md.",
         f"Regime: a term counts when it exceeds {run.settings.significance:g} standard errors"
         f"{f' and {run.settings.min_rate:g} {run.unit}/h' if run.settings.min_rate else ''}; the advective share "
         f"|A|/(|A|+|R|) >= {run.settings.dominance:g} is advective, <= {1 - run.settings.dominance:.2f} in situ, between: mixed.",
     ]
+    if run.choices.get("vertical") == "measured":
+        method.append("Station heights differ: a vertical gradient was fitted per time over the whole network and removed "
+                      "before the horizontal fits (its error is carried into the gradients); it is the vertical_gradient "
+                      "column (positive: an inversion).")
     if run.quantity == "potential_temperature":
         method.append("Air temperature was converted to potential temperature (pressure observed or from the standard "
                       "atmosphere at the station elevation) so that height differences do not pose as horizontal gradients.")
     title = f"stationflow budget: {run.variable.replace('_', ' ')}"
     return dict(title=title, summary=summary, periods=lines, quality=quality, cluster_table=ct, method=method)
+
+
+def error_model_record(run) -> dict:
+    """The error model in force, for run.json: reading noise per station, offsets, model error."""
+    st = list(run.check.data.stations["station_id"].astype(str))
+    noise = np.broadcast_to(np.asarray(run.settings.sigma, float), (len(st),))
+    rec = {"reading_noise_source": run.choices.get("noise_source", ""),
+           "reading_noise_median": float(np.median(noise)),
+           "reading_noise_per_station": {sid: round(float(n), 6) for sid, n in zip(st, noise)},
+           "offset": run.settings.offset, "offset_source": run.choices.get("offset_source", ""),
+           "model_error": "neighbour spread of cluster gradients beyond the noise, smoothed over "
+                          f"{2 * run.settings.model_steps + 1} steps" if run.settings.model_error else "off"}
+    return rec
+
+
+def noise_sentence(run) -> str:
+    """One sentence on the sensor errors for the report, naming stations far noisier than their peers."""
+    st = np.asarray(run.check.data.stations["station_id"].astype(str))
+    noise = np.broadcast_to(np.asarray(run.settings.sigma, float), (len(st),))
+    med = float(np.median(noise))
+    text = (f"reading noise {med:.3g} {run.unit} (median; {run.choices.get('noise_source', 'declared')}), offsets "
+            f"{run.settings.offset:g} {run.unit} ({run.choices.get('offset_source', '')}); wind components "
+            f"{run.settings.wind_sigma:g} m/s")
+    loud = np.flatnonzero(noise > 3 * med) if med > 0 else np.zeros(0, int)
+    if loud.size:
+        worst = loud[np.argsort(-noise[loud])][:5]
+        text += (f". Noisier than 3x the median (check these sensors): "
+                 + ", ".join(f"{st[i]} {noise[i]:.3g}" for i in worst) + (f" and {loud.size - 5} more" if loud.size > 5 else ""))
+    return text
 
 
 def _report(out: Path, pieces: dict, figs) -> Path:

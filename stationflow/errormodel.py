@@ -1,0 +1,259 @@
+"""The error model: what each sensor's error is made of, learned from the data where not declared.
+
+A sensor's error has two parts (JCGM 100:2008, the GUM, section 5.2 on
+correlated input quantities: an error common to two readings cancels in their
+difference):
+
+- **reading noise** [unit]: random and independent from one report to the
+  next.  It enters the value, the gradient and the tendency.  Unless declared
+  (``uncertainty.sensor``), it is learned per station from the robust spread
+  of the series' second differences: for white noise of standard deviation
+  s, ``x[t-1] - 2 x[t] + x[t+1]`` has standard deviation ``sqrt(6) s``
+  (median absolute value / 0.6745 estimates a normal standard deviation,
+  Hampel 1974).  It is floored by the reported resolution q of the values
+  (rounding error ``q / sqrt(12)``, GUM F.2.2.1) and by :data:`NOISE_FLOOR`.
+- **offset** [unit]: a persistent calibration error, constant over a run.  It
+  enters the value and the gradient (and so the advection) but cancels in a
+  tendency.  Declared (``uncertainty.offset``, or the older
+  ``uncertainty.calibration``) or the per-variable default :data:`DEFAULT_OFFSET`.
+
+A third part is not a property of a sensor: **model error**, the departure
+of the field from a plane at the scale of a cluster (curvature, cold pools,
+fronts narrower than the station spacing, and offsets larger than declared).
+:func:`neighbour_spread` estimates it from the network itself: where clusters
+share stations, their gradients would agree up to noise if the field were a
+plane; the excess of their squared differences over what the noise explains
+is the model-error variance of a gradient (Spencer and Doswell 2001 compare
+neighbouring triangle estimates in the same spirit).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+#: smallest reading noise a learned estimate may take [variable unit] (a logger's last digit; common practice)
+NOISE_FLOOR = {"air_temperature": 0.01, "potential_temperature": 0.01, "dew_point_temperature": 0.01,
+               "relative_humidity": 0.1, "air_pressure": 1.0, "wind_speed": 0.05}
+#: the same for concentrations and other user scalars [their unit]
+NOISE_FLOOR_OTHER = 0.01
+
+#: default standard uncertainty of each sensor's persistent offset [variable unit], with its source
+DEFAULT_OFFSET: dict[str, tuple[float, str]] = {
+    "air_temperature": (0.1, "field-calibrated thermometers, common practice; WMO-No. 8 (2018) Annex 1.A gives 0.1 K "
+                             "as the required and 0.2 K as the achievable uncertainty (from memory)"),
+    "dew_point_temperature": (0.2, "common practice for capacitive hygrometers after calibration"),
+    "relative_humidity": (2.0, "common practice (%); WMO-No. 8 achievable 1-3 % (from memory)"),
+    "air_pressure": (15.0, "common practice (Pa); WMO-No. 8 achievable 0.15 hPa (from memory)"),
+    "wind_speed": (0.3, "common practice (m s-1)"),
+}
+#: concentrations (PM2.5 and other user scalars): offset after co-location, in their unit (common practice)
+DEFAULT_OFFSET_OTHER = (1.0, "common practice after a co-location calibration; EPA/600/R-20/280 allows intercepts "
+                             "within +-5 ug m-3 (from memory)")
+#: fewest second differences a station needs for its own noise estimate (else the network median)
+MIN_DIFFERENCES = 10
+
+
+#: default smallest rate that counts as a change [unit h-1], and the tendency error the window is sized for
+DEFAULT_MIN_RATE = {"air_temperature": 0.25, "dew_point_temperature": 0.25, "relative_humidity": 1.0,
+                    "air_pressure": 20.0, "wind_speed": 0.5}
+#: the same for concentrations and other user scalars [unit h-1]
+DEFAULT_MIN_RATE_OTHER = 1.0
+#: longest window chosen from the data (a frost night changes within the hour; common practice)
+MAX_AUTO_WINDOW_S = 3600.0
+
+
+def default_min_rate(variable: str) -> float:
+    """Smallest rate that counts for ``variable`` when ``budget.min_rate`` is not set [unit h-1] (common practice:
+    frost staff act on cooling of 0.5-2 K/h; a 0.25 K/h floor resolves them)."""
+    return DEFAULT_MIN_RATE.get(variable, DEFAULT_MIN_RATE_OTHER)
+
+
+def window_steps(value_noise_var: float, interval_s: float, target_se: float, *,
+                 max_window_s: float = MAX_AUTO_WINDOW_S) -> int:
+    """Half-window h [steps] so that the tendency's standard error is at most ``target_se`` [unit h-1].
+
+    The centred difference over 2h steps has standard error
+    ``sqrt(2 var) / (2 h dt)`` from reading noise alone (offsets cancel).
+    At least 1 step; at most ``max_window_s`` (or one step each side when
+    the interval itself is longer).
+    """
+    dt_h = interval_s / 3600.0
+    if not (np.isfinite(value_noise_var) and target_se > 0):
+        need = 1
+    else:
+        need = int(np.ceil(np.sqrt(2.0 * value_noise_var) / (2.0 * dt_h * target_se)))
+    cap = max(1, int(np.floor(max_window_s / interval_s / 2.0 + 1e-9)))
+    return int(min(max(need, 1), cap))
+
+
+def default_offset(variable: str) -> tuple[float, str]:
+    """(offset standard uncertainty [unit], source) for ``variable`` when none is declared."""
+    return DEFAULT_OFFSET.get(variable, DEFAULT_OFFSET_OTHER)
+
+
+def noise_floor(variable: str) -> float:
+    """Smallest learned reading noise for ``variable`` [unit]."""
+    return NOISE_FLOOR.get(variable, NOISE_FLOOR_OTHER)
+
+
+def reading_noise(station: np.ndarray, time_ns: np.ndarray, values: np.ndarray, n_stations: int, *,
+                  floor: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Reading noise per station from the robust spread of second differences.
+
+    ``station`` (n,) integer codes 0..n_stations-1, ``time_ns`` (n,) int64,
+    ``values`` (n,) with NaN where unusable.  Only triples of consecutive
+    reports at equal spacing count.  Returns ``(noise, resolution, count)``
+    per station: noise [unit] (the network median where a station has fewer
+    than :data:`MIN_DIFFERENCES` triples, ``floor`` where nothing is known),
+    the smallest step between two of its reports that differ [unit] (NaN if
+    none) and the number of triples used.
+    """
+    ok = np.isfinite(values) & (station >= 0)
+    s, t, x = station[ok], time_ns[ok], values[ok]
+    order = np.lexsort((t, s))
+    s, t, x = s[order], t[order], x[order]
+    noise = np.full(n_stations, np.nan)
+    resolution = np.full(n_stations, np.nan)
+    count = np.zeros(n_stations, int)
+    if x.size >= 2:
+        same = s[1:] == s[:-1]
+        step = np.abs(np.diff(x))
+        moved = same & (step > 0)
+        if moved.any():
+            res = pd.Series(step[moved]).groupby(s[1:][moved]).min()
+            resolution[res.index.to_numpy()] = res.to_numpy()
+    if x.size >= 3:
+        triple = (s[:-2] == s[1:-1]) & (s[1:-1] == s[2:]) & ((t[1:-1] - t[:-2]) == (t[2:] - t[1:-1]))
+        d2 = np.abs(x[:-2] - 2 * x[1:-1] + x[2:])[triple]
+        who = s[1:-1][triple]
+        if d2.size:
+            g = pd.Series(d2).groupby(who)
+            med, cnt = g.median(), g.size()
+            count[cnt.index.to_numpy()] = cnt.to_numpy()
+            noise[med.index.to_numpy()] = med.to_numpy() / 0.6745 / np.sqrt(6.0)
+    few = count < MIN_DIFFERENCES
+    trusted = noise[~few]
+    fallback = float(np.median(trusted)) if trusted.size else floor
+    noise = np.where(few, fallback, noise)
+    noise = np.fmax(noise, np.where(np.isfinite(resolution), resolution / np.sqrt(12.0), 0.0))
+    return np.fmax(noise, floor), resolution, count
+
+
+def cluster_pairs(members: list[np.ndarray], n_stations: int, *, shared: int = 2) -> np.ndarray:
+    """(P, 2) index pairs of clusters that share at least ``shared`` stations (neighbouring triangles share an edge)."""
+    from scipy.sparse import csr_matrix
+
+    if not members:
+        return np.zeros((0, 2), int)
+    rows = np.concatenate([np.asarray(m) for m in members])
+    cols = np.concatenate([np.full(len(m), j) for j, m in enumerate(members)])
+    memb = csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n_stations, len(members)))
+    common = (memb.T @ memb).tocoo()
+    keep = (common.row < common.col) & (common.data >= shared)
+    return np.column_stack([common.row[keep], common.col[keep]])
+
+
+@dataclass
+class CurvatureGeometry:
+    """What :func:`curvature_bias` needs that depends only on the network (computed once per run).
+
+    ``pairs`` (P, 2) neighbouring clusters; ``ends`` the sparse (C, P)
+    incidence of pairs on clusters; ``delta`` (P, 2) centroid separations
+    [m]; ``normal_inv`` (C, 3, 3) the pseudo-inverse of each cluster's
+    normal matrix for the Hessian; ``bias_map`` (C, 2, 3): the gradient bias
+    of the cluster's plane at its centre per unit Hessian entry (Hxx, Hxy, Hyy).
+    """
+
+    pairs: np.ndarray
+    ends: object
+    delta: np.ndarray
+    normal_inv: np.ndarray
+    bias_map: np.ndarray
+
+
+def curvature_geometry(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], n_stations: int) -> CurvatureGeometry:
+    """Precompute :class:`CurvatureGeometry` for the clusters ``members`` of stations at ``x``, ``y`` [m].
+
+    The bias map: a plane fitted through the values ``0.5 d_i^T H d_i`` of
+    a quadratic field (``d_i`` each member's offset from the centroid) has
+    gradient ``P q`` at the centroid, where the true gradient of the
+    quadratic part is zero; P is the plane's (unweighted) gradient operator.
+    """
+    from scipy.sparse import csr_matrix
+
+    n_c = len(members)
+    pairs = cluster_pairs(members, n_stations)
+    cx = np.array([x[np.asarray(m)].mean() for m in members])  # once per cluster and run
+    cy = np.array([y[np.asarray(m)].mean() for m in members])
+    i, j = pairs[:, 0], pairs[:, 1]
+    delta = np.column_stack([cx[j] - cx[i], cy[j] - cy[i]]) if pairs.size else np.zeros((0, 2))
+    n_p = len(pairs)
+    ends = csr_matrix((np.ones(2 * n_p), (np.concatenate([i, j]), np.tile(np.arange(n_p), 2))), shape=(n_c, n_p))
+    # normal matrix of H = (Hxx, Hxy, Hyy) from dG = H dc, per pair A = [[dx, dy, 0], [0, dx, dy]]
+    dx, dy = delta[:, 0], delta[:, 1]
+    ata = np.stack([dx * dx, dx * dy, 0 * dx, dx * dy, dx * dx + dy * dy, dx * dy, 0 * dx, dx * dy, dy * dy], axis=1)
+    normal = np.asarray(ends @ ata).reshape(n_c, 3, 3)
+    normal_inv = np.linalg.pinv(normal, rcond=1e-6, hermitian=True) if n_c else np.zeros((0, 3, 3))
+    bias_map = np.zeros((n_c, 2, 3))
+    sizes = np.array([len(m) for m in members])
+    for k in np.unique(sizes):  # a loop over cluster sizes, not over clusters or time
+        sel = np.flatnonzero(sizes == k)
+        M = np.stack([np.asarray(members[c]) for c in sel])
+        ddx, ddy = x[M] - cx[sel, None], y[M] - cy[sel, None]
+        A = np.stack([np.ones_like(ddx), ddx, ddy], axis=-1)
+        P = np.linalg.pinv(A)[:, 1:3, :]  # (n, 2, k) gradient operator
+        q = np.stack([0.5 * ddx * ddx, ddx * ddy, 0.5 * ddy * ddy], axis=-1)  # (n, k, 3)
+        bias_map[sel] = P @ q
+    return CurvatureGeometry(pairs, ends, delta, normal_inv, bias_map)
+
+
+def curvature_bias(gx: np.ndarray, gy: np.ndarray, var_x: np.ndarray, var_y: np.ndarray, geom: CurvatureGeometry,
+                   steps: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The model error of each cluster's plane gradient, from how the neighbouring clusters' gradients differ.
+
+    Differences of neighbouring gradients are first averaged over ``2 steps
+    + 1`` times (curvature persists, reading noise averages out).  Two parts:
+
+    - smooth curvature: the Hessian near each cluster is the least-squares
+      fit of ``dG = H dc`` over its pairs (gradient differences against
+      centroid separations); the plane's gradient at the centre is then off
+      by ``bias_map @ H``;
+    - structure at the station scale that no smooth field explains (a cold
+      pocket, an offset larger than declared): the pairs' differences left
+      after the fitted curvature, beyond what the averaged noise explains
+      (``var_x``, ``var_y``: the prior variances, divided by the number
+      averaged), shared between the two clusters of a pair.
+
+    Returns (bias_x, bias_y, structure variance per component), each
+    (time, cluster) [unit m-1, unit2 m-2]; zero where a cluster has no
+    neighbour.  For a plane all are zero up to noise.
+    """
+    from .budget import window_mean
+
+    n_t, n_c = gx.shape
+    if geom.pairs.size == 0:
+        zero = np.zeros((n_t, n_c))
+        return zero, zero.copy(), zero.copy()
+    i, j = geom.pairs[:, 0], geom.pairs[:, 1]
+    dgx = np.nan_to_num(window_mean(gx[:, j] - gx[:, i], steps, min_weight=0.0))
+    dgy = np.nan_to_num(window_mean(gy[:, j] - gy[:, i], steps, min_weight=0.0))
+    dx, dy = geom.delta[:, 0], geom.delta[:, 1]
+    rhs = [dgx * dx, dgx * dy + dgy * dx, dgy * dy]  # A^T dG per pair, (T, P) each
+    b = np.stack([np.asarray(geom.ends @ r.T).T for r in rhs], axis=-1)  # (T, C, 3)
+    hess = np.einsum("cab,tcb->tca", geom.normal_inv, b)
+    bias = np.einsum("cqa,tca->tcq", geom.bias_map, hess)
+    # what the pair's two Hessians (their mean) leave unexplained
+    hp = 0.5 * (hess[:, i] + hess[:, j])  # (T, P, 3)
+    rx = dgx - (hp[..., 0] * dx + hp[..., 1] * dy)
+    ry = dgy - (hp[..., 1] * dx + hp[..., 2] * dy)
+    n_avg = 2 * steps + 1
+    with np.errstate(invalid="ignore"):
+        noise = 0.5 * (var_x[:, i] + var_y[:, i] + var_x[:, j] + var_y[:, j]) / n_avg
+        excess = np.nan_to_num(np.fmax(0.5 * (rx * rx + ry * ry) - noise, 0.0)) * 0.5
+    total = np.asarray(geom.ends @ excess.T).T
+    count = np.asarray(geom.ends.sum(axis=1)).ravel()[None, :]
+    structure = np.where(count > 0, total / np.maximum(count, 1), 0.0)
+    return bias[..., 0], bias[..., 1], structure
