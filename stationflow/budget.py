@@ -30,7 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .errormodel import curvature_bias, curvature_geometry
+from .errormodel import curvature_bias, curvature_geometry, model_variance, null_levels
 from .gradient import PlaneFit, fit_planes
 from .ingest import _timezone, is_utc
 
@@ -62,14 +62,16 @@ class BudgetSettings:
     min_rate: float = 0.0  # [unit h-1]
     vertical_regression: bool = False
     model_error: bool = True  # add the neighbour-spread model error to gradient variances
-    model_half_window: int = 0  # smoothing of the model error, steps each side (0: one hour, at least half_window)
+    model_half_window: int = 0  # smoothing of the model error, steps each side (0: automatic, see model_steps)
 
     @property
     def model_steps(self) -> int:
-        """Half-width [steps] of the model error's smoothing: persistent errors are averaged over longer than a window."""
+        """Half-width [steps] of the model error's smoothing: the tendency's half window, at least 3 steps (long
+        enough that reading noise averages out of the gradient differences, short enough to follow a passing
+        front: measured with the coverage suite, docs/method.md)."""
         if self.model_half_window > 0:
             return int(self.model_half_window)
-        return max(int(self.half_window), int(round(3600.0 / self.interval_s)))
+        return max(int(self.half_window), 3)
 
 
 def cluster_mean(values: np.ndarray, membership, *, fallback: bool = True, variance: bool = True,
@@ -377,13 +379,15 @@ def compute_budget(
         gv, gn = gamma_var[:, None], gamma_var_noise[:, None]
         vx, vy, cxy = vx + zx * zx * gv, vy + zy * zy * gv, cxy + zx * zy * gv
         vxn, vyn, cxyn = vxn + zx * zx * gn, vyn + zy * zy * gn, cxyn + zx * zy * gn
-        va, van = va + dz * dz * gv, van + dz * dz * gn
+        # (the value needs nothing: the gamma error that enters the intercept, d_gamma (mean z - z_ref), is
+        # taken out again when gamma (mean z - z_ref) is added back)
     # model error: the departure from a plane, persistent in time (neighbour spread; chi-square where dof > 0)
     model_var = np.zeros_like(gx)
     if s.model_error:
         geom = curvature_geometry(x, y, members, n_s)
-        bx, by, structure = curvature_bias(gx, gy, vx, vy, geom, s.model_steps)
-        model_var = 0.5 * (bx * bx + by * by) + structure
+        bx, by, structure = curvature_bias(gx, gy, geom, s.model_steps)
+        null_b2, null_structure = null_levels(x, y, members, geom, noise=noise, offset=s.offset, steps=s.model_steps)
+        model_var = model_variance(bx, by, structure, null_b2, null_structure)
     excess = (scale - 1.0) * 0.5 * (vx + vy)  # chi-square above 1: what the residuals show beyond the noise
     model_var = np.fmax(model_var, np.where(np.isfinite(excess), excess, 0.0))
     memb = membership_matrix(members, n_s)

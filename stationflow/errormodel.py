@@ -39,6 +39,8 @@ NOISE_FLOOR = {"air_temperature": 0.01, "potential_temperature": 0.01, "dew_poin
                "relative_humidity": 0.1, "air_pressure": 1.0, "wind_speed": 0.05}
 #: the same for concentrations and other user scalars [their unit]
 NOISE_FLOOR_OTHER = 0.01
+#: smallest learned noise of a wind component [m s-1] (a cup anemometer's resolution, common practice)
+WIND_FLOOR = 0.1
 
 #: default standard uncertainty of each sensor's persistent offset [variable unit], with its source
 DEFAULT_OFFSET: dict[str, tuple[float, str]] = {
@@ -108,23 +110,17 @@ def reading_noise(station: np.ndarray, time_ns: np.ndarray, values: np.ndarray, 
     reports at equal spacing count.  Returns ``(noise, resolution, count)``
     per station: noise [unit] (the network median where a station has fewer
     than :data:`MIN_DIFFERENCES` triples, ``floor`` where nothing is known),
-    the smallest step between two of its reports that differ [unit] (NaN if
-    none) and the number of triples used.
+    the resolution of the values (:func:`value_resolution`, the same for
+    every station) and the number of triples used.
     """
     ok = np.isfinite(values) & (station >= 0)
     s, t, x = station[ok], time_ns[ok], values[ok]
     order = np.lexsort((t, s))
     s, t, x = s[order], t[order], x[order]
     noise = np.full(n_stations, np.nan)
-    resolution = np.full(n_stations, np.nan)
+    resolution = np.zeros(n_stations)
     count = np.zeros(n_stations, int)
-    if x.size >= 2:
-        same = s[1:] == s[:-1]
-        step = np.abs(np.diff(x))
-        moved = same & (step > 0)
-        if moved.any():
-            res = pd.Series(step[moved]).groupby(s[1:][moved]).min()
-            resolution[res.index.to_numpy()] = res.to_numpy()
+    resolution[:] = value_resolution(x)
     if x.size >= 3:
         triple = (s[:-2] == s[1:-1]) & (s[1:-1] == s[2:]) & ((t[1:-1] - t[:-2]) == (t[2:] - t[1:-1]))
         d2 = np.abs(x[:-2] - 2 * x[1:-1] + x[2:])[triple]
@@ -138,8 +134,26 @@ def reading_noise(station: np.ndarray, time_ns: np.ndarray, values: np.ndarray, 
     trusted = noise[~few]
     fallback = float(np.median(trusted)) if trusted.size else floor
     noise = np.where(few, fallback, noise)
-    noise = np.fmax(noise, np.where(np.isfinite(resolution), resolution / np.sqrt(12.0), 0.0))
+    noise = np.fmax(noise, resolution / np.sqrt(12.0))
     return np.fmax(noise, floor), resolution, count
+
+
+def value_resolution(values: np.ndarray, *, tolerance: float = 0.02) -> float:
+    """The step of the grid the values are reported on (their resolution) [unit], or 0 for continuous values.
+
+    The candidate is the finest step between two distinct values of the
+    whole record; it is the resolution when every value lies on that grid
+    (within ``tolerance`` of a step), as values rounded to 0.01 degF do
+    after conversion to kelvin.
+    """
+    v = np.unique(values[np.isfinite(values)])
+    if v.size < 3:
+        return 0.0
+    q = float(np.min(np.diff(v)))
+    if q <= 0:
+        return 0.0
+    k = (v - v[0]) / q
+    return q if np.all(np.abs(k - np.round(k)) <= tolerance) else 0.0
 
 
 def cluster_pairs(members: list[np.ndarray], n_stations: int, *, shared: int = 2) -> np.ndarray:
@@ -210,9 +224,9 @@ def curvature_geometry(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], 
     return CurvatureGeometry(pairs, ends, delta, normal_inv, bias_map)
 
 
-def curvature_bias(gx: np.ndarray, gy: np.ndarray, var_x: np.ndarray, var_y: np.ndarray, geom: CurvatureGeometry,
-                   steps: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The model error of each cluster's plane gradient, from how the neighbouring clusters' gradients differ.
+def curvature_bias(gx: np.ndarray, gy: np.ndarray, geom: CurvatureGeometry, steps: int
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """What the neighbouring clusters' gradients say about each cluster's departure from a plane (raw).
 
     Differences of neighbouring gradients are first averaged over ``2 steps
     + 1`` times (curvature persists, reading noise averages out).  Two parts:
@@ -220,16 +234,15 @@ def curvature_bias(gx: np.ndarray, gy: np.ndarray, var_x: np.ndarray, var_y: np.
     - smooth curvature: the Hessian near each cluster is the least-squares
       fit of ``dG = H dc`` over its pairs (gradient differences against
       centroid separations); the plane's gradient at the centre is then off
-      by ``bias_map @ H``;
+      by ``bias_map @ H`` (returned as bias_x, bias_y);
     - structure at the station scale that no smooth field explains (a cold
-      pocket, an offset larger than declared): the pairs' differences left
-      after the fitted curvature, beyond what the averaged noise explains
-      (``var_x``, ``var_y``: the prior variances, divided by the number
-      averaged), shared between the two clusters of a pair.
+      pocket, an offset larger than declared): half the mean square of the
+      pairs' differences left after the fitted curvature, per component,
+      averaged over the cluster's pairs and over time.
 
-    Returns (bias_x, bias_y, structure variance per component), each
-    (time, cluster) [unit m-1, unit2 m-2]; zero where a cluster has no
-    neighbour.  For a plane all are zero up to noise.
+    Both include what the sensor errors alone produce; :func:`null_levels`
+    gives that part, to be subtracted (:func:`model_variance`).  Arrays are
+    (time, cluster); zero where a cluster has no neighbour.
     """
     from .budget import window_mean
 
@@ -238,22 +251,56 @@ def curvature_bias(gx: np.ndarray, gy: np.ndarray, var_x: np.ndarray, var_y: np.
         zero = np.zeros((n_t, n_c))
         return zero, zero.copy(), zero.copy()
     i, j = geom.pairs[:, 0], geom.pairs[:, 1]
-    dgx = np.nan_to_num(window_mean(gx[:, j] - gx[:, i], steps, min_weight=0.0))
-    dgy = np.nan_to_num(window_mean(gy[:, j] - gy[:, i], steps, min_weight=0.0))
+    dgx = np.nan_to_num(window_mean(gx[:, j] - gx[:, i], steps, min_weight=0.0)) if steps else np.nan_to_num(gx[:, j] - gx[:, i])
+    dgy = np.nan_to_num(window_mean(gy[:, j] - gy[:, i], steps, min_weight=0.0)) if steps else np.nan_to_num(gy[:, j] - gy[:, i])
     dx, dy = geom.delta[:, 0], geom.delta[:, 1]
     rhs = [dgx * dx, dgx * dy + dgy * dx, dgy * dy]  # A^T dG per pair, (T, P) each
     b = np.stack([np.asarray(geom.ends @ r.T).T for r in rhs], axis=-1)  # (T, C, 3)
     hess = np.einsum("cab,tcb->tca", geom.normal_inv, b)
     bias = np.einsum("cqa,tca->tcq", geom.bias_map, hess)
-    # what the pair's two Hessians (their mean) leave unexplained
-    hp = 0.5 * (hess[:, i] + hess[:, j])  # (T, P, 3)
+    hp = 0.5 * (hess[:, i] + hess[:, j])  # (T, P, 3): what the pair's two Hessians (their mean) explain
     rx = dgx - (hp[..., 0] * dx + hp[..., 1] * dy)
     ry = dgy - (hp[..., 1] * dx + hp[..., 2] * dy)
-    n_avg = 2 * steps + 1
-    with np.errstate(invalid="ignore"):
-        noise = 0.5 * (var_x[:, i] + var_y[:, i] + var_x[:, j] + var_y[:, j]) / n_avg
-        excess = np.nan_to_num(np.fmax(0.5 * (rx * rx + ry * ry) - noise, 0.0)) * 0.5
-    total = np.asarray(geom.ends @ excess.T).T
+    square = 0.25 * (rx * rx + ry * ry)  # per component, shared between the two clusters of the pair
+    total = np.asarray(geom.ends @ square.T).T
     count = np.asarray(geom.ends.sum(axis=1)).ravel()[None, :]
     structure = np.where(count > 0, total / np.maximum(count, 1), 0.0)
+    if steps:
+        structure = np.nan_to_num(window_mean(structure, steps, min_weight=0.0))
     return bias[..., 0], bias[..., 1], structure
+
+
+#: realisations of the sensor errors used for the null levels of the model error
+NULL_DRAWS = 200
+#: the share of those realisations a model-error part must exceed to count (a 5 % test)
+NULL_QUANTILE = 0.95
+
+
+def null_levels(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], geom: CurvatureGeometry, *,
+                noise: np.ndarray, offset: float, steps: int, seed: int = 20261204) -> tuple[np.ndarray, np.ndarray]:
+    """Levels of squared curvature bias and of structure that sensor errors alone rarely exceed, per cluster.
+
+    A Monte Carlo over :data:`NULL_DRAWS` realisations of a flat field read
+    by sensors with the error model's offsets (persistent) and reading noise
+    (divided by the number of times averaged, ``2 steps + 1``): each
+    realisation is one "time" of :func:`curvature_bias` without smoothing.
+    Deterministic (fixed seed), so every time partition subtracts the same.
+    """
+    from .gradient import fit_planes
+
+    n_s = len(noise)
+    rng = np.random.default_rng(seed)
+    draws = (rng.standard_normal((NULL_DRAWS, n_s)) * offset
+             + rng.standard_normal((NULL_DRAWS, n_s)) * (noise / np.sqrt(2 * steps + 1))[None, :])
+    total = np.sqrt(noise ** 2 + offset ** 2)
+    fit = fit_planes(draws, x, y, members, sigma=total, residuals=False)
+    bx, by, structure = curvature_bias(fit.grad_x, fit.grad_y, geom, 0)
+    b2 = np.nanquantile(0.5 * (bx * bx + by * by), NULL_QUANTILE, axis=0)
+    return np.nan_to_num(b2), np.nan_to_num(np.nanquantile(structure, NULL_QUANTILE, axis=0))
+
+
+def model_variance(bias_x: np.ndarray, bias_y: np.ndarray, structure: np.ndarray, null_b2: np.ndarray,
+                   null_structure: np.ndarray) -> np.ndarray:
+    """Model-error variance of one gradient component: each part above what the sensor errors explain, or 0."""
+    curvature = np.fmax(0.5 * (bias_x * bias_x + bias_y * bias_y) - null_b2[None, :], 0.0)
+    return curvature + np.fmax(structure - null_structure[None, :], 0.0)

@@ -279,7 +279,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     value_noise = float(np.nanmedian(typical._get("var_value_noise"))) if members else np.nan
     window, h, window_source = _window(config, interval, value_noise, min_rate)
     settings = BudgetSettings(
-        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"]), offset=offset,
+        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or errormodel.WIND_FLOOR), offset=offset,
         error_model=config["uncertainty"]["gradient_error"],
         half_window=h, interval_s=interval.total_seconds(), min_stations=bc["min_stations"],
         significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
@@ -307,6 +307,13 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         frame["u"] = np.where(ok_w, u, np.nan)
         frame["v"] = np.where(ok_w, v, np.nan)
         frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
+        if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
+            su, _, _ = errormodel.reading_noise(codes, time_ns, frame["u"].to_numpy(), len(ids), floor=errormodel.WIND_FLOOR)
+            sv, _, _ = errormodel.reading_noise(codes, time_ns, frame["v"].to_numpy(), len(ids), floor=errormodel.WIND_FLOOR)
+            settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
+            choices["wind_noise_source"] = "learned from second differences of each station's wind components"
+        else:
+            choices["wind_noise_source"] = "uncertainty.wind_component"
     else:
         log.warning("no wind observations: advection cannot be estimated")
     masts = _masts(st_all, x_all, y_all)

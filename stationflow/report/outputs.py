@@ -282,7 +282,7 @@ def noise_sentence(run) -> str:
     med = float(np.median(noise))
     text = (f"reading noise {med:.3g} {run.unit} (median; {run.choices.get('noise_source', 'declared')}), offsets "
             f"{run.settings.offset:g} {run.unit} ({run.choices.get('offset_source', '')}); wind components "
-            f"{run.settings.wind_sigma:g} m/s")
+            f"{run.settings.wind_sigma:.2g} m/s ({run.choices.get('wind_noise_source', 'declared')})")
     loud = np.flatnonzero(noise > 3 * med) if med > 0 else np.zeros(0, int)
     if loud.size:
         worst = loud[np.argsort(-noise[loud])][:5]
