@@ -6,13 +6,14 @@ STAMP_RUN := $(VENV)/.installed-run
 STAMP_TEST := $(VENV)/.installed-test
 OUT ?= demo_output
 
-.PHONY: demo demo-town test fuzz bench sample-data clean help
+.PHONY: demo demo-town test fuzz coverage bench sample-data clean help
 
 help:
 	@echo "make demo       run the frost-night demo end to end and print where the report is"
 	@echo "make demo-town  run the PM2.5 town demo"
 	@echo "make test       run the whole test suite"
 	@echo "make fuzz       the whole-pipeline property test with many examples (not part of make test)"
+	@echo "make coverage   the coverage suite at full size: do stated errors cover the truth? (not part of make test)"
 	@echo "make bench      run the benchmarks (not part of make test)"
 	@echo "make sample-data regenerate sample_data/ from stationflow.synthetic"
 
@@ -39,6 +40,9 @@ test: $(STAMP_TEST)
 
 fuzz: $(STAMP_TEST)
 	STATIONFLOW_FUZZ_EXAMPLES=$${STATIONFLOW_FUZZ_EXAMPLES:-300} $(BIN)/python -m pytest -q tests/test_property_pipeline.py
+
+coverage: $(STAMP_TEST)
+	$(BIN)/python benchmarks/coverage.py
 
 bench: $(STAMP_TEST)
 	$(BIN)/python benchmarks/run.py
