@@ -231,9 +231,11 @@ def _check_summary(chk, out: Path) -> str:
     if len(chk.per_test):
         lines.append("QC tests fired: " + ", ".join(f"{r.variable}:{r.test} {r.values}" for r in chk.per_test.itertuples()))
     flagged = chk.per_station[(chk.per_station["suspect"] > 0) | (chk.per_station["bad"] > 0)]
-    if len(flagged):
-        lines.append("flags per station: " + ", ".join(f"{r.station_id} {r.suspect} suspect/{r.bad} bad"
-                                                      for r in flagged.itertuples()))
+    if len(flagged):  # the worst few and a count: the full list is in qc_flags.csv
+        worst = flagged.assign(_n=flagged["suspect"] + flagged["bad"]).sort_values(["bad", "_n"], ascending=False).head(6)
+        lines.append(f"flags at {len(flagged)} station(s); worst: " + ", ".join(
+            f"{r.station_id} {r.suspect} suspect/{r.bad} bad" for r in worst.itertuples())
+            + (f" (and {len(flagged) - 6} more in qc_flags.csv)" if len(flagged) > 6 else ""))
     big = chk.periods[chk.periods["values"] >= 3]
     for p in big.head(12).itertuples():
         lines.append(f"  {p.station_id} {p.variable}: {p.flag} ({p.tests}) {pd.Timestamp(p.start):%Y-%m-%d %H:%M}"

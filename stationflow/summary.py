@@ -39,6 +39,9 @@ class BudgetSummary:
     #: steps per cluster (rows) and regime (columns) of the blocks added so far (undetermined: not counted)
     tally: np.ndarray | None = None
     steps_added: int = 0
+    #: rows where the model error (the field is not a plane) is larger than the gradient error from the sensors
+    not_planar: np.ndarray | None = None  # per cluster
+    planar_rows: np.ndarray | None = None  # per cluster: rows with both errors known
 
     @classmethod
     def allocate(cls, times: pd.DatetimeIndex, clusters: pd.DataFrame) -> "BudgetSummary":
@@ -67,6 +70,15 @@ class BudgetSummary:
             ok = det & np.isfinite(a)
             self.sums[k] += np.where(ok, a, 0.0).sum(axis=0)
             self.counts[k] += ok.sum(axis=0)
+        if "model_error" in block and "grad_x_se" in block:
+            if self.not_planar is None:
+                self.not_planar = np.zeros(reg.shape[1], np.int64)
+                self.planar_rows = np.zeros(reg.shape[1], np.int64)
+            me, gse = np.asarray(block["model_error"]), np.asarray(block["grad_x_se"])
+            known = np.isfinite(me) & np.isfinite(gse)
+            sensor = np.sqrt(np.fmax(gse * gse - me * me, 0.0))
+            self.not_planar += (known & (me > sensor)).sum(axis=0)
+            self.planar_rows += known.sum(axis=0)
         if "inversion" in block:
             if self.inversion is None:
                 self.inversion = np.full(len(self.times), np.nan)

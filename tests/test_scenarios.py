@@ -66,7 +66,7 @@ def test_frost_phases_and_truth(frost_run):
     assert np.mean(np.abs(f["advection"] - f["advection_true"]) <= 1.96 * f["advection_se"]) > 0.9
     c = _phase(d, calm)
     # the calm night: made in place; the plane model is weakest here (cold pool), so looser tolerances
-    assert (c["regime"] == "in_situ").mean() > 0.8
+    assert (c["regime"] == "in_situ").mean() >= 0.9  # untuned (the demo config sets no window, min_rate or uncertainty)
     assert (c["regime"] == "steady").mean() < 0.1  # a clear cooling is not called steady
     assert np.median(np.abs(c["residual"] - c["residual_true"])) < 0.4
     assert c["residual"].median() < -0.5
@@ -119,3 +119,17 @@ def test_town_phases_and_truth(town_run):
     ang = np.deg2rad(b)
     mean_bearing = np.rad2deg(np.arctan2(np.sin(ang).mean(), np.cos(ang).mean())) % 360
     assert abs(mean_bearing - 270) < 25
+
+
+def test_old_tuning_keys_keep_working():
+    """A configuration written for the earlier error model still runs, and its keys mean what they said."""
+    folder = ROOT / "sample_data" / "frost"
+    raw = config.load(folder / "config.toml").to_dict()
+    raw["uncertainty"].update({"sensor": {"air_temperature": 0.15}, "calibration": 0.05})
+    raw["budget"].update({"vertical": "potential_temperature", "window": "60min", "min_rate": 0.2})
+    cfg = config.from_dict(raw)
+    run = pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg)
+    assert run.window == pd.Timedelta("60min") and run.choices["window_source"] == "budget.window"
+    assert run.quantity == "potential_temperature" and run.settings.min_rate == 0.2
+    assert np.allclose(run.settings.sigma, 0.15) and run.settings.offset == 0.05  # sensor: reading noise; calibration: offset
+    assert run.choices["noise_source"] == "uncertainty.sensor" and run.choices["offset_source"] == "uncertainty.calibration"

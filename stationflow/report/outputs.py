@@ -223,8 +223,17 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         f"Quality control flagged {sum(c['suspect'] for c in flags.values())} values suspect and "
         f"{sum(c['bad'] for c in flags.values())} bad (see qc_flags.csv); the estimator used "
         f"{'good and suspect' if run.check.config['qc']['use_suspect'] else 'only good'} values.",
-        "'undetermined' means too few good stations in the cluster for a plane, or gaps at the window ends.",
+        "'undetermined' means too few good stations in the cluster for a plane, gaps at the window ends, or a "
+        "change whose cause cannot be told (both parts too uncertain).",
     ]
+    if bs.not_planar is not None and bs.planar_rows.sum():
+        share = bs.not_planar.sum() / bs.planar_rows.sum()
+        worst = np.argsort(-bs.not_planar / np.maximum(bs.planar_rows, 1))[:5]
+        names = [f"{bs.clusters['cluster'].iloc[i]} {bs.not_planar[i] / max(bs.planar_rows[i], 1):.0%}" for i in worst
+                 if bs.not_planar[i] > 0]
+        quality.append(f"The plane was a poor model (model error above the sensors' gradient error) in {share:.0%} of "
+                       "rows; the error bars include it (column model_error)"
+                       + (f"; most often in clusters {', '.join(names)}." if names else "."))
     for p in run.check.periods.sort_values("values", ascending=False, kind="stable").head(8).itertuples():
         quality.append(f"QC: {p.station_id} {p.variable} {p.flag} ({p.tests}) {pd.Timestamp(p.start):%m-%d %H:%M}"
                        f" to {pd.Timestamp(p.end):%m-%d %H:%M} UTC, {p.values} values")
