@@ -210,7 +210,8 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         ("Period", f"{pd.Timestamp(t0):%Y-%m-%d %H:%M} to {pd.Timestamp(t1):%Y-%m-%d %H:%M} UTC"),
         ("Quantity fitted", f"{quantity} [{run.unit}]"),
         ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
-        ("Analysis step / window chosen", run.choices.get("window_source", "")),
+        ("How the window was chosen", run.choices.get("window_source", "")),
+        ("Station heights", {"measured": "vertical gradient measured per time over the network and removed before the horizontal fits (column vertical_gradient)", "none": "not used (flat network or not air temperature)"}.get(run.choices.get("vertical", ""), str(run.choices.get("vertical", "")))),
         ("Sensor errors", noise_sentence(run)),
     ]
     bs = run.summary
