@@ -194,6 +194,16 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     return written, notes
 
 
+#: what each elevation handling means, for the report
+VERTICAL_WORDS = {
+    "measured": "vertical gradient measured per time over the network and removed before the horizontal fits "
+                "(column vertical_gradient)",
+    "none": "not used (flat network, or not air temperature)",
+    "potential_temperature": "air temperature converted to potential temperature",
+    "regression": "elevation fitted per cluster (column vertical_gradient)",
+}
+
+
 def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`."""
     data = run.check.data
@@ -211,7 +221,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         ("Quantity fitted", f"{quantity} [{run.unit}]"),
         ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
         ("How the window was chosen", run.choices.get("window_source", "")),
-        ("Station heights", {"measured": "vertical gradient measured per time over the network and removed before the horizontal fits (column vertical_gradient)", "none": "not used (flat network or not air temperature)"}.get(run.choices.get("vertical", ""), str(run.choices.get("vertical", "")))),
+        ("Station heights", VERTICAL_WORDS.get(run.choices.get("vertical", ""), str(run.choices.get("vertical", "")))),
         ("Sensor errors", noise_sentence(run)),
     ]
     bs = run.summary
