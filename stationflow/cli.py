@@ -54,11 +54,16 @@ def _err(message: str) -> None:
 
 def _os_error_line(exc: OSError) -> str:
     """One line for an output the file system refused: which path, why, what to do."""
-    where = f"{exc.filename}: " if exc.filename else ""
+    import re
+
+    # a path inside the staging folder is named as the output it was to become
+    name = re.sub(r"\.([^/\\]+)\.stationflow-(?:stage|old)-\d+", r"\1", str(exc.filename)) if exc.filename else ""
+    where = f"{name}: " if name else ""
     if isinstance(exc, (FileExistsError, NotADirectoryError)):
         return f"{where}a file is in the way where a folder is needed; --out names a folder, choose another"
     reason = exc.strerror or str(exc)
-    return f"{where}cannot write ({reason}); check the path, its permissions and the free space (no output was left half-written)"
+    return (f"{where}cannot write ({reason}); check the path, its permissions and the free space "
+            "(the output folder was left as it was)")
 
 
 def _progress(quiet: bool):
@@ -94,8 +99,11 @@ def _run(fn, *, quiet: bool):
         raise typer.Exit(2) from None
     except typer.Exit:
         raise
+    except Terminated:
+        _err("terminated (SIGTERM); the run stopped and the output folder was left as it was")
+        raise typer.Exit(143) from None
     except KeyboardInterrupt:
-        _err("interrupted; no output file was left half-written")
+        _err("interrupted; the run stopped and the output folder was left as it was")
         raise typer.Exit(130) from None
     except OSError as exc:  # the file system refused (the inputs' own errors are IngestErrors): not a bug
         _err(_os_error_line(exc))
@@ -174,13 +182,23 @@ def check(
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
         cfg = _config(config)
-        chk = _checked(obs, stations, cfg, out, report, command="check")
-        report("writing outputs")
-        write_check(out, chk, inputs={"observations": obs, "stations": stations})
+        with _staged(out) as stage:
+            chk = _checked(obs, stations, cfg, stage, report, command="check")
+            report("writing outputs")
+            write_check(stage, chk, inputs={"observations": obs, "stations": stations})
         if not quiet:
             typer.echo(_check_summary(chk, out))
 
     _run(job, quiet=quiet)
+
+
+def _staged(out: Path):
+    """The staging folder of a command's outputs (:func:`report.staging.staged`); published on success and when
+    no row was usable (its error names rejected_rows.csv, written for it)."""
+    from .errors import NoUsableRows
+    from .report.staging import staged
+
+    return staged(out, publish_on=(NoUsableRows,))
 
 
 def _checked(obs: Path, stations: Path | None, cfg, out: Path, report, *, command: str):
@@ -281,7 +299,8 @@ def network(
         st = read_stations(stations, cfg) if stations is not None else read_observations(obs, cfg).stations
         net = run_network(st, cfg)
         report("writing outputs")
-        write_network(out, net, inputs={"stations": stations, "observations": obs}, config=cfg)
+        with _staged(out) as stage:
+            write_network(stage, net, inputs={"stations": stations, "observations": obs}, config=cfg)
         if not quiet:
             c = net.clusters
             typer.echo(f"{len(net.stations)} stations, projection {net.crs}")
@@ -328,8 +347,9 @@ def budget(
             from .errors import ConfigError
 
             raise ConfigError("--scheduler goes with --engine dask")
-        run, notes = _budget_job(obs, stations, cfg, out, report, variable=variable, csv=csv,
-                                 dask=engine == Engine.dask, scheduler=scheduler)
+        with _staged(out) as stage:
+            run, notes = _budget_job(obs, stations, cfg, stage, report, variable=variable, csv=csv,
+                                     dask=engine == Engine.dask, scheduler=scheduler)
         if not quiet:
             typer.echo(_budget_summary(run, out, notes))
 
@@ -434,13 +454,15 @@ def demo(
 
     def job(report):
         folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
-        if not (folder / "observations.csv").exists():
-            folder = out / "input"
-            report("generating the scenario")
-            make, write = synthetic.SCENARIOS[scenario.value]
-            write(make(), folder)
-        cfg = _config(folder / "config.toml")
-        run, notes = _budget_job(folder / "observations.csv", folder / "stations.csv", cfg, out, report)
+        with _staged(out) as stage:
+            source = folder
+            if not (folder / "observations.csv").exists():
+                folder, source = out / "input", stage / "input"
+                report("generating the scenario")
+                make, write = synthetic.SCENARIOS[scenario.value]
+                write(make(), source)
+            cfg = _config(source / "config.toml")
+            run, notes = _budget_job(source / "observations.csv", source / "stations.csv", cfg, stage, report)
         if not quiet:
             typer.echo(f"scenario: {scenario.value} ({folder})")
             typer.echo(_budget_summary(run, out, notes))
@@ -449,14 +471,28 @@ def demo(
     _run(job, quiet=quiet)
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM (a scheduler stopping the run): handled like Ctrl-C, with exit code 143."""
+
+
+def _on_sigterm(signum, frame) -> None:  # noqa: ARG001 - the signal module's signature
+    raise Terminated()
+
+
 def main() -> None:
     """Entry point of the ``stationflow`` command.
+
+    SIGTERM stops a run as Ctrl-C does: workers are stopped, the staging folder is removed, the
+    output folder is left as it was, and the exit code is 143 (130 for Ctrl-C).
 
     When the command has finished, the process ends without tearing the interpreter down module by
     module (0.15-0.2 s with pandas, pyarrow and scipy loaded, measured on the benchmark machine): the
     ``atexit`` handlers still run (log handlers, worker processes and threads, a Dask cluster), the
     standard streams are flushed, and every output file was already closed and renamed into place.
     """
+    import signal
+
+    signal.signal(signal.SIGTERM, _on_sigterm)
     try:
         app()
     except SystemExit as done:

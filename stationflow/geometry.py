@@ -272,12 +272,43 @@ def read_cluster_file(path: str, station_ids: list[str]) -> tuple[list[str], lis
     return names, members
 
 
+#: a station whose nearest neighbour is this many times the network's median spacing away is implausible
+FAR_FACTOR = 10.0
+
+
+def far_stations(x: np.ndarray, y: np.ndarray, *, factor: float = FAR_FACTOR) -> tuple[np.ndarray, np.ndarray, float]:
+    """Stations far outside the network's footprint: (indices, their nearest-neighbour distance [m], median spacing [m]).
+
+    The spacing of a station is the distance to the nearest station at
+    another place; a station whose spacing exceeds ``factor`` times the
+    median spacing (and that is not one of only two places) is far.
+    """
+    from scipy.spatial import cKDTree
+
+    pts = np.column_stack([x, y])
+    uniq, inverse = np.unique(np.round(pts, 1), axis=0, return_inverse=True)
+    if len(uniq) < 3:
+        return np.zeros(0, int), np.zeros(0), np.nan
+    d, _ = cKDTree(uniq).query(uniq, k=2)
+    nn = d[:, 1]
+    median = float(np.median(nn))
+    far_places = np.flatnonzero(nn > factor * median)
+    idx = np.flatnonzero(np.isin(inverse.ravel(), far_places))
+    return idx, nn[inverse.ravel()[idx]], median
+
+
 def build_network(stations: pd.DataFrame, config: Config | None = None) -> Network:
     """Project the stations, form clusters, measure and screen them."""
     cfg = config or Config()
     nc = cfg["network"]
     st = stations.reset_index(drop=True).copy()
     x, y, gamma, crs = project(st["latitude"].to_numpy(), st["longitude"].to_numpy())
+    far, dist, spacing = far_stations(x, y)
+    if far.size:
+        named = ", ".join(f"{st['station_id'].iloc[i]} ({dist[k] / 1000:,.0f} km)" for k, i in enumerate(far[:5]))
+        log.warning("station(s) far outside the network (nearest other station; the median spacing is %.1f km): %s%s; "
+                    "check their coordinates (a longitude of 200 meant as -160, swapped latitude and longitude?)",
+                    spacing / 1000, named, f" and {far.size - 5} more" if far.size > 5 else "")
     st["x"], st["y"], st["convergence"] = x, y, gamma
     st["role"] = assign_roles(st, x, y)
     surface = np.flatnonzero((st["role"] == "surface").to_numpy())

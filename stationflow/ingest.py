@@ -338,6 +338,7 @@ def parse_times(
     time_format: str,
     timezone: str,
     station: pd.Series,
+    source: str = "observations",
 ) -> tuple[pd.Series, np.ndarray, list[str | None], str]:
     """Parse times to UTC. Returns (times, bad_mask, reasons per bad row, layout used).
 
@@ -420,6 +421,7 @@ def parse_times(
         ambiguous = nav & loc_nat.isna().to_numpy() & ~nonexistent
         resolved = loc_nat.copy()
         if ambiguous.any():
+            _check_order_at_fall_back(naive, station, ambiguous, source)
             is_dst, unresolved = _resolve_ambiguous(naive, station, ambiguous)
             ok = ambiguous & ~unresolved
             flags = np.where(ok, is_dst, True)
@@ -443,6 +445,32 @@ def parse_times(
                 reasons[i] = ("time is missing" if (pd.isna(raw) or str(raw).strip() == "")
                               else f"cannot parse time {_clip(raw)!r}")
     return out, bad, reasons, layout
+
+
+def _check_order_at_fall_back(naive: pd.Series, station: pd.Series, ambiguous: np.ndarray, source: str) -> None:
+    """Stop when a station's local times are out of order around a fall-back hour (file order cannot resolve it).
+
+    In time order a station's naive local times go back once per clock
+    change, by at most the change, at the repeated hour.  Any other step back means the rows
+    are not in time order, and reading the repeated hour from file order
+    would give wrong times silently.
+    """
+    frame = pd.DataFrame({"s": station.to_numpy(), "t": naive.to_numpy()})
+    amb = frame[ambiguous]
+    changes = amb.assign(d=amb["t"].dt.date).groupby("s", sort=False)["d"].nunique()  # fall-backs per station
+    frame = frame[frame["s"].isin(changes.index) & frame["t"].notna()]
+    step = frame.groupby("s", sort=False)["t"].diff()
+    back = step < pd.Timedelta(0)
+    per_station = back.groupby(frame["s"], sort=False).sum()
+    large = (back & (step < -pd.Timedelta(hours=2))).groupby(frame["s"], sort=False).sum()
+    bad = per_station[(per_station > changes.reindex(per_station.index).fillna(0)) | (large > 0)]
+    if len(bad):
+        first = naive[ambiguous].min()
+        raise IngestError(
+            f"{source}: station {bad.index[0]!r} has local times out of time order around the daylight-saving change "
+            f"({first:%Y-%m-%d %H:%M} and the hour after it occur twice), so the file order cannot tell which is which; "
+            "give the times with their UTC offset (for example 2026-10-25T02:30+01:00) or sort each station's rows by time"
+        )
 
 
 def _resolve_ambiguous(naive: pd.Series, station: pd.Series, ambiguous: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -858,7 +886,8 @@ def _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, 
     reasons = _Reasons()
     station = _station_labels(frame["station_id"])
     times, bad_t, t_reasons, layout = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
-                                          time_format=oc["time_format"], timezone=oc["timezone"], station=station)
+                                                  time_format=oc["time_format"], timezone=oc["timezone"], station=station,
+                                                  source=src_name)
     for i in np.flatnonzero(bad_t):
         reasons.add(i, t_reasons[i])
     empty_sid = (station == "").to_numpy(bool)

@@ -92,3 +92,36 @@ def test_no_usable_rows_still_writes_the_files_the_error_names(runner, tmp_path)
         assert len(rej) == len(obs) and rej["reason"].str.contains("cannot parse time").all()
         acc = json.loads((out / "run.json").read_text())["accounting"]
         assert acc["rows_rejected"] == acc["rows_read"] == len(obs)
+
+
+def _fall_back_export(tmp_path, shuffle: bool):
+    st, obs = linear_night(6, 30, seed=8, elevation=False, missing=0.0, start="2026-10-24 23:30", tz="Europe/Berlin")
+    if shuffle:  # a file whose rows are out of time order within a station, across the repeated hour
+        obs = obs.sample(frac=1.0, random_state=3).reset_index(drop=True)
+    return write_export(tmp_path / "in", st, obs, time_format="%Y-%m-%d %H:%M", tz="Europe/Berlin")
+
+
+def test_local_times_in_order_across_the_fall_back_hour_are_read(runner, tmp_path):
+    res = _run(runner, _fall_back_export(tmp_path, shuffle=False), tmp_path / "out", command="check")
+    assert res.exit_code == 0, res.stderr
+    assert json.loads((tmp_path / "out" / "run.json").read_text())["accounting"]["rows_rejected"] == 0
+
+
+def test_local_times_out_of_order_across_the_fall_back_hour_stop_with_the_fix(runner, tmp_path):
+    res = _run(runner, _fall_back_export(tmp_path, shuffle=True), tmp_path / "out", command="check")
+    assert res.exit_code == 2
+    line = res.stderr.strip()
+    assert "\n" not in line and "out of time order" in line and "UTC offset" in line and "sort" in line
+
+
+def test_a_station_far_outside_the_network_is_named(runner, tmp_path, caplog):
+    st, obs = linear_night(12, 6, seed=9, elevation=False)
+    st.loc[3, "longitude"] = st.loc[3, "longitude"] + 160.0  # a longitude slip: thousands of km away
+    paths = write_export(tmp_path / "in", st, obs)
+    with caplog.at_level("WARNING", logger="stationflow"):
+        res = _run(runner, paths, tmp_path / "out", command="network")
+    assert res.exit_code == 0, res.stderr
+    far = [r.getMessage() for r in caplog.records if "far outside the network" in r.getMessage()]
+    assert len(far) == 1 and st.loc[3, "station_id"] in far[0]
+    assert not any("far outside" in r.getMessage() for r in caplog.records if st.loc[4, "station_id"] in r.getMessage()
+                   and st.loc[3, "station_id"] not in r.getMessage())

@@ -43,6 +43,7 @@ def run_record(command: str, inputs: dict, config, accounting: dict, extra: dict
         "config_file": config.source,
         "versions": versions(),
         "accounting": {k: int(v) for k, v in accounting.items()},
+        "status": "complete",
     }
     if extra:
         rec.update(extra)

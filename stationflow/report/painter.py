@@ -37,6 +37,26 @@ from typing import Any, Callable
 log = logging.getLogger(__name__)
 
 
+def die_with_parent() -> None:
+    """Ask the kernel to end this process when its parent dies (Linux ``PR_SET_PDEATHSIG``; elsewhere nothing).
+
+    Run first in every worker process, so that a run killed outright (SIGKILL,
+    out of memory) leaves no figure worker behind holding the caller's pipes.
+    """
+    if not sys.platform.startswith("linux"):
+        return
+    import ctypes
+    import signal
+
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # PR_SET_PDEATHSIG = 1
+    except (OSError, AttributeError):  # no prctl here: the worker ends when its queue closes instead
+        return
+    if os.getppid() == 1:  # the parent died before the request took effect
+        os._exit(1)
+
+
 def _warm_up() -> None:
     """Import the plotting stack and draw a throw-away figure before the first real one is asked for.
 
@@ -101,6 +121,7 @@ def _together(calls: list[tuple[Callable[..., Any], tuple, dict]], home: int | N
         if pid == 0:  # the child: draw, answer, end at once
             code = 0
             try:
+                die_with_parent()
                 os.close(read)
                 ok, value = _outcome(*call)
                 try:
@@ -205,7 +226,8 @@ class Painter:
                 from concurrent.futures import ProcessPoolExecutor
 
                 n = max(1, min(workers, (os.cpu_count() or 1)))
-                self._pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"))
+                self._pool = ProcessPoolExecutor(max_workers=n, mp_context=multiprocessing.get_context("spawn"),
+                                                 initializer=die_with_parent)
                 for _ in range(n):  # one warm-up per worker: each starts and imports matplotlib now
                     self._jobs.append(self._pool.submit(_warm_up))
             except (OSError, ImportError, RuntimeError, ValueError) as exc:  # no processes here: draw inline
