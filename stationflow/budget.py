@@ -61,8 +61,11 @@ class BudgetSettings:
     dominance: float = 0.67
     min_rate: float = 0.0  # [unit h-1]
     vertical_regression: bool = False
-    model_error: bool = True  # add the neighbour-spread model error to gradient variances
+    model_error: bool = True  # add the model error (the field is not a plane; errormodel) to gradient variances
     model_half_window: int = 0  # smoothing of the model error, steps each side (0: automatic, see model_steps)
+    #: what the model error needs that depends only on the network (computed once per run by the pipeline;
+    #: computed here when None): (CurvatureGeometry, null level of the curvature part, of the structure part)
+    model_network: tuple | None = None
 
     @property
     def model_steps(self) -> int:
@@ -295,8 +298,8 @@ def classify_codes(tendency: np.ndarray, advection: np.ndarray, residual: np.nda
     out[only_r] = np.where(share[only_r] <= 0.5, ins, mix)
     if tendency_se is not None:
         # a clearly significant change is never 'steady': when neither part is significant on its own, the
-        # bound of one part (|term| + significance * se) below half the change gives the change to the other;
-        # otherwise the split cannot be told
+        # bound of one part (|term| + significance * se) below (1 - dominance) of the change gives the change
+        # to the other; otherwise the split cannot be told
         t = np.abs(tendency)
         with np.errstate(invalid="ignore"):
             sig_t = t > np.fmax(significance * tendency_se, min_rate)
@@ -368,8 +371,8 @@ def compute_budget(
     scale = fit.error_scale(s.error_model)
     # prior covariances: the whole (noise + offsets) and the reading-noise part alone
     vx, vy, cxy, va = fit.var_x, fit.var_y, fit.cov_xy, fit.var_value
-    if "var_x_noise" in fit.table:
-        vxn, vyn, cxyn, van = (fit._get(f"{k}_noise") for k in ("var_x", "var_y", "cov_xy", "var_value"))
+    if fit.noise_part("var_x") is not None:
+        vxn, vyn, cxyn, van = (fit.noise_part(k) for k in ("var_x", "var_y", "cov_xy", "var_value"))
     else:  # a fit made without the noise split: all of it is noise
         vxn, vyn, cxyn, van = vx, vy, cxy, va
     gx, gy = fit.grad_x, fit.grad_y
@@ -384,9 +387,8 @@ def compute_budget(
     # model error: the departure from a plane, persistent in time (neighbour spread; chi-square where dof > 0)
     model_var = np.zeros_like(gx)
     if s.model_error:
-        geom = curvature_geometry(x, y, members, n_s)
+        geom, null_b2, null_structure = s.model_network or model_network(x, y, members, noise, s)
         bx, by, structure = curvature_bias(gx, gy, geom, s.model_steps)
-        null_b2, null_structure = null_levels(x, y, members, geom, noise=noise, offset=s.offset, steps=s.model_steps)
         model_var = model_variance(bx, by, structure, null_b2, null_structure)
     excess = (scale - 1.0) * 0.5 * (vx + vy)  # chi-square above 1: what the residuals show beyond the noise
     model_var = np.fmax(model_var, np.where(np.isfinite(excess), excess, 0.0))
@@ -462,6 +464,15 @@ def compute_budget(
                                    significance=s.significance, dominance=s.dominance, min_rate=s.min_rate,
                                    tendency_se=out["tendency_se"])
     return out
+
+
+def model_network(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], noise: np.ndarray,
+                  settings: BudgetSettings) -> tuple:
+    """(geometry, null curvature level, null structure level) of the model error for a network (once per run)."""
+    geom = curvature_geometry(x, y, members, len(noise))
+    null_b2, null_structure = null_levels(x, y, members, geom, noise=np.asarray(noise, float), offset=settings.offset,
+                                          steps=settings.model_steps)
+    return geom, null_b2, null_structure
 
 
 def _cluster_terrain(x: np.ndarray, y: np.ndarray, z: np.ndarray, members: list[np.ndarray], z_ref: float

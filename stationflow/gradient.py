@@ -64,6 +64,12 @@ class PlaneFit:
     def _get(self, name: str) -> np.ndarray:
         return self.table[name][self.pattern]
 
+    def noise_part(self, name: str) -> np.ndarray | None:
+        """The reading-noise part of a prior variance (``var_value``, ``var_x``, ``var_y``, ``cov_xy``,
+        ``var_z``), when the fit was given ``noise``; else None."""
+        key = f"{name}_noise"
+        return self._get(key) if key in self.table else None
+
     @property
     def var_value(self) -> np.ndarray:
         """Prior variance of the centre value [unit^2]."""

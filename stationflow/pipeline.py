@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from . import align, errormodel, geometry, ingest, qc
-from .budget import REGIMES, BudgetSettings, compute_budget, row_mean_var
+from .budget import REGIMES, BudgetSettings, compute_budget, model_network, row_mean_var
 from .gradient import fit_planes
 from .config import Config
 from .errors import ConfigError, GeometryError, NoUsableRows
@@ -276,7 +276,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
     total = np.sqrt(noise ** 2 + offset ** 2)
     typical = fit_planes(np.zeros((1, len(ids))), x_all, y_all, members, sigma=total, noise=noise, residuals=False)
-    value_noise = float(np.nanmedian(typical._get("var_value_noise"))) if members else np.nan
+    value_noise = float(np.nanmedian(typical.noise_part("var_value"))) if members else np.nan
     window, h, window_source = _window(config, interval, value_noise, min_rate)
     settings = BudgetSettings(
         sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or errormodel.WIND_FLOOR), offset=offset,
@@ -285,6 +285,8 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
         vertical_regression=(vertical == "regression"),
     )
+    if members and settings.model_error:  # once per run: every time partition uses the same
+        settings.model_network = model_network(x_all, y_all, members, noise, settings)
     z = st_all["elevation"].to_numpy(float)
     if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
         raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
@@ -438,7 +440,7 @@ def remove_lapse(values: np.ndarray, plan: BudgetPlan
                      sigma=np.sqrt(noise ** 2 + s.offset ** 2), noise=noise, min_stations=6, residuals=True)
     gamma = net.grad_z[:, 0]
     var = net.var_z[:, 0] * net.error_scale("larger")[:, 0]
-    var_noise = net._get("var_z_noise")[:, 0]
+    var_noise = net.noise_part("var_z")[:, 0]
     fine = np.isfinite(gamma) & np.isfinite(var) & np.isfinite(var_noise)
     gamma, var, var_noise = (np.where(fine, a, 0.0) for a in (gamma, var, var_noise))
     z_ref = float(np.mean(plan.z[idx]))

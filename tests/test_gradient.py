@@ -239,8 +239,8 @@ def test_many_station_clusters_match_the_pattern_solver(monkeypatch):
                  "n_used", "reason"):
         np.testing.assert_allclose(getattr(b, name), getattr(a, name), rtol=1e-8, atol=1e-12, err_msg=name)
     np.testing.assert_allclose(b.rms, a.rms, rtol=1e-6, atol=1e-9)
-    for name in ("var_value_noise", "var_x_noise", "cov_xy_noise"):
-        np.testing.assert_allclose(b._get(name), a._get(name), rtol=1e-8, atol=1e-14, err_msg=name)
+    for name in ("var_value", "var_x", "cov_xy"):
+        np.testing.assert_allclose(b.noise_part(name), a.noise_part(name), rtol=1e-8, atol=1e-14, err_msg=name)
     assert (a.reason[5] == TOO_FEW).all() and (a.reason[6] == TOO_FEW).all()
 
 
@@ -265,5 +265,5 @@ def test_noise_part_of_the_covariance():
     full = fit_planes(vals, x, y, members, sigma=sig, noise=sig)
     half = fit_planes(vals, x, y, members, sigma=sig, noise=sig / 2)
     for name in ("var_value", "var_x", "var_y", "cov_xy"):
-        np.testing.assert_allclose(full._get(f"{name}_noise"), getattr(full, name), rtol=1e-9, atol=1e-15)
-        np.testing.assert_allclose(half._get(f"{name}_noise"), getattr(full, name) / 4, rtol=1e-9, atol=1e-15)
+        np.testing.assert_allclose(full.noise_part(name), getattr(full, name), rtol=1e-9, atol=1e-15)
+        np.testing.assert_allclose(half.noise_part(name), getattr(full, name) / 4, rtol=1e-9, atol=1e-15)
