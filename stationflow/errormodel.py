@@ -101,26 +101,34 @@ def noise_floor(variable: str) -> float:
     return NOISE_FLOOR.get(variable, NOISE_FLOOR_OTHER)
 
 
+def station_order(station: np.ndarray, time_ns: np.ndarray) -> np.ndarray:
+    """Row order by station, then time (rows that come in time order need only a stable sort by station)."""
+    if time_ns.size < 2 or bool(np.all(time_ns[1:] >= time_ns[:-1])):
+        return np.argsort(station, kind="stable")
+    return np.lexsort((time_ns, station))
+
+
 def reading_noise(station: np.ndarray, time_ns: np.ndarray, values: np.ndarray, n_stations: int, *,
-                  floor: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+                  floor: float, order: np.ndarray | None = None, resolution: bool = True
+                  ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Reading noise per station from the robust spread of second differences.
 
     ``station`` (n,) integer codes 0..n_stations-1, ``time_ns`` (n,) int64,
-    ``values`` (n,) with NaN where unusable.  Only triples of consecutive
-    reports at equal spacing count.  Returns ``(noise, resolution, count)``
-    per station: noise [unit] (the network median where a station has fewer
-    than :data:`MIN_DIFFERENCES` triples, ``floor`` where nothing is known),
-    the resolution of the values (:func:`value_resolution`, the same for
-    every station) and the number of triples used.
+    ``values`` (n,) with NaN where unusable; ``order``: :func:`station_order`
+    of the rows, when already known.  Only triples of consecutive reports at
+    equal spacing count.  Returns ``(noise, resolution, count)`` per station:
+    noise [unit] (the network median where a station has fewer than
+    :data:`MIN_DIFFERENCES` triples, ``floor`` where nothing is known), the
+    resolution of the values (:func:`value_resolution`, the same for every
+    station; 0 with ``resolution=False``) and the number of triples used.
     """
-    ok = np.isfinite(values) & (station >= 0)
-    s, t, x = station[ok], time_ns[ok], values[ok]
-    order = np.lexsort((t, s))
-    s, t, x = s[order], t[order], x[order]
+    order = station_order(station, time_ns) if order is None else order
+    s, t, x = station[order], time_ns[order], values[order]
+    ok = np.isfinite(x) & (s >= 0)
+    s, t, x = s[ok], t[ok], x[ok]
     noise = np.full(n_stations, np.nan)
-    resolution = np.zeros(n_stations)
+    res = value_resolution(x) if resolution else 0.0
     count = np.zeros(n_stations, int)
-    resolution[:] = value_resolution(x)
     if x.size >= 3:
         triple = (s[:-2] == s[1:-1]) & (s[1:-1] == s[2:]) & ((t[1:-1] - t[:-2]) == (t[2:] - t[1:-1]))
         d2 = np.abs(x[:-2] - 2 * x[1:-1] + x[2:])[triple]
@@ -134,8 +142,12 @@ def reading_noise(station: np.ndarray, time_ns: np.ndarray, values: np.ndarray, 
     trusted = noise[~few]
     fallback = float(np.median(trusted)) if trusted.size else floor
     noise = np.where(few, fallback, noise)
-    noise = np.fmax(noise, resolution / np.sqrt(12.0))
-    return np.fmax(noise, floor), resolution, count
+    noise = np.fmax(noise, res / np.sqrt(12.0))
+    return np.fmax(noise, floor), np.full(n_stations, res), count
+
+
+#: values looked at to find the reporting resolution
+SAMPLE_VALUES = 200_000
 
 
 def value_resolution(values: np.ndarray, *, tolerance: float = 0.02) -> float:
@@ -146,7 +158,10 @@ def value_resolution(values: np.ndarray, *, tolerance: float = 0.02) -> float:
     (within ``tolerance`` of a step), as values rounded to 0.01 degF do
     after conversion to kelvin.
     """
-    v = np.unique(values[np.isfinite(values)])
+    v = values[np.isfinite(values)]
+    if v.size > SAMPLE_VALUES:  # a grid shows in any large sample of its values
+        v = v[np.linspace(0, v.size - 1, SAMPLE_VALUES).astype(np.int64)]
+    v = np.unique(v)
     if v.size < 3:
         return 0.0
     q = float(np.min(np.diff(v)))
@@ -174,43 +189,47 @@ def cluster_pairs(members: list[np.ndarray], n_stations: int, *, shared: int = 2
 class CurvatureGeometry:
     """What :func:`curvature_bias` needs that depends only on the network (computed once per run).
 
-    ``pairs`` (P, 2) neighbouring clusters; ``ends`` the sparse (C, P)
-    incidence of pairs on clusters; ``delta`` (P, 2) centroid separations
-    [m]; ``normal_inv`` (C, 3, 3) the pseudo-inverse of each cluster's
-    normal matrix for the Hessian; ``bias_map`` (C, 2, 3): the gradient bias
-    of the cluster's plane at its centre per unit Hessian entry (Hxx, Hxy, Hyy).
+    ``pairs`` (P, 2) neighbouring clusters (sharing at least two stations);
+    ``ends`` the sparse (C, P) incidence of pairs on clusters.  Everything
+    from the pairs' gradient differences (dgx, dgy) to the bias and the
+    residual differences is linear, so it is kept as sparse matrices:
+    ``to_bias[q][k]`` (C, P) gives bias component q from difference
+    component k, ``to_resid[q][k]`` (P, P) the residual difference q.
     """
 
     pairs: np.ndarray
     ends: object
-    delta: np.ndarray
-    normal_inv: np.ndarray
-    bias_map: np.ndarray
+    to_bias: list
+    to_resid: list
 
 
 def curvature_geometry(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], n_stations: int) -> CurvatureGeometry:
     """Precompute :class:`CurvatureGeometry` for the clusters ``members`` of stations at ``x``, ``y`` [m].
 
-    The bias map: a plane fitted through the values ``0.5 d_i^T H d_i`` of
-    a quadratic field (``d_i`` each member's offset from the centroid) has
-    gradient ``P q`` at the centroid, where the true gradient of the
-    quadratic part is zero; P is the plane's (unweighted) gradient operator.
+    The Hessian near cluster c, ``H = (Hxx, Hxy, Hyy)``, is the least-squares
+    fit of ``dG_p = H dc_p`` over the pairs p of c (dc the centroid
+    separation): ``H = N^+ sum_p A_p^T dG_p`` with ``A_p = [[dx, dy, 0],
+    [0, dx, dy]]``.  The bias map: a plane fitted through the values
+    ``0.5 d_i^T H d_i`` of a quadratic field (``d_i`` each member's offset
+    from the centroid) has gradient ``P q`` at the centroid, where the true
+    gradient of the quadratic part is zero; P is the plane's (unweighted)
+    gradient operator.
     """
-    from scipy.sparse import csr_matrix
+    from scipy.sparse import csr_matrix, diags, identity
 
     n_c = len(members)
     pairs = cluster_pairs(members, n_stations)
     cx = np.array([x[np.asarray(m)].mean() for m in members])  # once per cluster and run
     cy = np.array([y[np.asarray(m)].mean() for m in members])
     i, j = pairs[:, 0], pairs[:, 1]
-    delta = np.column_stack([cx[j] - cx[i], cy[j] - cy[i]]) if pairs.size else np.zeros((0, 2))
     n_p = len(pairs)
-    ends = csr_matrix((np.ones(2 * n_p), (np.concatenate([i, j]), np.tile(np.arange(n_p), 2))), shape=(n_c, n_p))
-    # normal matrix of H = (Hxx, Hxy, Hyy) from dG = H dc, per pair A = [[dx, dy, 0], [0, dx, dy]]
-    dx, dy = delta[:, 0], delta[:, 1]
+    dx = cx[j] - cx[i] if n_p else np.zeros(0)
+    dy = cy[j] - cy[i] if n_p else np.zeros(0)
+    rows, cols = np.concatenate([i, j]), np.tile(np.arange(n_p), 2)
+    ends = csr_matrix((np.ones(2 * n_p), (rows, cols)), shape=(n_c, n_p))
     ata = np.stack([dx * dx, dx * dy, 0 * dx, dx * dy, dx * dx + dy * dy, dx * dy, 0 * dx, dx * dy, dy * dy], axis=1)
     normal = np.asarray(ends @ ata).reshape(n_c, 3, 3)
-    normal_inv = np.linalg.pinv(normal, rcond=1e-6, hermitian=True) if n_c else np.zeros((0, 3, 3))
+    ninv = np.linalg.pinv(normal, rcond=1e-6, hermitian=True) if n_c else np.zeros((0, 3, 3))
     bias_map = np.zeros((n_c, 2, 3))
     sizes = np.array([len(m) for m in members])
     for k in np.unique(sizes):  # a loop over cluster sizes, not over clusters or time
@@ -221,7 +240,26 @@ def curvature_geometry(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], 
         P = np.linalg.pinv(A)[:, 1:3, :]  # (n, 2, k) gradient operator
         q = np.stack([0.5 * ddx * ddx, ddx * ddy, 0.5 * ddy * ddy], axis=-1)  # (n, k, 3)
         bias_map[sel] = P @ q
-    return CurvatureGeometry(pairs, ends, delta, normal_inv, bias_map)
+    # H[c, a] from the differences: coefficients of dgx_p and dgy_p for each incident pair (c, p)
+    pdx, pdy = np.tile(dx, 2), np.tile(dy, 2)
+    N = ninv[rows]  # (2P, 3, 3)
+    hx = [N[:, a, 0] * pdx + N[:, a, 1] * pdy for a in range(3)]
+    hy = [N[:, a, 1] * pdx + N[:, a, 2] * pdy for a in range(3)]
+
+    def sparse(vals, shape=(n_c, n_p)):
+        return csr_matrix((vals, (rows, cols)), shape=shape)
+
+    bm = bias_map[rows]  # (2P, 2, 3)
+    to_bias = [[sparse(sum(bm[:, q, a] * h[a] for a in range(3))) for h in (hx, hy)] for q in range(2)]
+    # the pair's mean Hessian, and what it leaves of each difference
+    half = 0.5 * ends.T.tocsr()  # (P, C)
+    H = [[half @ sparse(h[a]) for h in (hx, hy)] for a in range(3)]  # H[a][k]: (P, P)
+    Dx, Dy, eye = diags(dx), diags(dy), identity(n_p, format="csr")
+    to_resid = [
+        [(eye - Dx @ H[0][0] - Dy @ H[1][0]).tocsr(), (-(Dx @ H[0][1]) - Dy @ H[1][1]).tocsr()],
+        [(-(Dx @ H[1][0]) - Dy @ H[2][0]).tocsr(), (eye - Dx @ H[1][1] - Dy @ H[2][1]).tocsr()],
+    ]
+    return CurvatureGeometry(pairs, ends, to_bias, to_resid)
 
 
 def curvature_bias(gx: np.ndarray, gy: np.ndarray, geom: CurvatureGeometry, steps: int
@@ -251,23 +289,22 @@ def curvature_bias(gx: np.ndarray, gy: np.ndarray, geom: CurvatureGeometry, step
         zero = np.zeros((n_t, n_c))
         return zero, zero.copy(), zero.copy()
     i, j = geom.pairs[:, 0], geom.pairs[:, 1]
-    dgx = np.nan_to_num(window_mean(gx[:, j] - gx[:, i], steps, min_weight=0.0)) if steps else np.nan_to_num(gx[:, j] - gx[:, i])
-    dgy = np.nan_to_num(window_mean(gy[:, j] - gy[:, i], steps, min_weight=0.0)) if steps else np.nan_to_num(gy[:, j] - gy[:, i])
-    dx, dy = geom.delta[:, 0], geom.delta[:, 1]
-    rhs = [dgx * dx, dgx * dy + dgy * dx, dgy * dy]  # A^T dG per pair, (T, P) each
-    b = np.stack([np.asarray(geom.ends @ r.T).T for r in rhs], axis=-1)  # (T, C, 3)
-    hess = np.einsum("cab,tcb->tca", geom.normal_inv, b)
-    bias = np.einsum("cqa,tca->tcq", geom.bias_map, hess)
-    hp = 0.5 * (hess[:, i] + hess[:, j])  # (T, P, 3): what the pair's two Hessians (their mean) explain
-    rx = dgx - (hp[..., 0] * dx + hp[..., 1] * dy)
-    ry = dgy - (hp[..., 1] * dx + hp[..., 2] * dy)
+    if steps:  # smoothing the gradients smooths their differences (a linear map)
+        gx, gy = window_mean(gx, steps, min_weight=0.0), window_mean(gy, steps, min_weight=0.0)
+    dgx = np.nan_to_num(gx[:, j] - gx[:, i]).T  # (P, T)
+    dgy = np.nan_to_num(gy[:, j] - gy[:, i]).T
+    (bxx, bxy), (byx, byy) = geom.to_bias
+    bias_x = np.ascontiguousarray((bxx @ dgx + bxy @ dgy).T)
+    bias_y = np.ascontiguousarray((byx @ dgx + byy @ dgy).T)
+    (rxx, rxy), (ryx, ryy) = geom.to_resid
+    rx = rxx @ dgx + rxy @ dgy
+    ry = ryx @ dgx + ryy @ dgy
     square = 0.25 * (rx * rx + ry * ry)  # per component, shared between the two clusters of the pair
-    total = np.asarray(geom.ends @ square.T).T
-    count = np.asarray(geom.ends.sum(axis=1)).ravel()[None, :]
-    structure = np.where(count > 0, total / np.maximum(count, 1), 0.0)
+    count = np.asarray(geom.ends.sum(axis=1)).ravel()[:, None]
+    structure = np.ascontiguousarray((np.asarray(geom.ends @ square) / np.maximum(count, 1)).T)
     if steps:
         structure = np.nan_to_num(window_mean(structure, steps, min_weight=0.0))
-    return bias[..., 0], bias[..., 1], structure
+    return bias_x, bias_y, structure
 
 
 #: realisations of the sensor errors used for the null levels of the model error

@@ -268,10 +268,16 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
     members = [to_full[net.members[i]] for i in ok_rows]
     # the error model: reading noise per station (declared or learned), offsets (declared or default)
-    codes = pd.Categorical(obs["station_id"].astype(str), categories=ids).codes.astype(np.int64)
+    sid = obs["station_id"]
+    if isinstance(sid.dtype, pd.CategoricalDtype):  # by the category codes: no pass over every label
+        lookup = pd.Index(ids).get_indexer(sid.cat.categories.astype(str))
+        codes = np.where(sid.cat.codes.to_numpy() >= 0, lookup[sid.cat.codes.to_numpy()], -1).astype(np.int64)
+    else:
+        codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
     time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    order = errormodel.station_order(codes, time_ns)
     noise, noise_info = _reading_noise(var, quantity, config, codes, time_ns,
-                                       np.where(mask_q, quantity_values, np.nan), len(ids))
+                                       np.where(mask_q, quantity_values, np.nan), len(ids), order)
     offset, offset_source = offset_uncertainty(var, config)
     min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
     total = np.sqrt(noise ** 2 + offset ** 2)
@@ -310,8 +316,10 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         frame["v"] = np.where(ok_w, v, np.nan)
         frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
         if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
-            su, _, _ = errormodel.reading_noise(codes, time_ns, frame["u"].to_numpy(), len(ids), floor=errormodel.WIND_FLOOR)
-            sv, _, _ = errormodel.reading_noise(codes, time_ns, frame["v"].to_numpy(), len(ids), floor=errormodel.WIND_FLOOR)
+            su, _, _ = errormodel.reading_noise(codes, time_ns, frame["u"].to_numpy(), len(ids), order=order,
+                                                floor=errormodel.WIND_FLOOR, resolution=False)
+            sv, _, _ = errormodel.reading_noise(codes, time_ns, frame["v"].to_numpy(), len(ids), order=order,
+                                                floor=errormodel.WIND_FLOOR, resolution=False)
             settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
             choices["wind_noise_source"] = "learned from second differences of each station's wind components"
         else:
@@ -357,12 +365,12 @@ def _vertical_mode(setting: str, variable: str, stations: pd.DataFrame) -> str:
 
 
 def _reading_noise(variable: str, quantity: str, config: Config, codes: np.ndarray, time_ns: np.ndarray,
-                   values: np.ndarray, n_stations: int) -> tuple[np.ndarray, dict]:
+                   values: np.ndarray, n_stations: int, order: np.ndarray) -> tuple[np.ndarray, dict]:
     """Reading noise per station [unit]: declared, or learned (:func:`errormodel.reading_noise`); and what to record."""
     declared = declared_noise(variable, config)
     if declared is not None:
         return np.full(n_stations, declared), {"noise_source": "uncertainty.sensor"}
-    noise, resolution, count = errormodel.reading_noise(codes, time_ns, values, n_stations,
+    noise, resolution, count = errormodel.reading_noise(codes, time_ns, values, n_stations, order=order,
                                                         floor=errormodel.noise_floor(quantity))
     return noise, {"noise_source": "learned from second differences of each station's series",
                    "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
