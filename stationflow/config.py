@@ -26,6 +26,7 @@ class Key:
     types: tuple[type, ...]
     doc: str
     choices: tuple[str, ...] = ()
+    unset: str = "per variable"  # how the documentation shows a default of None (chosen at run time)
 
 
 # Per-variable QC defaults live in qc.py (DEFAULT_RANGE, ...) and are merged
@@ -70,7 +71,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "offset": Key({}, (dict,), "variable -> standard uncertainty of each sensor's persistent offset (enters values and gradients, "
                                    "cancels in tendencies) (default per variable: air_temperature 0.1 K, see docs/method.md)"),
         "wind_component": Key(None, (int, float), "reading noise of the wind components u and v [m s-1] (default: learned from "
-                                                  "the data, at least 0.1; WMO-No. 8 Annex 1.E gives 0.5 m/s as achievable, from memory)"),
+                                                  "the data, at least 0.1; WMO-No. 8 Annex 1.E gives 0.5 m/s as achievable, from memory)",
+                              unset="learned from the data"),
         "calibration": Key(0.0, (int, float), "older spelling of uncertainty.offset for the budgeted variable (0 = not set) [variable unit]"),
         "gradient_error": Key("larger", (str,), "prior: from sensor uncertainty; posterior: from fit residuals where dof > 0; larger: the larger of the two",
                               ("prior", "posterior", "larger")),

@@ -86,7 +86,7 @@ def config_reference() -> str:
     for section, keys in SCHEMA.items():
         parts += [f"## `[{section}]`", "", "| key | default | meaning |", "|---|---|---|"]
         for name, key in keys.items():
-            default = "per variable" if key.default is None else json.dumps(key.default)
+            default = key.unset if key.default is None else json.dumps(key.default)
             meaning = key.doc + (f" (one of: {', '.join(key.choices)})" if key.choices else "")
             parts.append(f"| `{section}.{name}` | `{default}` | {meaning} |")
         parts.append("")
