@@ -314,6 +314,28 @@ def classify_codes(tendency: np.ndarray, advection: np.ndarray, residual: np.nda
     return out
 
 
+#: a split is implausible when both parts exceed this many times the change ...
+IMPLAUSIBLE_RATIO = 5.0
+#: ... and this many times min_rate (2.5 K/h for temperature by default): large parts that cancel
+IMPLAUSIBLE_RATE = 10.0
+
+
+def implausible(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, *, min_rate: float) -> np.ndarray:
+    """Rows whose advected and in-situ parts are each far larger than the change and cancel (a guard).
+
+    Such a split comes from a gradient the plane cannot have (a height
+    difference posing as a horizontal gradient, a broken sensor): true
+    when ``|A|`` and ``|R|`` both exceed :data:`IMPLAUSIBLE_RATIO` x
+    ``|tendency|`` and :data:`IMPLAUSIBLE_RATE` x ``min_rate`` (common
+    practice).  Those rows are labelled undetermined and kept out of the
+    main periods.
+    """
+    floor = IMPLAUSIBLE_RATE * min_rate if min_rate > 0 else 0.0
+    a, r, t = np.abs(advection), np.abs(residual), np.abs(tendency)
+    with np.errstate(invalid="ignore"):
+        return (a > IMPLAUSIBLE_RATIO * t) & (r > IMPLAUSIBLE_RATIO * t) & (a > floor) & (r > floor)
+
+
 def compute_budget(
     values: np.ndarray,
     u: np.ndarray,
@@ -463,6 +485,8 @@ def compute_budget(
     out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
                                    significance=s.significance, dominance=s.dominance, min_rate=s.min_rate,
                                    tendency_se=out["tendency_se"])
+    out["implausible"] = implausible(tendency, adv_mean, residual, min_rate=s.min_rate)
+    out["regime"][out["implausible"]] = np.int8(REGIMES.index("undetermined"))
     return out
 
 

@@ -427,6 +427,11 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
         lines.append("main periods:")
         tz = run.check.config["observations"]["timezone"]
         lines += ["  " + describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
+    if run.choices.get("wind") == "none":
+        lines.append("no wind observed: advection cannot be estimated, so every row is undetermined "
+                     "(map the wind columns in [observations.columns])")
+    if run.choices.get("qc_tests_off"):
+        lines.append("QC switched off: " + ", ".join(run.choices["qc_tests_off"]))
     acc = run.check.data.accounting
     lines.append(f"rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, rejected {acc['rows_rejected']:,}")
     lines += notes

@@ -104,6 +104,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "min_shape": Key(0.2, (int, float), "reject clusters with a smaller shape factor 4*sqrt(3)*area/sum(L^2) (Huntley et al. 2022)"),
         "min_spread": Key(0.3, (int, float), "reject clusters of more than 3 stations with sqrt(lambda2/lambda1) below this (common practice)"),
         "max_side_km": Key(0.0, (int, float), "reject clusters with a longer side (0 = no limit) [km]"),
+        "max_height_range_m": Key(1000.0, (int, float), "reject clusters whose stations span more height than this (0 = no limit) [m]: "
+                                                        "one vertical gradient cannot describe a kilometre of mountainside (common practice)"),
         "max_noise_amplification": Key(0.0, (int, float), "reject clusters whose gradient error per unit sensor noise exceeds this (0 = no limit) [km-1]"),
     },
     "budget": {

@@ -238,6 +238,9 @@ def screen_clusters(metrics: pd.DataFrame, sizes: np.ndarray, config: Config) ->
     if nc["max_side_km"] > 0:
         test((metrics["longest_side_km"] > nc["max_side_km"]).to_numpy(),
              "longest side {:.1f} km > " + f"{nc['max_side_km']:g}", "longest_side_km")
+    if nc["max_height_range_m"] > 0 and "height_range_m" in metrics:
+        test((metrics["height_range_m"] > nc["max_height_range_m"]).to_numpy(),
+             "stations span {:.0f} m of height > " + f"{nc['max_height_range_m']:g}", "height_range_m")
     if nc["max_noise_amplification"] > 0:
         test(ok_geom & (metrics["noise_amplification"] > nc["max_noise_amplification"]).to_numpy(),
              "noise amplification {:.3g} km-1 > " + f"{nc['max_noise_amplification']:g}", "noise_amplification")
@@ -336,6 +339,8 @@ def build_network(stations: pd.DataFrame, config: Config | None = None) -> Netwo
     else:
         names, members = read_cluster_file(nc["cluster_file"], ids)
     metrics = cluster_metrics(x, y, members)
+    z = st["elevation"].to_numpy(float) if "elevation" in st else np.full(len(st), np.nan)
+    metrics["height_range_m"] = [float(np.ptp(z[m])) if np.isfinite(z[m]).all() else np.nan for m in members]  # per cluster
     sizes = np.array([len(m) for m in members])
     ok, reasons = screen_clusters(metrics, sizes, cfg)
     lon, lat = to_lonlat(metrics["centroid_x"].to_numpy(), metrics["centroid_y"].to_numpy(), crs)
@@ -357,5 +362,5 @@ def build_network(stations: pd.DataFrame, config: Config | None = None) -> Netwo
 def cluster_table(network: Network) -> pd.DataFrame:
     """The clusters.csv table: id, members, centroid, area, angles, metrics, status, reason."""
     cols = ["cluster", "stations", "n_stations", "latitude", "longitude", "area_km2", "min_angle", "max_angle",
-            "shape", "spread", "longest_side_km", "noise_amplification", "status", "reason"]
+            "shape", "spread", "longest_side_km", "height_range_m", "noise_amplification", "status", "reason"]
     return network.clusters[cols].copy()

@@ -632,10 +632,23 @@ def read_observations(
                                         encoding=oc["encoding"], section="observations")
                 frame, lines, rejected = table.cells, table.lines, list(table.rejected)
                 n_rows = len(lines) + len(rejected)
+                if oc["layout"] == "long":
+                    _check_mapped(table.header, oc["columns"], str(p))
                 if oc["layout"] == "wide":
                     frame, lines = _melt_wide(frame, lines, cfg, str(p))
         files = str(sources[0]) if sources else str(p)  # one file: one name for every row
     return _canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations)
+
+
+def _check_mapped(header: list[str], mapping: dict[str, str], source: str) -> None:
+    """Stop when a column named in ``observations.columns`` is not in the file (a misspelling would lose it silently)."""
+    missing = [c for c in mapping if c not in header]
+    if missing:
+        c = missing[0]
+        raise IngestError(
+            f"{source}: column {c!r} named in observations.columns ({c} = \"{mapping[c]}\") is not in the file; "
+            f"its columns are: {', '.join(map(str, header))}"
+        )
 
 
 def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.DataFrame | None:
@@ -673,6 +686,8 @@ def _read_typed_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> pd.D
         return None
     if len(header) < 3 or len(set(header)) != len(header) or any(c == "" for c in header):
         return None
+    if any(c not in header for c in oc["columns"]):
+        return None  # a mapped column is missing: the general reader says so
     names = _rename(header, oc["columns"])
     canon = list(names.values())
     if "station_id" not in canon or "time" not in canon or {"latitude", "longitude"} & set(canon):

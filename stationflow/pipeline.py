@@ -92,12 +92,76 @@ def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, p
     slips = qc.unit_slips(data.observations, config["observations"]["units"], qc.thresholds(config)["range"])
     if slips:
         raise ConfigError(f"{obs}: {slips[0]}" + (f" (and {len(slips) - 1} more variable(s))" if len(slips) > 1 else ""))
+    swapped = coordinates_look_swapped(data.stations, config["observations"]["timezone"])
+    if swapped:
+        log.warning(swapped)
     progress("quality control")
     result = qc.run_qc(data.observations, data.stations, config)
     flags = qc.flag_table(data.observations, result)
     periods = qc.flagged_periods(data.observations, result, table=flags)
     s = qc.summary(data.observations, result)
     return CheckResult(data, result, flags, periods, s["per_test"], s["per_station"], config)
+
+
+def _zone_location(name: str) -> tuple[float, float] | None:
+    """(latitude, longitude) of an IANA zone's principal place, from the tz database's zone1970.tab, or None."""
+    import re
+
+    paths = [Path("/usr/share/zoneinfo/zone1970.tab")]
+    try:
+        import tzdata
+
+        paths.insert(0, Path(tzdata.__file__).parent / "zoneinfo" / "zone1970.tab")
+    except ImportError:
+        pass
+    for path in paths:
+        try:
+            lines = path.read_text(encoding="utf-8").splitlines()
+        except OSError:
+            continue
+        for line in lines:
+            parts = line.split("\t")
+            if len(parts) >= 3 and parts[2] == name.strip():
+                m = re.fullmatch(r"([+-])(\d{2})(\d{2})(\d{2})?([+-])(\d{3})(\d{2})(\d{2})?", parts[1])
+                if not m:
+                    return None
+                lat = (int(m[2]) + int(m[3]) / 60 + int(m[4] or 0) / 3600) * (1 if m[1] == "+" else -1)
+                lon = (int(m[6]) + int(m[7]) / 60 + int(m[8] or 0) / 3600) * (1 if m[5] == "+" else -1)
+                return lat, lon
+        return None
+    return None
+
+
+def coordinates_look_swapped(stations: pd.DataFrame, timezone: str) -> str:
+    """A sentence when latitude and longitude look swapped given the data's time zone, else "".
+
+    The time zone places the network: an IANA zone by its principal place in
+    the tz database (zone1970.tab), distances by pyproj's WGS84 geodesic.
+    When the stations lie more than 2,500 km from it while the swapped pair
+    would lie less than half as far (and within 2,500 km), the columns were
+    most likely swapped.  UTC and fixed offsets say too little to tell.
+    """
+    from pyproj import Geod
+
+    from .ingest import is_utc
+
+    if stations.empty or is_utc(timezone):
+        return ""
+    place = _zone_location(timezone)
+    if place is None:
+        return ""
+    lat, lon = float(stations["latitude"].median()), float(stations["longitude"].median())
+    if abs(lon) > 90.0:
+        return ""  # swapped, the longitude would not be a latitude
+    geod = Geod(ellps="WGS84")
+    _, _, given = geod.inv(place[1], place[0], lon, lat)
+    _, _, swapped = geod.inv(place[1], place[0], lat, lon)
+    if given > 2.5e6 and swapped < min(0.5 * given, 2.5e6):
+        return (f"latitude and longitude look swapped: the stations are at about {lat:.2f} N, {lon:.2f} E, "
+                f"{given / 1000:,.0f} km from where {timezone} keeps its clocks; swapped they would be "
+                f"{swapped / 1000:,.0f} km from it. Check the latitude and longitude columns "
+                "(stations.columns / observations.columns)")
+    return ""
 
 
 def run_network(stations: pd.DataFrame, config: Config) -> geometry.Network:
@@ -259,7 +323,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
                           "set network.clusters = 'nearest' (with network.k >= 5) or use 'measured'")
     if net.usable.empty:
         raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
-                            "and relax [network] min_angle/min_shape/max_side_km")
+                            "and relax [network] min_angle/min_shape/max_side_km/max_height_range_m")
     interval = _interval(config, obs, chk.qc.interval)
     ids = st_all["station_id"].tolist()
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
@@ -299,7 +363,10 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     lapse_stations = None
     if vertical == "measured":
         lapse_stations = np.flatnonzero(np.isfinite(z) & np.isin(np.arange(len(ids)), np.unique(codes[mask_q])))
+    qc_off = [name for name, on in (("all QC tests", config["qc"]["enabled"]), ("spatial", config["qc"]["spatial"]))
+              if not on]
     choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
+               "qc_tests_off": qc_off,
                "min_rate": min_rate, "offset": offset, "offset_source": offset_source, **noise_info}
     # the rows and values the estimator may use
     frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
@@ -325,7 +392,8 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         else:
             choices["wind_noise_source"] = "uncertainty.wind_component"
     else:
-        log.warning("no wind observations: advection cannot be estimated")
+        log.warning("no wind observations: advection cannot be estimated, so every row is undetermined")
+        choices["wind"] = "none"
     masts = _masts(st_all, x_all, y_all)
     if masts is not None and "air_temperature" in obs:
         frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
@@ -655,6 +723,7 @@ LONG_NAMES = {
     "gradient_bearing": "bearing toward higher values (true north)",
     "inversion": "mast temperature difference, upper minus surface sensor (network mean)",
     "regime": "advective, in_situ, mixed, steady or undetermined",
+    "implausible": "advected and in-situ parts each far larger than the change and cancelling (labelled undetermined)",
     "gap_filled": "value interpolated across a short gap (no fit at this time)",
     "divergence": "horizontal divergence of the wind (plane fits of u and v)",
     "divergence_se": "standard error of divergence",
@@ -674,7 +743,7 @@ def _units(unit: str) -> dict[str, str]:
         "rms": unit, "cond": "1", "vertical_gradient": f"{unit} (100 m)-1", "vertical_gradient_se": f"{unit} (100 m)-1",
         "model_error": grad,
         "wind_speed": "m s-1", "wind_from_direction": "degree", "gradient_bearing": "degree", "inversion": "K",
-        "regime": "1", "gap_filled": "1",
+        "regime": "1", "gap_filled": "1", "implausible": "1",
         "divergence": "s-1", "divergence_se": "s-1", "vorticity": "s-1", "vorticity_se": "s-1",
     }
 

@@ -42,6 +42,7 @@ class BudgetSummary:
     #: rows where the model error (the field is not a plane) is larger than the gradient error from the sensors
     not_planar: np.ndarray | None = None  # per cluster
     planar_rows: np.ndarray | None = None  # per cluster: rows with both errors known
+    implausible_rows: int = 0  # rows whose parts were each far larger than the change (budget.implausible)
 
     @classmethod
     def allocate(cls, times: pd.DatetimeIndex, clusters: pd.DataFrame) -> "BudgetSummary":
@@ -70,6 +71,8 @@ class BudgetSummary:
             ok = det & np.isfinite(a)
             self.sums[k] += np.where(ok, a, 0.0).sum(axis=0)
             self.counts[k] += ok.sum(axis=0)
+        if "implausible" in block:
+            self.implausible_rows += int(np.count_nonzero(block["implausible"]))
         if "model_error" in block and "grad_x_se" in block:
             if self.not_planar is None:
                 self.not_planar = np.zeros(reg.shape[1], np.int64)

@@ -125,3 +125,40 @@ def test_a_station_far_outside_the_network_is_named(runner, tmp_path, caplog):
     assert len(far) == 1 and st.loc[3, "station_id"] in far[0]
     assert not any("far outside" in r.getMessage() for r in caplog.records if st.loc[4, "station_id"] in r.getMessage()
                    and st.loc[3, "station_id"] not in r.getMessage())
+
+
+def test_a_mapped_column_that_is_absent_stops_with_its_name(runner, tmp_path):
+    st, obs = linear_night(8, 6, seed=2, elevation=False)
+    paths = write_export(tmp_path / "in", st, obs)
+    paths["config"].write_text(paths["config"].read_text() + '[observations.columns]\nWindSpd = "wind_speed"\n',
+                               encoding="utf-8")
+    res = _run(runner, paths, tmp_path / "out", command="budget")
+    assert res.exit_code == 2
+    line = res.stderr.strip()
+    assert "\n" not in line and "'WindSpd'" in line and "observations.columns" in line and "wind_from_direction" in line
+
+
+def test_swapped_latitude_and_longitude_are_named(runner, tmp_path, caplog):
+    """A network near Vienna (47.5 N, 14 E) whose columns are mapped the wrong way round (14 N, 47.5 E: Yemen)."""
+    st, obs = linear_night(8, 12, seed=2, elevation=False, tz="Europe/Vienna")
+    st = st.assign(latitude=47.5 + (st["latitude"] - 45.0), longitude=14.0 + (st["longitude"] - 10.0))
+    swapped = st.rename(columns={"latitude": "longitude", "longitude": "latitude"})
+    for folder, table, expect in (("bad", swapped, True), ("good", st, False)):
+        caplog.clear()
+        paths = write_export(tmp_path / folder, table, obs, time_format="%Y-%m-%d %H:%M", tz="Europe/Vienna")
+        with caplog.at_level("WARNING", logger="stationflow"):
+            res = _run(runner, paths, tmp_path / f"out_{folder}", command="check")
+        assert res.exit_code == 0, res.stderr
+        assert any("look swapped" in r.getMessage() for r in caplog.records) == expect, folder
+
+
+def test_no_wind_is_named_as_the_reason(runner, tmp_path):
+    st, obs = linear_night(10, 12, seed=2, elevation=False)
+    paths = write_export(tmp_path / "in", st, obs.drop(columns=["wind_speed", "wind_from_direction"]))
+    res = runner.invoke(app, ["budget", "--stations", str(paths["stations"]), "--obs", str(paths["obs"]), "--config",
+                              str(paths["config"]), "--out", str(tmp_path / "out")])
+    assert res.exit_code == 0, res.stderr
+    assert "no wind observed" in res.stdout
+    run = json.loads((tmp_path / "out" / "run.json").read_text())
+    assert run["wind"] == "none" and {k for k, v in run["regimes"].items() if v} == {"undetermined"}
+    assert "No wind was observed" in (tmp_path / "out" / "report.html").read_text()

@@ -181,3 +181,23 @@ def test_shared_work_gives_the_same_numbers():
             assert np.array_equal(x, y, equal_nan=True)
     mean, var, n = cluster_mean(a, memb, variance=False)
     assert var is None and np.array_equal(mean, mean_a, equal_nan=True) and np.array_equal(n, n_a)
+
+
+def test_implausible_splits_are_flagged_and_never_a_regime():
+    # advection +50.3 and in situ -50.3 against a change of 0.01 K/h (an alpine cluster spanning 2 km of height)
+    from stationflow.budget import implausible
+
+    t, a, r = np.array([0.01, -1.4, 0.5]), np.array([50.32, -0.1, 3.0]), np.array([-50.31, -1.3, -2.5])
+    assert implausible(t, a, r, min_rate=0.25).tolist() == [True, False, False]
+
+
+def test_implausible_rows_are_undetermined_in_the_budget():
+    x, y = equilateral(10000.0)
+    n = 13
+    vals = np.tile(280 + np.array([0.0, 40.0, -40.0]), (n, 1))  # a 40 K step between stations: no plane is like it
+    u, v = np.full_like(vals, 5.0), np.zeros_like(vals)
+    out = _run(vals, u, v, x, y, [np.arange(3)], interval_s=600.0, sigma=0.1, min_rate=0.25)
+    # a steady field: no change, but a huge gradient in a 5 m/s wind gives an advection that the residual cancels
+    mid = out["implausible"][3:-3, 0]
+    assert mid.all()
+    assert (out["regime"][3:-3, 0] == REGIMES.index("undetermined")).all()

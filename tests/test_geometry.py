@@ -143,3 +143,14 @@ def test_collinear_network_is_a_clear_error():
     st = _stations([45.0, 45.1, 45.2], [10.0, 10.0, 10.0])
     with pytest.raises(GeometryError, match="collinear"):
         geometry.build_network(st, from_dict({}))
+
+
+def test_clusters_spanning_too_much_height_are_screened_with_a_reason():
+    from stationflow import config, geometry, synthetic
+
+    st = synthetic.network(20, radius_km=10, seed=5, elevation=lambda x, y: 500 + 0.12 * x)  # 2.4 km of relief
+    net = geometry.build_network(st.drop(columns=["x", "y"]), config.load(None))
+    tall = net.clusters["height_range_m"] > 1000
+    assert tall.any() and (~tall).any()
+    assert (net.clusters.loc[tall, "status"] == "rejected").all()
+    assert net.clusters.loc[tall, "reason"].str.contains("m of height > 1000").all()

@@ -178,6 +178,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "error_model": error_model_record(run),
         "vertical": {"setting": run.choices.get("vertical_setting"), "used": run.choices.get("vertical")},
         "window_source": run.choices.get("window_source"), "min_rate": run.settings.min_rate,
+        "qc_tests_off": run.choices.get("qc_tests_off", []), "wind": run.choices.get("wind", "observed"),
+        "implausible_rows": summary.implausible_rows,
         "projection": run.network.crs,
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
@@ -238,6 +240,16 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         "'undetermined' means too few good stations in the cluster for a plane, gaps at the window ends, or a "
         "change whose cause cannot be told (both parts too uncertain).",
     ]
+    if run.choices.get("wind") == "none":
+        quality.insert(0, "No wind was observed (no wind_speed and wind_from_direction columns): the advection cannot "
+                          "be estimated, so every row is undetermined. Map the wind columns in [observations.columns].")
+    if bs.implausible_rows:
+        quality.append(f"{bs.implausible_rows} rows had advected and in-situ parts each over 5 times the observed change "
+                       "and cancelling (usually height differences or a broken sensor posing as a gradient): they are "
+                       "marked in the implausible column, labelled undetermined and left out of the main periods.")
+    if run.choices.get("qc_tests_off"):
+        quality.append("Quality-control tests switched off in the configuration: "
+                       + ", ".join(run.choices["qc_tests_off"]) + "; values they would have caught were used.")
     if bs.not_planar is not None and bs.planar_rows.sum():
         share = bs.not_planar.sum() / bs.planar_rows.sum()
         worst = np.argsort(-bs.not_planar / np.maximum(bs.planar_rows, 1))[:5]
