@@ -256,8 +256,8 @@ def _check_summary(chk, out: Path) -> str:
             + (f" (and {len(flagged) - 6} more in qc_flags.csv)" if len(flagged) > 6 else ""))
     big = chk.periods[chk.periods["values"] >= 3]
     for p in big.head(12).itertuples():
-        lines.append(f"  {p.station_id} {p.variable}: {p.flag} ({p.tests}) {pd.Timestamp(p.start):%Y-%m-%d %H:%M}"
-                     f" to {pd.Timestamp(p.end):%H:%M} UTC, {p.values} values")
+        lines.append(f"  {p.station_id} {p.variable} {pd.Timestamp(p.start):%Y-%m-%d %H:%M} to {pd.Timestamp(p.end):%H:%M} UTC:"
+                     f" {p.values} values flagged, {p.bad_values} bad ({p.tests})")
     if acc["rows_rejected"]:
         first = d.rejected.head(3)
         for r in first.itertuples():

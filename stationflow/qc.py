@@ -953,7 +953,7 @@ def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = 
     """Contiguous periods of non-good values per station and variable (for the check summary)."""
     t = (flag_table(observations, result) if table is None else table).copy()
     if t.empty:
-        return pd.DataFrame(columns=["station_id", "variable", "start", "end", "values", "flag", "tests"])
+        return pd.DataFrame(columns=["station_id", "variable", "start", "end", "values", "bad_values", "flag", "tests"])
     # vectorised over flagged values: sort, cut into periods, reduce each period with ufunc.reduceat
     s_codes, s_ids = pd.factorize(t["station_id"], sort=True)
     v_codes, v_ids = pd.factorize(t["variable"], sort=True)
@@ -967,14 +967,15 @@ def flagged_periods(observations: pd.DataFrame, result: QCResult, *, gap: str = 
     names = sorted({n for lab in t_labels for n in str(lab).split("+")})
     masks = np.array([sum(1 << names.index(n) for n in str(lab).split("+")) for lab in t_labels], dtype=np.int64)
     union = np.bitwise_or.reduceat(masks[t_codes], starts)
-    is_bad = np.maximum.reduceat((t["flag"].to_numpy()[order] == "bad").astype(np.int8), starts)
+    bad_values = np.add.reduceat((t["flag"].to_numpy()[order] == "bad").astype(np.int64), starts)
+    is_bad = bad_values > 0
     time_sorted = pd.DatetimeIndex(ns).tz_localize("UTC")
     ends = np.append(starts[1:], len(order)) - 1
     return pd.DataFrame({
         "station_id": np.asarray(s_ids, dtype=object)[s_codes[starts]],
         "variable": np.asarray(v_ids, dtype=object)[v_codes[starts]],
         "start": time_sorted[starts], "end": time_sorted[ends], "values": ends - starts + 1,
-        "flag": np.where(is_bad > 0, "bad", "suspect"),
+        "bad_values": bad_values, "flag": np.where(is_bad, "bad", "suspect"),
         "tests": _mask_labels(union, names),
     })
 

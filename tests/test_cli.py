@@ -235,7 +235,7 @@ def test_check_command_summary(tmp_path, runner):
                               "--config", str(FROST / "config.toml"), "--out", str(tmp_path)])
     assert res.exit_code == 0, res.stderr
     assert "rows read 2,686, accepted 2,686, rejected 0" in res.stdout
-    assert "HV11 air_temperature: suspect (persistence)" in res.stdout
+    assert "HV11 air_temperature 2026-04-15 07:55 to 11:00 UTC: 38 values flagged, 0 bad (persistence)" in res.stdout
     assert "HV04 air_temperature" in res.stdout
     assert (tmp_path / "qc_overview.png").exists()
 
@@ -305,3 +305,41 @@ def test_python_api_page_runs(tmp_path, monkeypatch):
     monkeypatch.chdir(tmp_path)
     exec(compile(code.replace('"sample_data/', f'"{ROOT.as_posix()}/sample_data/'), "python-api.md", "exec"), {})
     assert (tmp_path / "budget_timeseries.png").exists()
+
+
+def test_report_title_and_cautions_fit_the_variable(frost_out, tmp_path):
+    from typer.testing import CliRunner
+
+    from stationflow.report.outputs import display_name
+
+    assert [display_name(v) for v in ("pm2_5", "pm25", "PM10", "air_temperature")] == ["PM2.5", "PM2.5", "PM10",
+                                                                                      "air temperature"]
+    frost = (frost_out / "report.html").read_text()
+    assert "<h1>stationflow budget: air temperature</h1>" in frost
+    assert "wind machines" in frost and "PM2.5 sensors need calibration" not in frost
+    town = ROOT / "sample_data" / "town"
+    out = tmp_path / "town"
+    res = CliRunner().invoke(app, ["budget", "--stations", str(town / "stations.csv"), "--obs", str(town / "observations.csv"),
+                                   "--config", str(town / "config.toml"), "--out", str(out), "--quiet"])
+    assert res.exit_code == 0, res.output
+    page = (out / "report.html").read_text()
+    assert "<h1>stationflow budget: PM2.5</h1>" in page
+    assert "PM2.5 sensors need calibration" in page and "wind machines" not in page and "bud temperature" not in page
+
+
+def test_report_counts_agree_with_run_json(frost_out):
+    """Every QC count the report gives comes from the same table as run.json."""
+    import html as html_mod
+
+    run = json.loads((frost_out / "run.json").read_text())
+    page = html_mod.unescape((frost_out / "report.html").read_text())
+    flags = run["qc"]["flags"]
+    suspect = sum(c["suspect"] for c in flags.values())
+    bad = sum(c["bad"] for c in flags.values())
+    assert f"flagged {suspect} values suspect and {bad} bad" in page
+    per_period = [(int(n), int(b)) for n, b in re.findall(r"QC: \S+ \S+ .*?: (\d+) values flagged, (\d+) bad", page)]
+    assert per_period and sum(b for _, b in per_period) <= bad and all(b <= n for n, b in per_period)
+    qc_table = pd.read_csv(frost_out / "qc_flags.csv")
+    assert (qc_table["flag"] == "bad").sum() == bad and (qc_table["flag"] == "suspect").sum() == suspect
+    for name, count in run["regimes"].items():
+        assert f"{name.replace('_', ' ')} {count}" in page

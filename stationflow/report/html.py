@@ -15,20 +15,40 @@ import pandas as pd
 
 from .atomic import atomic_write
 
-CAUTIONS = [
-    "This report is a decision aid, not an alarm system or a forecast. Keep independent low-temperature "
-    "and air-quality alarms, and follow local codes, your extension service and licensed professional practice; "
-    "they prevail over anything shown here.",
-    "Frost: critical bud temperatures are averages for a 30-minute exposure, not guarantees; act on the "
-    "10 % kill values with a margin. Screen-height air can differ from bud temperature by 1-2 degC on clear calm nights.",
-    "Frost: wind machines help only with an inversion (warmer air aloft) and light wind; in advective frost "
-    "they mix in no warm air. Sprinklers, once started, must run until all ice has melted. Orchard heaters carry fire "
-    "and air-quality risks and are regulated in many places.",
-    "Air quality: low-cost PM2.5 sensors need calibration against reference monitors; differences in sensor gain "
-    "look like gradients and can fake advection. Public health messages belong to the responsible agency.",
-    "The plane model is weakest on calm nights with cold pools and when clusters are larger than the feature; "
-    "'steady' means the terms were too small to tell apart, not that nothing happened.",
-]
+#: the caution every report opens with
+DECISION_AID = ("This report is a decision aid, not an alarm system or a forecast. Keep independent low-temperature "
+                "and air-quality alarms, and follow local codes, your extension service and licensed professional "
+                "practice; they prevail over anything shown here.")
+#: cautions by the kind of variable budgeted (a frost report gets no PM cautions and the other way round)
+CAUTIONS_BY_KIND = {
+    "temperature": [
+        "Frost: critical bud temperatures are averages for a 30-minute exposure, not guarantees; act on the "
+        "10 % kill values with a margin. Screen-height air can differ from bud temperature by 1-2 degC on clear calm "
+        "nights.",
+        "Frost: wind machines help only with an inversion (warmer air aloft) and light wind; in advective frost "
+        "they mix in no warm air. Sprinklers, once started, must run until all ice has melted. Orchard heaters carry "
+        "fire and air-quality risks and are regulated in many places.",
+    ],
+    "concentration": [
+        "Air quality: low-cost PM2.5 sensors need calibration against reference monitors; differences in sensor gain "
+        "look like gradients and can fake advection. Public health messages belong to the responsible agency.",
+        "An in-situ rise can be a local source or a shallowing boundary layer concentrating what is there; read it "
+        "with the time of day before looking for a source.",
+    ],
+    "other": [],
+}
+GENERAL = ("The plane model is weakest on calm nights with cold pools and when clusters are larger than the feature; "
+           "'steady' means the change was too small to tell from zero, not that nothing happened.")
+
+
+def cautions(kind: str) -> list[str]:
+    """The cautions of a report on a variable of ``kind`` (temperature, concentration or other)."""
+    return [DECISION_AID, *CAUTIONS_BY_KIND.get(kind, []), GENERAL]
+
+
+#: every caution, for the documentation
+CAUTIONS = [DECISION_AID, *CAUTIONS_BY_KIND["temperature"], *CAUTIONS_BY_KIND["concentration"], GENERAL]
+
 
 CSS = """
 body{font-family:system-ui,-apple-system,Segoe UI,Roboto,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#1d1d1d;line-height:1.45}
@@ -64,12 +84,12 @@ def _table(frame: pd.DataFrame, *, max_rows: int = 60) -> str:
 
 def write_report(path: str | Path, *, title: str, summary: list[tuple[str, str]], periods: list[str],
                  quality: list[str], cluster_table: pd.DataFrame, figures: list[tuple[str, Path]],
-                 method: list[str], files: list[str]) -> Path:
-    """Write report.html from already computed pieces (all text is escaped here)."""
+                 method: list[str], files: list[str], kind: str = "other") -> Path:
+    """Write report.html from already computed pieces (all text is escaped here); ``kind`` picks the cautions."""
     esc = html.escape
     parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{esc(title)}</title>"
              f"<style>{CSS}</style></head><body>", f"<h1>{esc(title)}</h1>"]
-    parts.append('<div class="caution"><strong>Decision aid only.</strong> ' + esc(CAUTIONS[0]) + "</div>")
+    parts.append('<div class="caution"><strong>Decision aid only.</strong> ' + esc(DECISION_AID) + "</div>")
     parts.append("<h2>What was computed</h2><table>" +
                  "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in summary) + "</table>")
     parts.append("<h2>Main periods</h2>")
@@ -90,7 +110,7 @@ def write_report(path: str | Path, *, title: str, summary: list[tuple[str, str]]
     for caption, fig in figures:
         parts.append(f"<h3>{esc(caption)}</h3>{_img(fig)}")
     parts.append("<h2>Method</h2><ul>" + "".join(f"<li>{esc(m)}</li>" for m in method) + "</ul>")
-    parts.append("<h2>Cautions</h2>" + "".join(f'<div class="caution">{esc(c)}</div>' for c in CAUTIONS))
+    parts.append("<h2>Cautions</h2>" + "".join(f'<div class="caution">{esc(c)}</div>' for c in cautions(kind)))
     parts.append("<h2>Files</h2><ul>" + "".join(f"<li><code>{esc(f)}</code></li>" for f in files) + "</ul>")
     parts.append('<p class="muted">Made by stationflow.</p></body></html>')
     with atomic_write(path) as tmp:

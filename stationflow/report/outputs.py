@@ -197,6 +197,28 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     return written, notes
 
 
+def display_name(variable: str) -> str:
+    """A variable's name as people write it: 'air temperature', 'PM2.5', 'PM10', or the column name with spaces."""
+    import re
+
+    m = re.fullmatch(r"(?i)(?:mass_concentration_of_)?pm_?(\d+)(?:p(\d+)|_(\d+))?.*", variable)
+    if m:
+        whole, frac = m.group(1), m.group(2) or m.group(3)
+        if whole == "25" and not frac:  # "pm25" is how many exports spell PM2.5
+            whole, frac = "2", "5"
+        return f"PM{whole}" + (f".{frac}" if frac else "")
+    return variable.replace("_", " ")
+
+
+def variable_kind(variable: str) -> str:
+    """temperature, concentration or other: which cautions a report on ``variable`` carries."""
+    if variable in ("air_temperature", "potential_temperature", "dew_point_temperature"):
+        return "temperature"
+    if display_name(variable).startswith("PM") or "concentration" in variable:
+        return "concentration"
+    return "other"
+
+
 #: what each elevation handling means, for the report
 VERTICAL_WORDS = {
     "measured": "vertical gradient measured per time over the network and removed before the horizontal fits "
@@ -259,8 +281,9 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
                        "rows; the error bars include it (column model_error)"
                        + (f"; most often in clusters {', '.join(names)}." if names else "."))
     for p in run.check.periods.sort_values("values", ascending=False, kind="stable").head(8).itertuples():
-        quality.append(f"QC: {p.station_id} {p.variable} {p.flag} ({p.tests}) {pd.Timestamp(p.start):%m-%d %H:%M}"
-                       f" to {pd.Timestamp(p.end):%m-%d %H:%M} UTC, {p.values} values")
+        quality.append(f"QC: {p.station_id} {p.variable} {pd.Timestamp(p.start):%m-%d %H:%M} to "
+                       f"{pd.Timestamp(p.end):%m-%d %H:%M} UTC: {p.values} values flagged, {p.bad_values} bad and "
+                       f"{p.values - p.bad_values} suspect (tests: {p.tests})")
     if "inversion" in run.extras:
         inv = run.extras["inversion"]
         if np.isfinite(inv).any():
@@ -291,8 +314,9 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     if run.quantity == "potential_temperature":
         method.append("Air temperature was converted to potential temperature (pressure observed or from the standard "
                       "atmosphere at the station elevation) so that height differences do not pose as horizontal gradients.")
-    title = f"stationflow budget: {run.variable.replace('_', ' ')}"
-    return dict(title=title, summary=summary, periods=lines, quality=quality, cluster_table=ct, method=method)
+    title = f"stationflow budget: {display_name(run.variable)}"
+    return dict(title=title, summary=summary, periods=lines, quality=quality, cluster_table=ct, method=method,
+                kind=variable_kind(run.variable))
 
 
 def error_model_record(run) -> dict:
