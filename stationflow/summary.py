@@ -152,6 +152,13 @@ class BudgetSummary:
         order = np.argsort(-det, kind="stable")
         return [int(i) for i in order[:n]]
 
+    def figure_clusters(self, n: int, periods: list[dict]) -> list[int]:
+        """The ``n`` clusters a figure draws: those of the main periods first (in their order), then the busiest."""
+        index = {str(name): i for i, name in enumerate(self.clusters["cluster"])}
+        first = list(dict.fromkeys(index[str(p["cluster"])] for p in periods if str(p["cluster"]) in index))
+        rest = [c for c in self.busiest(len(self.clusters)) if c not in first]
+        return (first + rest)[:n]
+
     def series(self, c: int) -> pd.DataFrame:
         """Time series of cluster ``c`` (index into the clusters): kept terms and regime names."""
         frame = pd.DataFrame({k: v[:, c].astype(float) for k, v in self.terms.items()})

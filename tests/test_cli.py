@@ -343,3 +343,18 @@ def test_report_counts_agree_with_run_json(frost_out):
     assert (qc_table["flag"] == "bad").sum() == bad and (qc_table["flag"] == "suspect").sum() == suspect
     for name, count in run["regimes"].items():
         assert f"{name.replace('_', ' ')} {count}" in page
+
+
+def test_timeseries_figure_draws_the_main_periods_clusters_and_names_the_rest(frost_out):
+    import html as html_mod
+
+    run = json.loads((frost_out / "run.json").read_text())
+    page = html_mod.unescape((frost_out / "report.html").read_text())
+    caption = re.search(r"<h3>(Budget over time: clusters [^<]*)</h3>", page).group(1)
+    drawn = caption.split("clusters ", 1)[1].split(" (", 1)[0].split(", ")
+    in_periods = {re.match(r"cluster (\S+),", line).group(1) for line in run["main_periods"]}
+    assert in_periods <= set(drawn) or set(drawn) <= in_periods  # the main periods' clusters come first
+    usable = run["clusters"]["usable"]
+    if usable > len(drawn):
+        left = caption.split("not drawn: ", 1)[1].split(" (every", 1)[0].split(", ")
+        assert len(drawn) + len(left) == usable and not set(drawn) & set(left)

@@ -59,6 +59,24 @@ def submit_qc_figure(painter: Painter, out: Path, chk) -> Future:
     return painter.submit(plots.draw_qc_overview, image, out / "qc_overview.png")
 
 
+#: clusters drawn in budget_timeseries.png (the main periods' first); the caption names the others
+TIMESERIES_PANELS = 8
+
+
+def timeseries_caption(run) -> str:
+    """The time-series figure's caption: which clusters it draws and which usable ones it leaves out."""
+    bs = run.summary
+    drawn = bs.figure_clusters(TIMESERIES_PANELS, run.periods)
+    names = bs.clusters["cluster"].astype(str).tolist()
+    left = [names[c] for c in range(len(names)) if c not in drawn]
+    text = (f"Budget over time: clusters {', '.join(names[c] for c in drawn)} (those of the main periods first, "
+            "then the ones with the most determined steps)")
+    if left:
+        text += f"; not drawn: {', '.join(left[:40])}" + (f" and {len(left) - 40} more" if len(left) > 40 else "")
+        text += " (every cluster is in budget.csv / budget.parquet)"
+    return text
+
+
 def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     """Start drawing budget_timeseries.png and budget_map.png from the run's summary."""
     from . import plots
@@ -67,7 +85,7 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     tz = run.check.config["observations"]["timezone"]
     local = None if is_utc(tz) else tz
     summary = run.summary
-    panels = plots.timeseries_panels(summary, tz=local)
+    panels = plots.timeseries_panels(summary, clusters=summary.figure_clusters(TIMESERIES_PANELS, run.periods), tz=local)
     # one job: the worker draws the two side by side (see Painter.submit_together)
     ts, mp = painter.submit_together([
         (plots.draw_timeseries, (panels, out / "budget_timeseries.png"), {"unit": run.unit, "tz": local}),
@@ -188,7 +206,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     })
     if report:
         ts, mp = figures["timeseries"].result(), figures["map"].result()
-        figs = [("Budget over time", ts), ("Network map by dominant regime", mp),
+        figs = [(timeseries_caption(run), ts), ("Network map by dominant regime", mp),
                 ("Quality control overview", out / "qc_overview.png")]
         written += [ts, mp]
         written.append(_report(out, pieces, figs))
