@@ -116,10 +116,10 @@ class BudgetSummary:
                             columns=list(REGIMES))
 
     def dominant(self) -> dict[str, str]:
-        """The most frequent of advective / in_situ / mixed per cluster (steady when none)."""
-        counts = self.cluster_counts()[["advective", "in_situ", "mixed"]]
-        best = counts.idxmax(axis=1).where(counts.max(axis=1) > 0, "steady")
-        return {str(k): str(v) for k, v in best.items()}
+        """The commonest regime of each cluster over the record, steady and undetermined included (the map's rule)."""
+        counts = self._counts()
+        best = np.argmax(counts, axis=1)
+        return {str(k): REGIMES[int(b)] for k, b in zip(self.clusters["cluster"], best)}
 
     def arrows(self) -> dict:
         """Mean wind and gradient per cluster over its determined times."""

@@ -154,3 +154,35 @@ def test_clusters_spanning_too_much_height_are_screened_with_a_reason():
     assert tall.any() and (~tall).any()
     assert (net.clusters.loc[tall, "status"] == "rejected").all()
     assert net.clusters.loc[tall, "reason"].str.contains("m of height > 1000").all()
+
+
+def test_map_labels_are_thinned_so_none_overlap():
+    from scipy.spatial.distance import pdist
+
+    from stationflow import synthetic
+    from stationflow.report.plots import thin_labels
+
+    st = synthetic.network(150, radius_km=20, seed=1)
+    x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
+    d = 40 / 18
+    keep = thin_labels(x, y, d)
+    assert 10 < len(keep) < 150
+    assert pdist(np.column_stack([x[keep], y[keep]])).min() >= d  # no two labels closer than the spacing
+    near = np.hypot(x[:, None] - x[keep][None, :], y[:, None] - y[keep][None, :]).min(axis=1)
+    assert (near <= d).all()  # every station has a labelled one nearby
+
+
+def test_map_colour_is_the_commonest_regime_including_steady_and_undetermined():
+    import pandas as pd
+
+    from stationflow.budget import REGIMES
+    from stationflow.summary import BudgetSummary
+
+    times = pd.date_range("2026-04-10", periods=10, freq="10min", tz="UTC")
+    clusters = pd.DataFrame({"cluster": ["A", "B"], "stations": ["1+2+3", "2+3+4"], "latitude": [0.0, 0.0],
+                             "longitude": [0.0, 0.0]})
+    bs = BudgetSummary.allocate(times, clusters)
+    code = {r: i for i, r in enumerate(REGIMES)}
+    bs.regime[:, 0] = [code["undetermined"]] * 6 + [code["advective"]] * 4
+    bs.regime[:, 1] = [code["steady"]] * 7 + [code["in_situ"]] * 3
+    assert bs.dominant() == {"A": "undetermined", "B": "steady"}

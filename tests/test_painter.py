@@ -206,5 +206,6 @@ def test_the_figure_worker_draws_the_run_figures_without_pandas(tmp_path):
     # and the same figures as drawn here, from the pandas objects
     here = tmp_path / "here"
     plots.network_map(run.network, here / "map.png", colour_by=run.summary.dominant(), arrows=run.summary.arrows(),
-                      title="Clusters by dominant regime; mean wind and gradient")
+                      title="Clusters by their commonest regime; mean wind and gradient",
+                      bad_stations=outputs.mostly_bad(run))
     assert (here / "map.png").read_bytes() == (tmp_path / "budget_map.png").read_bytes()

@@ -63,6 +63,19 @@ def submit_qc_figure(painter: Painter, out: Path, chk) -> Future:
 TIMESERIES_PANELS = 8
 
 
+def mostly_bad(run) -> list[str]:
+    """Stations whose budgeted variable QC left out (suspect or bad) for more than half of their values (on the map)."""
+    obs = run.check.data.observations
+    flags = run.check.qc.flags.get(run.variable)
+    if flags is None or obs.empty:
+        return []
+    f = np.asarray(flags)
+    allowed = (1,) if run.check.config["qc"]["use_suspect"] else ()
+    left_out = pd.Series(((f == 1) | (f == 2)) & ~np.isin(f, allowed)).groupby(obs["station_id"].astype(str).to_numpy())
+    share = left_out.mean()
+    return [str(s) for s in share.index[share.to_numpy() > 0.5]]
+
+
 def timeseries_caption(run) -> str:
     """The time-series figure's caption: which clusters it draws and which usable ones it leaves out."""
     bs = run.summary
@@ -89,9 +102,9 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     # one job: the worker draws the two side by side (see Painter.submit_together)
     ts, mp = painter.submit_together([
         (plots.draw_timeseries, (panels, out / "budget_timeseries.png"), {"unit": run.unit, "tz": local}),
-        (plots.draw_map, (plots.map_layers(run.network), out / "budget_map.png"),
+        (plots.draw_map, (plots.map_layers(run.network, bad_stations=mostly_bad(run)), out / "budget_map.png"),
          {"colour_by": summary.dominant(), "arrows": summary.arrows(),
-          "title": "Clusters by dominant regime; mean wind and gradient"})])
+          "title": "Clusters by their commonest regime; mean wind and gradient"})])
     return {"timeseries": ts, "map": mp}
 
 
@@ -206,7 +219,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     })
     if report:
         ts, mp = figures["timeseries"].result(), figures["map"].result()
-        figs = [(timeseries_caption(run), ts), ("Network map by dominant regime", mp),
+        figs = [(timeseries_caption(run), ts), ("Network map: clusters coloured by their commonest regime over the record (steady and undetermined "
+                            "included); every mark is explained beside the map", mp),
                 ("Quality control overview", out / "qc_overview.png")]
         written += [ts, mp]
         written.append(_report(out, pieces, figs))

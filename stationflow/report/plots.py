@@ -115,7 +115,7 @@ def qc_overview(observations: pd.DataFrame, flags: dict[str, np.ndarray], path: 
     return draw_qc_overview(qc_overview_image(observations, flags, max_bins=max_bins), path)
 
 
-def map_layers(network) -> dict:
+def map_layers(network, *, bad_stations: list[str] | None = None) -> dict:
     """What :func:`draw_map` draws of ``network``: station and cluster geometry on the grid [km] (small arrays)."""
     st, cl = network.stations, network.clusters
     x, y = st["x"].to_numpy(float) / 1000, st["y"].to_numpy(float) / 1000
@@ -129,11 +129,12 @@ def map_layers(network) -> dict:
     return {"x": x, "y": y, "station_id": [str(v) for v in st["station_id"]],
             "surface": (st["role"] == "surface").to_numpy(bool), "polygons": polys,
             "cluster": [str(v) for v in cl["cluster"]], "ok": (cl["status"] == "ok").to_numpy(bool),
-            "centroid_x": cl["centroid_x"].to_numpy(float) / 1000, "centroid_y": cl["centroid_y"].to_numpy(float) / 1000}
+            "centroid_x": cl["centroid_x"].to_numpy(float) / 1000, "centroid_y": cl["centroid_y"].to_numpy(float) / 1000,
+            "bad": st["station_id"].astype(str).isin(bad_stations or []).to_numpy(bool)}
 
 
 def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
-                title: str = "Network and clusters") -> Path:
+                title: str = "Network and clusters", bad_stations: list[str] | None = None) -> Path:
     """Stations and clusters on the local grid [km].
 
     ``colour_by`` maps cluster id -> regime (budget map); without it clusters
@@ -141,7 +142,7 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
     per-cluster ``u``, ``v`` [m s-1] and ``gx``, ``gy`` (gradient, any unit)
     drawn at the cluster centroids.
     """
-    return draw_map(map_layers(network), path, colour_by=colour_by, arrows=arrows, title=title)
+    return draw_map(map_layers(network, bad_stations=bad_stations), path, colour_by=colour_by, arrows=arrows, title=title)
 
 
 def draw_map(layers: dict, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
@@ -150,6 +151,7 @@ def draw_map(layers: dict, path: str | Path, *, colour_by: dict[str, str] | None
     plt = _plt()
     from matplotlib.collections import PolyCollection
     from matplotlib.colors import to_rgba
+    from matplotlib.lines import Line2D
     from matplotlib.patches import Patch
 
     x, y, ok, names = layers["x"], layers["y"], layers["ok"], layers["cluster"]
@@ -167,41 +169,90 @@ def draw_map(layers: dict, path: str | Path, *, colour_by: dict[str, str] | None
     coll = PolyCollection(polys, facecolors=[to_rgba(f, a) for f, a in zip(faces, alphas)], edgecolors="#555555",
                           linewidths=0.8 if len(polys) < 300 else 0.2, linestyles=styles)
     ax.add_collection(coll)
-    if ok.sum() <= 150:
-        for i in np.flatnonzero(ok):
-            ax.text(layers["centroid_x"][i], layers["centroid_y"][i], names[i], fontsize=6.5, ha="center",
-                    va="center", color="#222222")
+    labelled = thin_labels(layers["centroid_x"][ok], layers["centroid_y"][ok], _extent(x, y) / 25)
+    for i in np.flatnonzero(ok)[labelled]:  # below the centroid, where the arrows start
+        ax.annotate(names[i], (layers["centroid_x"][i], layers["centroid_y"][i]), xytext=(0, -5),
+                    textcoords="offset points", fontsize=6.5, ha="center", va="top", color="#222222", zorder=4)
     surface = layers["surface"]
-    ax.scatter(x[surface], y[surface], s=18 if len(x) < 300 else 2, color="#111111", zorder=3)
+    bad = np.asarray(layers.get("bad", np.zeros(len(x), bool)), bool)
+    ax.scatter(x[surface & ~bad], y[surface & ~bad], s=18 if len(x) < 300 else 2, color="#111111", zorder=3)
     ax.scatter(x[~surface], y[~surface], s=50, facecolor="none", edgecolor="#111111", zorder=3)
-    if len(x) <= 80:
-        for xi, yi, sid in zip(x[surface], y[surface], np.asarray(layers["station_id"], dtype=object)[surface]):
-            ax.annotate(sid, (xi, yi), xytext=(3, 3), textcoords="offset points", fontsize=7)
+    if bad.any():
+        ax.scatter(x[bad], y[bad], s=40, marker="x", color="#c62f2f", linewidths=1.5, zorder=5)
+    ids = np.asarray(layers["station_id"], dtype=object)
+    keep = np.flatnonzero(surface)[thin_labels(x[surface], y[surface], _extent(x, y) / 18)]
+    for i in keep:
+        ax.annotate(ids[i], (x[i], y[i]), xytext=(3, 3), textcoords="offset points", fontsize=6.5, color="#333333",
+                    zorder=4)
+    handles = []
     if arrows:
         where = {c: i for i, c in enumerate(names)}
-        ids = [c for c in arrows.get("cluster", []) if c in where]
-        if ids:
-            at = np.array([where[c] for c in ids])
+        got = [c for c in arrows.get("cluster", []) if c in where]
+        if got:
+            at = np.array([where[c] for c in got])
             px, py = layers["centroid_x"][at], layers["centroid_y"][at]
-            ax.quiver(px, py, arrows["u"], arrows["v"], color="#1b3a6b", scale_units="inches", scale=8, width=0.004,
-                      label="wind (m/s)")
+            q = ax.quiver(px, py, arrows["u"], arrows["v"], color="#1b3a6b", scale_units="inches", scale=8,
+                          width=0.004, zorder=6)
+            ax.quiverkey(q, 0.84, -0.09, 5.0, "wind 5 m/s", labelpos="E", coordinates="axes", fontproperties={"size": 7})
             g = np.hypot(arrows["gx"], arrows["gy"])
             gmax = np.nanmax(g) if np.isfinite(g).any() and np.nanmax(g) > 0 else 1.0
             ax.quiver(px, py, arrows["gx"] / gmax, arrows["gy"] / gmax, color="#b02a1e", scale_units="inches",
-                      scale=3, width=0.003, label="gradient (toward higher values)")
-            ax.legend(loc="lower left", fontsize=7, frameon=False)
+                      scale=3, width=0.003, zorder=6)
+            handles += [Line2D([], [], color="#1b3a6b", lw=1.5, label="mean wind (key below)"),
+                        Line2D([], [], color="#b02a1e", lw=1.2,
+                               label="gradient toward higher values\n(length relative to the largest)")]
     ax.set_aspect("equal")
     ax.autoscale_view()
     ax.set_xlabel("x (km, grid east)")
     ax.set_ylabel("y (km, grid north)")
     ax.set_title(title, y=1.0)
     if colour_by is not None:
-        handles = [Patch(color=c, label=k.replace("_", " ")) for k, c in REGIME_COLOURS.items()]
+        handles = [Patch(color=c, label=k.replace("_", " ")) for k, c in REGIME_COLOURS.items()] + handles
+        note = "colour: each cluster's commonest\nregime over the record"
     else:
-        handles = [Patch(color=c, alpha=0.5, label=k) for k, c in STATUS_COLOURS.items()]
-    ax.legend(handles=handles + ([] if not arrows else ax.get_legend_handles_labels()[0]),
-              loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
+        handles = [Patch(color=c, alpha=0.5, label=k) for k, c in STATUS_COLOURS.items()] + handles
+        note = "colour: usable or rejected"
+    handles += [Patch(facecolor="white", edgecolor="#555555", linestyle=":", label="rejected cluster (clusters.csv)"),
+                Line2D([], [], marker="o", ls="", color="#111111", markersize=4, label="station"),
+                Line2D([], [], marker="o", ls="", markerfacecolor="none", markeredgecolor="#111111", markersize=7,
+                       label="upper mast sensor")]
+    if bad.any():
+        handles.append(Line2D([], [], marker="x", ls="", color="#c62f2f", markersize=6,
+                              label="station QC left out\nfor most of the record"))
+    if len(keep) < int(surface.sum()):
+        note += f"\n{int(surface.sum()) - len(keep)} station labels left out\nwhere they would overlap"
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=7, frameon=False, title=note,
+              title_fontsize=7)
     return _save(fig, path)
+
+
+def _extent(x: np.ndarray, y: np.ndarray) -> float:
+    """The larger side of the points' bounding box (1 when there is none)."""
+    if len(x) == 0:
+        return 1.0
+    return float(max(np.ptp(x), np.ptp(y), 1e-9))
+
+
+def thin_labels(x: np.ndarray, y: np.ndarray, min_distance: float) -> np.ndarray:
+    """Indices of points to label so that no two labels are closer than ``min_distance`` (greedy, in order).
+
+    Runs once per figure over the stations or clusters (not a hot path);
+    a k-d tree finds each point's neighbours.
+    """
+    from scipy.spatial import cKDTree
+
+    n = len(x)
+    if n == 0:
+        return np.zeros(0, int)
+    tree = cKDTree(np.column_stack([x, y]))
+    taken = np.zeros(n, bool)
+    blocked = np.zeros(n, bool)
+    for i in range(n):  # greedy over the points of one figure
+        if blocked[i]:
+            continue
+        taken[i] = True
+        blocked[tree.query_ball_point([x[i], y[i]], min_distance)] = True
+    return np.flatnonzero(taken)
 
 
 def _shade_regimes(ax, times: np.ndarray, regimes: np.ndarray, *, alpha: float = 0.14) -> None:
