@@ -580,6 +580,24 @@ def main_periods(table: pd.DataFrame, *, unit: str, min_steps: int = 3, max_line
     return periods_from_arrays(times, clusters, terms, unit=unit, min_steps=min_steps, max_lines=max_lines)
 
 
+def display_zone(config) -> str | None:
+    """The zone times are shown in (``observations.display_timezone``, else ``observations.timezone``); None for UTC."""
+    oc = config["observations"]
+    zone = oc.get("display_timezone") or oc["timezone"]
+    return None if is_utc(zone) else zone
+
+
+def show_time(t, zone: str | None, *, date: bool = True) -> str:
+    """A time as people read it: local with its zone abbreviation and UTC in brackets, or UTC alone."""
+    ts = pd.Timestamp(t)
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    fmt = "%Y-%m-%d %H:%M" if date else "%H:%M"
+    if zone is None:
+        return f"{ts:{fmt}} UTC"
+    local = ts.tz_convert(_timezone(zone))
+    return f"{local:{fmt}} {local.strftime('%Z') or zone} ({ts:%H:%M} UTC)"
+
+
 def _span(start: pd.Timestamp, end: pd.Timestamp) -> str:
     end_fmt = "%H:%M" if start.date() == end.date() else "%Y-%m-%d %H:%M"
     return f"{start:%Y-%m-%d %H:%M}-{end.strftime(end_fmt)}"

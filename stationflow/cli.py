@@ -221,7 +221,9 @@ def _check_summary(chk, out: Path) -> str:
     import pandas as pd
 
     from .align import format_duration
+    from .budget import display_zone, show_time
 
+    zone = display_zone(chk.config)
     d = chk.data
     o = d.observations
     acc = d.accounting
@@ -229,7 +231,7 @@ def _check_summary(chk, out: Path) -> str:
              f"rejected {acc['rows_rejected']:,}" + (f", identical duplicates collapsed {acc['duplicates_collapsed']:,}"
                                                      if acc["duplicates_collapsed"] else "")]
     if len(o):
-        lines.append(f"time span: {pd.Timestamp(o['time'].min()):%Y-%m-%d %H:%M} to {pd.Timestamp(o['time'].max()):%Y-%m-%d %H:%M} UTC")
+        lines.append(f"time span: {show_time(o['time'].min(), zone)} to {show_time(o['time'].max(), zone)}")
         srt = o[["station_id", "time"]].sort_values(["station_id", "time"])
         gaps = srt["time"].diff().where(srt["station_id"] == srt["station_id"].shift())
         step = gaps.groupby(srt["station_id"]).median()
@@ -256,7 +258,7 @@ def _check_summary(chk, out: Path) -> str:
             + (f" (and {len(flagged) - 6} more in qc_flags.csv)" if len(flagged) > 6 else ""))
     big = chk.periods[chk.periods["values"] >= 3]
     for p in big.head(12).itertuples():
-        lines.append(f"  {p.station_id} {p.variable} {pd.Timestamp(p.start):%Y-%m-%d %H:%M} to {pd.Timestamp(p.end):%H:%M} UTC:"
+        lines.append(f"  {p.station_id} {p.variable} {show_time(p.start, zone)} to {show_time(p.end, zone)}:"
                      f" {p.values} values flagged, {p.bad_values} bad ({p.tests})")
     if acc["rows_rejected"]:
         first = d.rejected.head(3)
@@ -425,7 +427,9 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")
-        tz = run.check.config["observations"]["timezone"]
+        from .budget import display_zone
+
+        tz = display_zone(run.check.config) or "UTC"
         lines += ["  " + describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
     if run.choices.get("wind") == "none":
         lines.append("no wind observed: advection cannot be estimated, so every row is undetermined "

@@ -59,6 +59,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "skip_lines": Key([], (list,), "1-based line numbers to skip (for example a units row)"),
         "encoding": Key("utf-8", (str,), "text encoding of the file"),
         "timezone": Key("UTC", (str,), "IANA name or fixed offset like '+08:00'; applied to naive timestamps"),
+        "display_timezone": Key("", (str,), "the zone every time on the report and the console is shown in, with UTC "
+                                            "beside it (default: observations.timezone)"),
         "time_format": Key("", (str,), "strftime format of the time column, e.g. '%d/%m/%Y %H:%M' (default: ISO 8601)"),
         "time_columns": Key([], (list,), "instead of one time column: columns assembled in this order (year, month, day, hour[, minute[, second]])"),
         "missing_values": Key([], (list,), "strings that mean 'no value' (empty fields always do)"),

@@ -235,7 +235,8 @@ def test_check_command_summary(tmp_path, runner):
                               "--config", str(FROST / "config.toml"), "--out", str(tmp_path)])
     assert res.exit_code == 0, res.stderr
     assert "rows read 2,686, accepted 2,686, rejected 0" in res.stdout
-    assert "HV11 air_temperature 2026-04-15 07:55 to 11:00 UTC: 38 values flagged, 0 bad (persistence)" in res.stdout
+    assert ("HV11 air_temperature 2026-04-15 00:55 PDT (07:55 UTC) to 2026-04-15 04:00 PDT (11:00 UTC): "
+            "38 values flagged, 0 bad (persistence)") in res.stdout  # in the data's zone, UTC beside it
     assert "HV04 air_temperature" in res.stdout
     assert (tmp_path / "qc_overview.png").exists()
 
@@ -358,3 +359,26 @@ def test_timeseries_figure_draws_the_main_periods_clusters_and_names_the_rest(fr
     if usable > len(drawn):
         left = caption.split("not drawn: ", 1)[1].split(" (every", 1)[0].split(", ")
         assert len(drawn) + len(left) == usable and not set(drawn) & set(left)
+
+
+def test_one_time_zone_for_people(frost_out, tmp_path):
+    """Every time on the page is in the display zone (the input's by default) with UTC beside it."""
+    import html as html_mod
+
+    page = html_mod.unescape((frost_out / "report.html").read_text())
+    body = page.split("<h2>Files</h2>")[0]
+    shown = re.findall(r"\d\d:\d\d (?:UTC|[A-Z]{3,4})\b", body)
+    local = [t for t in shown if not t.endswith("UTC")]
+    assert local and all(t.endswith(("PDT", "PST")) for t in local)
+    # each local time has its UTC beside it: "17:00 PDT (00:00 UTC)"
+    assert len(re.findall(r"\d\d:\d\d P[DS]T \(\d\d:\d\d", body)) + len(re.findall(r"P[DS]T \(\d\d:\d\d-\d\d:\d\d UTC", body)) \
+        >= len(local)
+    # a display zone of UTC shows UTC only
+    cfg = tmp_path / "c.toml"
+    cfg.write_text((FROST / "config.toml").read_text().replace('timezone = "America/Los_Angeles"',
+                                                                'timezone = "America/Los_Angeles"\ndisplay_timezone = "UTC"'))
+    from typer.testing import CliRunner
+
+    res = CliRunner().invoke(app, ["check", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                                   "--config", str(cfg), "--out", str(tmp_path / "o")])
+    assert res.exit_code == 0 and "time span: 2026-04-15 00:00 UTC to 2026-04-15 15:00 UTC" in res.stdout

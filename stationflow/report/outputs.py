@@ -13,7 +13,7 @@ import pandas as pd
 
 from .. import __version__
 from ..align import format_duration
-from ..budget import describe_period
+from ..budget import describe_period, display_zone, show_time
 from ..geometry import cluster_table
 from ..ingest import is_utc
 from . import files, stream
@@ -55,7 +55,7 @@ def submit_qc_figure(painter: Painter, out: Path, chk) -> Future:
     from . import plots
 
     out.mkdir(parents=True, exist_ok=True)
-    image = plots.qc_overview_image(chk.data.observations, chk.qc.flags)
+    image = plots.qc_overview_image(chk.data.observations, chk.qc.flags, tz=display_zone(chk.config))
     return painter.submit(plots.draw_qc_overview, image, out / "qc_overview.png")
 
 
@@ -95,8 +95,7 @@ def submit_budget_figures(painter: Painter, out: Path, run) -> dict:
     from . import plots
 
     out.mkdir(parents=True, exist_ok=True)
-    tz = run.check.config["observations"]["timezone"]
-    local = None if is_utc(tz) else tz
+    local = display_zone(run.check.config)
     summary = run.summary
     panels = plots.timeseries_panels(summary, clusters=summary.figure_clusters(TIMESERIES_PANELS, run.periods), tz=local)
     # one job: the worker draws the two side by side (see Painter.submit_together)
@@ -196,8 +195,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         written += sink.paths
         notes += sink.notes
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
-    tz = run.check.config["observations"]["timezone"]
-    lines = [describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
+    lines = [describe_period(p, variable=run.quantity, timezone=display_zone(run.check.config) or "UTC")
+             for p in run.periods]
     # everything the report says is prepared while the figures are still being drawn
     flags = _flag_counts(run.check)
     pieces = _report_pieces(run, lines, inputs, flags) if report else None
@@ -267,6 +266,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     obs = data.observations
     t0, t1 = obs["time"].min(), obs["time"].max()
     quantity = run.quantity
+    zone = display_zone(run.check.config)
     summary = [
         ("Question", f"How much of the observed change of {run.variable.replace('_', ' ')} was carried in by the wind "
                      "(advection) and how much was made in place (in-situ residual)?"),
@@ -274,7 +274,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
                  f"{data.accounting['rows_accepted']:,} accepted, {data.accounting['rows_rejected']:,} rejected)"),
         ("Stations", f"{len(data.stations)} stations; {len(run.network.usable)} of {len(run.network.clusters)} "
                      "clusters usable"),
-        ("Period", f"{pd.Timestamp(t0):%Y-%m-%d %H:%M} to {pd.Timestamp(t1):%Y-%m-%d %H:%M} UTC"),
+        ("Period", f"{show_time(t0, zone)} to {show_time(t1, zone)}"),
         ("Quantity fitted", f"{quantity} [{run.unit}]"),
         ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
         ("How the window was chosen", run.choices.get("window_source", "")),
@@ -313,8 +313,8 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
                        "rows; the error bars include it (column model_error)"
                        + (f"; most often in clusters {', '.join(names)}." if names else "."))
     for p in run.check.periods.sort_values("values", ascending=False, kind="stable").head(8).itertuples():
-        quality.append(f"QC: {p.station_id} {p.variable} {pd.Timestamp(p.start):%m-%d %H:%M} to "
-                       f"{pd.Timestamp(p.end):%m-%d %H:%M} UTC: {p.values} values flagged, {p.bad_values} bad and "
+        quality.append(f"QC: {p.station_id} {p.variable} {show_time(p.start, zone)} to "
+                       f"{show_time(p.end, zone)}: {p.values} values flagged, {p.bad_values} bad and "
                        f"{p.values - p.bad_values} suspect (tests: {p.tests})")
     if "inversion" in run.extras:
         inv = run.extras["inversion"]

@@ -55,8 +55,9 @@ def _save(fig, path: str | Path, *, tight: bool = True) -> Path:
         plt.close(fig)
 
 
-def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], *, max_bins: int = 400) -> dict:
-    """What :func:`draw_qc_overview` draws: the worst flag per station and time bin (small arrays)."""
+def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], *, max_bins: int = 400,
+                      tz: str | None = None) -> dict:
+    """What :func:`draw_qc_overview` draws: the worst flag per station and time bin (small arrays); times in ``tz``."""
     worst = np.full(len(observations), 3, np.int8)
     for f in flags.values():
         present = f != 3
@@ -82,8 +83,13 @@ def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], 
     img[codes[order], b[order]] = np.where(worst[order] == 3, 3, worst[order])
     img = np.where(img < 0, 3, img)
     start = pd.Timestamp(t0, tz="UTC")
+    if tz:
+        from ..ingest import _timezone
+
+        start = start.tz_convert(_timezone(tz))
     labels = [(start + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in np.linspace(0, nb, 6)]
-    return {"img": img, "stations": stations, "tick_labels": labels, "bins": nb}
+    return {"img": img, "stations": stations, "tick_labels": labels, "bins": nb,
+            "axis": f"local time ({tz})" if tz else "time (UTC)"}
 
 
 def draw_qc_overview(image: dict, path: str | Path) -> Path:
@@ -103,7 +109,7 @@ def draw_qc_overview(image: dict, path: str | Path) -> Path:
         ax.set_ylabel(f"{len(stations)} stations (sorted by id)")
     ax.set_xticks(np.linspace(0, nb, len(image["tick_labels"])))
     ax.set_xticklabels(image["tick_labels"], fontsize=7)
-    ax.set_xlabel("time (UTC)")
+    ax.set_xlabel(image.get("axis", "time (UTC)"))
     ax.set_title("Quality control: worst flag per station and time", y=1.0)
     ax.legend(handles=[Patch(facecolor=c, edgecolor="#999999", label=n) for c, n in zip(FLAG_COLOURS, ["good", "suspect", "bad", "missing"])],
               loc="upper left", bbox_to_anchor=(1.01, 1), fontsize=8, frameon=False)
