@@ -6,12 +6,13 @@ STAMP_RUN := $(VENV)/.installed-run
 STAMP_TEST := $(VENV)/.installed-test
 OUT ?= demo_output
 
-.PHONY: demo demo-town test fuzz coverage bench sample-data clean help
+.PHONY: demo demo-town report-check test fuzz coverage bench sample-data clean help
 
 help:
 	@echo "make demo       run the frost-night demo end to end and print where the report is"
 	@echo "make demo-town  run the PM2.5 town demo"
 	@echo "make test       run the whole test suite"
+	@echo "make report-check  both demos, then their reports in a headless browser (screenshots) with every figure captioned"
 	@echo "make fuzz       the whole-pipeline property test with many examples (not part of make test)"
 	@echo "make coverage   the coverage suite at full size: do stated errors cover the truth? (not part of make test)"
 	@echo "make bench      run the benchmarks (not part of make test)"
@@ -34,6 +35,11 @@ demo: $(STAMP_RUN)
 
 demo-town: $(STAMP_RUN)
 	$(BIN)/stationflow demo --scenario town --out $(OUT)/town
+
+report-check: $(STAMP_RUN)
+	$(BIN)/stationflow demo --scenario frost --out $(OUT)/frost --quiet
+	$(BIN)/stationflow demo --scenario town --out $(OUT)/town --quiet
+	$(BIN)/python benchmarks/report_check.py $(OUT)/frost/report.html $(OUT)/town/report.html
 
 test: $(STAMP_TEST)
 	$(BIN)/python -m pytest -q

@@ -320,20 +320,27 @@ IMPLAUSIBLE_RATIO = 5.0
 IMPLAUSIBLE_RATE = 10.0
 
 
-def implausible(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, *, min_rate: float) -> np.ndarray:
+def implausible(tendency: np.ndarray, advection: np.ndarray, residual: np.ndarray, *, min_rate: float,
+                advection_se: np.ndarray | None = None, residual_se: np.ndarray | None = None,
+                significance: float = 2.0) -> np.ndarray:
     """Rows whose advected and in-situ parts are each far larger than the change and cancel (a guard).
 
     Such a split comes from a gradient the plane cannot have (a height
     difference posing as a horizontal gradient, a broken sensor): true
     when ``|A|`` and ``|R|`` both exceed :data:`IMPLAUSIBLE_RATIO` x
     ``|tendency|`` and :data:`IMPLAUSIBLE_RATE` x ``min_rate`` (common
-    practice).  Those rows are labelled undetermined and kept out of the
+    practice) and, with their standard errors, each is significant (a large
+    pair within its errors of zero is only uncertain, and the regime already
+    says so).  Those rows are labelled undetermined and kept out of the
     main periods.
     """
     floor = IMPLAUSIBLE_RATE * min_rate if min_rate > 0 else 0.0
     a, r, t = np.abs(advection), np.abs(residual), np.abs(tendency)
     with np.errstate(invalid="ignore"):
-        return (a > IMPLAUSIBLE_RATIO * t) & (r > IMPLAUSIBLE_RATIO * t) & (a > floor) & (r > floor)
+        out = (a > IMPLAUSIBLE_RATIO * t) & (r > IMPLAUSIBLE_RATIO * t) & (a > floor) & (r > floor)
+        if advection_se is not None and residual_se is not None:
+            out &= (a > significance * advection_se) & (r > significance * residual_se)
+    return out
 
 
 def compute_budget(
@@ -485,7 +492,8 @@ def compute_budget(
     out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
                                    significance=s.significance, dominance=s.dominance, min_rate=s.min_rate,
                                    tendency_se=out["tendency_se"])
-    out["implausible"] = implausible(tendency, adv_mean, residual, min_rate=s.min_rate)
+    out["implausible"] = implausible(tendency, adv_mean, residual, min_rate=s.min_rate, advection_se=out["advection_se"],
+                                     residual_se=out["residual_se"], significance=s.significance)
     out["regime"][out["implausible"]] = np.int8(REGIMES.index("undetermined"))
     return out
 

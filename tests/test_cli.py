@@ -382,3 +382,12 @@ def test_one_time_zone_for_people(frost_out, tmp_path):
     res = CliRunner().invoke(app, ["check", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
                                    "--config", str(cfg), "--out", str(tmp_path / "o")])
     assert res.exit_code == 0 and "time span: 2026-04-15 00:00 UTC to 2026-04-15 15:00 UTC" in res.stdout
+
+
+def test_every_figure_of_the_report_is_captioned_and_embedded(frost_out):
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("report_check", ROOT / "benchmarks" / "report_check.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    assert mod.check_page(frost_out / "report.html") == []

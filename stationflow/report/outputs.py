@@ -268,7 +268,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     quantity = run.quantity
     zone = display_zone(run.check.config)
     summary = [
-        ("Question", f"How much of the observed change of {run.variable.replace('_', ' ')} was carried in by the wind "
+        ("Question", f"How much of the observed change of {display_name(run.variable)} was carried in by the wind "
                      "(advection) and how much was made in place (in-situ residual)?"),
         ("Data", f"{inputs.get('observations')} ({data.accounting['rows_read']:,} rows read, "
                  f"{data.accounting['rows_accepted']:,} accepted, {data.accounting['rows_rejected']:,} rejected)"),
@@ -301,6 +301,9 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         quality.append(f"{bs.implausible_rows} rows had advected and in-situ parts each over 5 times the observed change "
                        "and cancelling (usually height differences or a broken sensor posing as a gradient): they are "
                        "marked in the implausible column, labelled undetermined and left out of the main periods.")
+    else:
+        quality.append("No row had advected and in-situ parts that each far exceeded the change and cancelled "
+                       "(the implausible column).")
     if run.choices.get("qc_tests_off"):
         quality.append("Quality-control tests switched off in the configuration: "
                        + ", ".join(run.choices["qc_tests_off"]) + "; values they would have caught were used.")
