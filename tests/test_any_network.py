@@ -2,6 +2,7 @@
 
 import json
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -162,3 +163,34 @@ def test_no_wind_is_named_as_the_reason(runner, tmp_path):
     run = json.loads((tmp_path / "out" / "run.json").read_text())
     assert run["wind"] == "none" and {k for k, v in run["regimes"].items() if v} == {"undetermined"}
     assert "No wind was observed" in (tmp_path / "out" / "report.html").read_text()
+
+
+def test_an_alpine_network_untuned_gives_no_fake_advection(runner, tmp_path):
+    """81 stations over 2 km of relief, hourly, ';' with a units row, D.M.Y local times; inversion by night.
+
+    The air's horizontal gradient is 0.05 K/km with a 2 m/s wind: the true advection is -0.36 K/h
+    everywhere (analytic truth). A fit that let height pose as distance gave tens of K/h.
+    """
+    from stationflow import synthetic as s
+
+    st = s.network(81, radius_km=60, seed=21,
+                   elevation=lambda x, y: 900 + 1200 * (1 + np.sin(x / 15000) * np.cos(y / 12000)))
+    lapse = s.smooth([(0, -0.0065), (8, -0.0065), (14, 0.005), (30, 0.005), (34, -0.0065), (48, -0.0065)], 1.0)
+    cooling = s.smooth([(0, 0.5), (6, 0.5), (8, -1.0), (20, -0.6), (30, 0.8), (48, 0.0)], 1.0)
+    f = s.LinearField(base=285.0, gx=s._const(5e-5), u=s._const(2.0), v=s._const(0.5), gamma=lapse, z_ref=1500.0,
+                      source=lambda t: cooling(t) / 3600.0, horizon_s=4 * 86400.0)
+    times = pd.date_range("2026-04-10 06:00", periods=48, freq="1h", tz="UTC")
+    obs = s.sample(f, st, times, noise=0.2, wind_noise=0.5, seed=3, offset=0.1, missing=0.03)
+    paths = write_export(tmp_path / "in", st, obs, delimiter=";", units_row=True, time_format="%d.%m.%Y %H:%M",
+                         tz="Europe/Zurich")
+    res = _run(runner, paths, tmp_path / "out")
+    assert res.exit_code == 0, res.stderr
+    run = json.loads((tmp_path / "out" / "run.json").read_text())
+    assert run["vertical"]["used"] == "measured" and run["reading"]["time_layout"] == "%d.%m.%Y %H:%M"
+    t = pd.read_parquet(tmp_path / "out" / "budget.parquet").dropna(subset=["advection"])
+    truth = -(2.0 * 5e-5) * 3600
+    assert abs(t["advection"].median() - truth) < 0.1
+    assert np.percentile(np.abs(t["advection"] - truth), 95) < 1.5
+    clusters = pd.read_csv(tmp_path / "out" / "clusters.csv")
+    tall = clusters["height_range_m"] > 1000
+    assert tall.any() and (clusters.loc[tall, "status"] == "rejected").all()
