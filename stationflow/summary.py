@@ -153,11 +153,11 @@ class BudgetSummary:
         return [int(i) for i in order[:n]]
 
     def figure_clusters(self, n: int, periods: list[dict]) -> list[int]:
-        """The ``n`` clusters a figure draws: those of the main periods first (in their order), then the busiest."""
+        """The clusters a figure draws: every cluster of the main periods (in their order), then the busiest, to ``n``."""
         index = {str(name): i for i, name in enumerate(self.clusters["cluster"])}
         first = list(dict.fromkeys(index[str(p["cluster"])] for p in periods if str(p["cluster"]) in index))
         rest = [c for c in self.busiest(len(self.clusters)) if c not in first]
-        return (first + rest)[:n]
+        return first + rest[:max(0, n - len(first))]
 
     def series(self, c: int) -> pd.DataFrame:
         """Time series of cluster ``c`` (index into the clusters): kept terms and regime names."""

@@ -133,3 +133,10 @@ def test_old_tuning_keys_keep_working():
     assert run.quantity == "potential_temperature" and run.settings.min_rate == 0.2
     assert np.allclose(run.settings.sigma, 0.15) and run.settings.offset == 0.05  # sensor: reading noise; calibration: offset
     assert run.choices["noise_source"] == "uncertainty.sensor" and run.choices["offset_source"] == "uncertainty.calibration"
+
+
+def test_town_figure_draws_every_main_period_cluster(town_run):
+    run, _ = town_run
+    names = run.summary.clusters["cluster"].astype(str).tolist()
+    drawn = {names[c] for c in run.summary.figure_clusters(8, run.periods)}
+    assert {str(p["cluster"]) for p in run.periods} <= drawn
