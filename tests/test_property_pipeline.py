@@ -28,7 +28,7 @@ ZONES = ["UTC", "America/New_York", "Europe/Berlin", "+05:30", "Australia/Sydney
 
 @st.composite
 def exports(draw):
-    n = draw(st.sampled_from([3, 4, 7, 15, 40, 90]))
+    n = draw(st.sampled_from([3, 4, 7, 15, 40, 90, 250]))
     interval = draw(st.sampled_from(["1min", "5min", "10min", "1h"]))
     n_t = draw(st.integers(3, 30))
     seed = draw(st.integers(0, 10_000))
@@ -42,6 +42,8 @@ def exports(draw):
         stations.loc[:2, "latitude"] = stations["latitude"].iloc[0]
     if draw(st.booleans()) and n >= 4:  # two stations at one place
         stations.loc[3, ["latitude", "longitude"]] = stations.loc[2, ["latitude", "longitude"]].to_numpy()
+    if draw(st.booleans()) and n >= 4:  # a station id listed twice in the stations file
+        stations = pd.concat([stations, stations.iloc[[1]]], ignore_index=True)
     if draw(st.booleans()):  # a station that never reports
         stations = pd.concat([stations, stations.iloc[[0]].assign(station_id="SILENT")], ignore_index=True)
     if draw(st.booleans()):  # irregular report times
