@@ -283,7 +283,7 @@ class Painter:
     def _stop_workers(self) -> None:
         # the executor has no public way to end its processes; they hold no state of ours
         for proc in list(getattr(self._pool, "_processes", {}).values()):
-            proc.terminate()
+            proc.kill()  # at once: a worker stopped while it starts would print a traceback on the way out
 
     def __enter__(self) -> "Painter":
         return self
