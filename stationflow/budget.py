@@ -513,7 +513,8 @@ def _cluster_terrain(x: np.ndarray, y: np.ndarray, z: np.ndarray, members: list[
     plane gradient (dz/dx, dz/dy) [1] through the members."""
     zz = np.asarray(z, float)
     f = fit_planes(zz[None, :], x, y, members, residuals=False)
-    dz = np.array([zz[np.asarray(m)].mean() for m in members]) - z_ref  # once per run and cluster, not per time
+    memb = membership_matrix(members, len(zz))
+    dz = np.asarray(memb.T @ np.nan_to_num(zz)) / np.asarray(memb.sum(axis=0)).ravel() - z_ref
     return dz[None, :], np.nan_to_num(f.grad_x), np.nan_to_num(f.grad_y)
 
 
