@@ -17,7 +17,6 @@ and the key that settles it.
 
 from __future__ import annotations
 
-import numpy as np
 import pandas as pd
 
 from .errors import ConfigError

@@ -15,7 +15,6 @@ from .. import __version__
 from ..align import format_duration
 from ..budget import describe_period, display_zone, show_time
 from ..geometry import cluster_table
-from ..ingest import is_utc
 from . import files, stream
 from .painter import Painter
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
@@ -378,7 +377,7 @@ def noise_sentence(run) -> str:
     loud = np.flatnonzero(noise > 3 * med) if med > 0 else np.zeros(0, int)
     if loud.size:
         worst = loud[np.argsort(-noise[loud])][:5]
-        text += (f". Noisier than 3x the median (check these sensors): "
+        text += (". Noisier than 3x the median (check these sensors): "
                  + ", ".join(f"{st[i]} {noise[i]:.3g}" for i in worst) + (f" and {loud.size - 5} more" if loud.size > 5 else ""))
     return text
 
