@@ -1,8 +1,8 @@
 """The error model: what each sensor's error is made of, learned from the data where not declared.
 
 A sensor's error has two parts (JCGM 100:2008, the GUM, section 5.2 on
-correlated input quantities: an error common to two readings cancels in their
-difference):
+correlated input quantities, from memory: an error common to two readings
+cancels in their difference):
 
 - **reading noise** [unit]: random and independent from one report to the
   next.  It enters the value, the gradient and the tendency.  Unless declared
@@ -10,7 +10,7 @@ difference):
   of the series' second differences: for white noise of standard deviation
   s, ``x[t-1] - 2 x[t] + x[t+1]`` has standard deviation ``sqrt(6) s``
   (median absolute value / 0.6745 estimates a normal standard deviation,
-  Hampel 1974).  It is floored by the reported resolution q of the values
+  Hampel 1974, from memory).  It is floored by the reported resolution q of the values
   (rounding error ``q / sqrt(12)``, GUM F.2.2.1) and by :data:`NOISE_FLOOR`.
 - **offset** [unit]: a persistent calibration error, constant over a run.  It
   enters the value and the gradient (and so the advection) but cancels in a
@@ -20,11 +20,13 @@ difference):
 A third part is not a property of a sensor: **model error**, the departure
 of the field from a plane at the scale of a cluster (curvature, cold pools,
 fronts narrower than the station spacing, and offsets larger than declared).
-:func:`neighbour_spread` estimates it from the network itself: where clusters
+:func:`curvature_bias` estimates it from the network itself: where clusters
 share stations, their gradients would agree up to noise if the field were a
-plane; the excess of their squared differences over what the noise explains
-is the model-error variance of a gradient (Spencer and Doswell 2001 compare
-neighbouring triangle estimates in the same spirit).
+plane.  Their differences give the local curvature (and from it the plane's
+bias at each cluster centre) and the station-scale structure no smooth field
+explains; :func:`null_levels` says how much of either the declared sensor
+errors make by chance, and :func:`model_variance` keeps the excess (Spencer
+and Doswell 2001 compare neighbouring triangle estimates in the same spirit).
 """
 
 from __future__ import annotations
@@ -153,10 +155,11 @@ SAMPLE_VALUES = 200_000
 def value_resolution(values: np.ndarray, *, tolerance: float = 0.02) -> float:
     """The step of the grid the values are reported on (their resolution) [unit], or 0 for continuous values.
 
-    The candidate is the finest step between two distinct values of the
-    whole record; it is the resolution when every value lies on that grid
-    (within ``tolerance`` of a step), as values rounded to 0.01 degF do
-    after conversion to kelvin.
+    The candidate is the greatest common divisor (Euclid's algorithm on
+    floats) of the steps between distinct values; it is the resolution when
+    every value lies on that grid (within ``tolerance`` of a step), as values
+    rounded to 0.01 degF do after conversion to kelvin, even when a series
+    never visits neighbouring grid points.
     """
     v = values[np.isfinite(values)]
     if v.size > SAMPLE_VALUES:  # a grid shows in any large sample of its values
@@ -164,9 +167,18 @@ def value_resolution(values: np.ndarray, *, tolerance: float = 0.02) -> float:
     v = np.unique(v)
     if v.size < 3:
         return 0.0
-    q = float(np.min(np.diff(v)))
-    if q <= 0:
-        return 0.0
+    steps = np.unique(np.diff(v))
+    scale = float(np.max(np.abs(v)))
+    eps = 1e-9 * max(scale, 1.0)
+    q = float(steps[0])
+    for d in steps[1:64]:  # the smallest steps settle the divisor
+        a, b = max(q, float(d)), min(q, float(d))
+        while b > eps * 10:
+            r = a % b
+            a, b = b, (0.0 if r < eps * 10 or b - r < eps * 10 else r)
+        q = a
+        if q < 1e-6 * (v[-1] - v[0]):
+            return 0.0  # no grid coarser than a millionth of the range: continuous values
     k = (v - v[0]) / q
     return q if np.all(np.abs(k - np.round(k)) <= tolerance) else 0.0
 
