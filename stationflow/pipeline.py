@@ -339,9 +339,13 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     else:
         codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
     time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
-    order = errormodel.station_order(codes, time_ns)
-    noise, noise_info = _reading_noise(var, quantity, config, codes, time_ns,
-                                       np.where(mask_q, quantity_values, np.nan), len(ids), order)
+    # the noise is learned from the first reports of the record (rows come in time order): enough for a robust
+    # estimate per station, and bounded work on long records of large networks
+    first = errormodel.noise_sample_rows(time_ns)
+    sample_codes, sample_ns = codes[first], time_ns[first]
+    order = errormodel.station_order(sample_codes, sample_ns)
+    noise, noise_info = _reading_noise(var, quantity, config, sample_codes, sample_ns,
+                                       np.where(mask_q, quantity_values, np.nan)[first], len(ids), order)
     offset, offset_source = offset_uncertainty(var, config)
     min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
     total = np.sqrt(noise ** 2 + offset ** 2)
@@ -383,10 +387,10 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         frame["v"] = np.where(ok_w, v, np.nan)
         frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
         if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
-            su, _, _ = errormodel.reading_noise(codes, time_ns, frame["u"].to_numpy(), len(ids), order=order,
-                                                floor=errormodel.WIND_FLOOR, resolution=False)
-            sv, _, _ = errormodel.reading_noise(codes, time_ns, frame["v"].to_numpy(), len(ids), order=order,
-                                                floor=errormodel.WIND_FLOOR, resolution=False)
+            su, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["u"].to_numpy()[first], len(ids),
+                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
+            sv, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["v"].to_numpy()[first], len(ids),
+                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
             settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
             choices["wind_noise_source"] = "learned from second differences of each station's wind components"
         else:

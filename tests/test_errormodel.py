@@ -71,3 +71,10 @@ def test_model_error_is_zero_on_a_plane_and_matches_the_bias_in_a_curved_field()
     rms_true = np.sqrt(np.mean(true_bias ** 2) / 2)  # per component
     rms_est = np.sqrt(np.mean(out["valley"] ** 2))
     assert rms_true / 3 < rms_est < rms_true * 3, (rms_est, rms_true)
+
+
+def test_noise_sample_is_the_leading_rows_cut_at_a_change_of_time():
+    t = np.repeat(np.arange(100), 7)  # 7 stations report at each of 100 times
+    assert em.noise_sample_rows(t, limit=1000) == slice(0, 700)
+    cut = em.noise_sample_rows(t, limit=300)
+    assert cut.stop <= 300 and cut.stop % 7 == 0 and t[cut.stop - 1] != t[cut.stop]
