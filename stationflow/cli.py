@@ -6,6 +6,7 @@ system refused (one ``error:`` line on stderr); 1 an unexpected fault.
 
 from __future__ import annotations
 
+import contextlib
 import sys
 import traceback
 from enum import Enum
@@ -88,6 +89,7 @@ def _run(fn, *, quiet: bool):
     from .memory import tune_allocator
 
     tune_allocator()
+    STATE["published"] = False
     prog, report = _progress(quiet)
     try:
         if prog is not None:
@@ -192,13 +194,17 @@ def check(
     _run(job, quiet=quiet)
 
 
+@contextlib.contextmanager
 def _staged(out: Path):
     """The staging folder of a command's outputs (:func:`report.staging.staged`); published on success and when
-    no row was usable (its error names rejected_rows.csv, written for it)."""
+    no row was usable (its error names rejected_rows.csv, written for it).  Once published, a SIGTERM no longer
+    stops the command: its outputs are whole and it only has to end."""
     from .errors import NoUsableRows
     from .report.staging import staged
 
-    return staged(out, publish_on=(NoUsableRows,))
+    with staged(out, publish_on=(NoUsableRows,)) as stage:
+        yield stage
+    STATE["published"] = True  # (reached only when the block ended normally and the folder is in place)
 
 
 def _checked(obs: Path, stations: Path | None, cfg, out: Path, report, *, command: str):
@@ -485,6 +491,8 @@ class Terminated(KeyboardInterrupt):
 
 
 def _on_sigterm(signum, frame) -> None:  # noqa: ARG001 - the signal module's signature
+    if STATE.get("published"):
+        return  # the outputs are in place: finish the last steps of a successful run
     raise Terminated()
 
 
