@@ -13,11 +13,15 @@ For each usable cluster and analysis time (REFERENCES 2.1):
   mean of the in-situ part (the residual);
 - standard errors by first-order propagation: gradient covariance and wind
   error for A, ``var(A) = V^T S_grad V + grad^T S_V grad`` (REFERENCES 1.3),
-  intercept errors for the tendency; random errors are independent between
-  time steps, the calibration (offset) uncertainty is fully correlated in
-  time, so it cancels in the tendency but not in the advection;
+  intercept errors for the tendency.  The error model
+  (:mod:`stationflow.errormodel`): reading noise is independent between
+  time steps (it averages down over the window and enters the tendency);
+  sensor offsets and the model error (the field is not a plane) persist
+  (they do not average down, and offsets cancel in the tendency);
 - the regime: which terms exceed ``significance`` standard errors (and
-  ``min_rate``), and the advective share ``|A| / (|A| + |R|)``.
+  ``min_rate``), and the advective share ``|A| / (|A| + |R|)``; a
+  significant change is never steady; implausible splits (large parts that
+  cancel) are undetermined.
 
 Every rate is in the variable's unit per hour; gradients in unit per km.
 """
@@ -384,8 +388,8 @@ def compute_budget(
     advection, residual and their standard errors [unit h-1], grad_x,
     grad_y [unit km-1] and errors, u, v [m s-1] and errors, n_used, dof,
     rms, regime (int8 codes into :data:`REGIMES`), divergence and vorticity [s-1] with errors (plane fits of u
-    and v over the same clusters), and (with regression) vertical_gradient
-    [unit per 100 m].
+    and v over the same clusters), model_error [unit km-1], implausible (bool), and (with regression or a
+    measured lapse) vertical_gradient [unit per 100 m].
     """
     s = settings
     n_s = values.shape[1]
@@ -397,6 +401,7 @@ def compute_budget(
     if s.error_model not in ERROR_MODELS:
         raise ValueError(f"error_model must be one of {ERROR_MODELS}")
     h = max(1, int(s.half_window))
+    memb = membership_matrix(members, n_s)
     scale = fit.error_scale(s.error_model)
     # prior covariances: the whole (noise + offsets) and the reading-noise part alone
     vx, vy, cxy, va = fit.var_x, fit.var_y, fit.cov_xy, fit.var_value
@@ -413,7 +418,8 @@ def compute_budget(
         vxn, vyn, cxyn = vxn + zx * zx * gn, vyn + zy * zy * gn, cxyn + zx * zy * gn
         # (the value needs nothing: the gamma error that enters the intercept, d_gamma (mean z - z_ref), is
         # taken out again when gamma (mean z - z_ref) is added back)
-    # model error: the departure from a plane, persistent in time (neighbour spread; chi-square where dof > 0)
+    # model error: the departure from a plane, persistent in time (from the neighbouring clusters; the
+    # chi-square excess where dof > 0; the larger counts)
     model_var = np.zeros_like(gx)
     if s.model_error:
         geom, null_b2, null_structure = s.model_network or model_network(x, y, members, noise, s)
@@ -421,7 +427,6 @@ def compute_budget(
         model_var = model_variance(bx, by, structure, null_b2, null_structure)
     excess = (scale - 1.0) * 0.5 * (vx + vy)  # chi-square above 1: what the residuals show beyond the noise
     model_var = np.fmax(model_var, np.where(np.isfinite(excess), excess, 0.0))
-    memb = membership_matrix(members, n_s)
     um, uvar, n_w = cluster_mean(u, memb)
     vm, vvar, _ = cluster_mean(v, memb, counts=(np.isfinite(u), n_w))
     nw = np.maximum(n_w, 1)
@@ -447,7 +452,7 @@ def compute_budget(
     a_plus, a_minus = shift(value, h), shift(value, -h)
     tendency = (a_plus - a_minus) / span * hour
     # offsets cancel in the difference when the same stations were used at both ends; else they count too
-    sizes = np.array([len(m) for m in members])[None, :]
+    sizes = np.asarray(memb.sum(axis=0))  # (1, n_clusters)
     complete = (fit.n_used == sizes).astype(float)
     same = ((shift(fit.pattern.astype(float), h) == shift(fit.pattern.astype(float), -h))
             | ((shift(complete, h) == 1.0) & (shift(complete, -h) == 1.0)))
