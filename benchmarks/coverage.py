@@ -10,7 +10,7 @@ import argparse
 import datetime as dt
 from pathlib import Path
 
-from stationflow.coverage import TERMS, coverage_table
+from stationflow.scenarios.coverage import TERMS, coverage_table
 
 
 def markdown(table) -> str:

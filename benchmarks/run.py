@@ -53,7 +53,7 @@ def generate(name: str, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Pat
     import pyarrow.csv as pacsv
     import pyarrow.parquet as pq
 
-    from stationflow import synthetic
+    from stationflow.scenarios import synthetic
 
     n, days, minutes = SIZES[name]
     folder.mkdir(parents=True, exist_ok=True)
@@ -90,9 +90,9 @@ def generate(name: str, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Pat
 
 def bench_core(name: str, *, repeats: int = 3) -> dict:
     """fit_planes throughput on triangles: complete data and 5 % missing."""
-    from stationflow import synthetic
-    from stationflow.geometry import delaunay_clusters
-    from stationflow.gradient import fit_planes
+    from stationflow.estimate.planes import fit_planes
+    from stationflow.network.geometry import delaunay_clusters
+    from stationflow.scenarios import synthetic
 
     n, days, minutes = SIZES[name]
     n_t = days * 24 * 60 // minutes

@@ -1,4 +1,4 @@
-"""The command line: a thin typer layer over :mod:`stationflow.pipeline`.
+"""The command line: a thin typer layer over :mod:`stationflow.api`.
 
 Exit codes: 0 done; 2 bad input or configuration, or an output the file
 system refused (one ``error:`` line on stderr); 1 an unexpected fault.
@@ -86,7 +86,7 @@ def _progress(quiet: bool):
 
 
 def _run(fn, *, quiet: bool):
-    from .memory import tune_allocator
+    from .run.workers import tune_allocator
 
     tune_allocator()
     STATE["published"] = False
@@ -210,7 +210,7 @@ def _staged(out: Path):
 def _checked(obs: Path, stations: Path | None, cfg, out: Path, report, *, command: str):
     """``run_check``; when no row is usable, rejected_rows.csv and run.json are written before the error."""
     from .errors import NoUsableRows
-    from .pipeline import run_check
+    from .run.check import run_check
 
     try:
         return run_check(obs, stations, cfg, progress=report)
@@ -226,8 +226,8 @@ def _check_summary(chk, out: Path) -> str:
     import numpy as np
     import pandas as pd
 
-    from .align import format_duration
-    from .budget import display_zone, show_time
+    from .network.grid import format_duration
+    from .report.text import display_zone, show_time
 
     zone = display_zone(chk.config)
     d = chk.data
@@ -243,6 +243,7 @@ def _check_summary(chk, out: Path) -> str:
         step = gaps.groupby(srt["station_id"]).median()
         common = step.mode().iloc[0] if len(step.dropna()) else None
         odd = step[step != common].dropna()
+
         def fmt(td) -> str:
             return format_duration(td) if pd.notna(td) else "single report"
 
@@ -292,8 +293,8 @@ def network(
     \b
         stationflow network --stations sample_data/frost/stations.csv --out network_out
     """
-    from .ingest import read_observations, read_stations
-    from .pipeline import run_network
+    from .api import run_network
+    from .read import read_observations, read_stations
     from .report.outputs import write_network
 
     def job(report):
@@ -357,7 +358,7 @@ def budget(
             raise ConfigError("--scheduler goes with --engine dask")
         with _staged(out) as stage:
             run, notes = _budget_job(obs, stations, cfg, stage, report, variable=variable, csv=csv,
-                                     dask=engine == Engine.dask, scheduler=scheduler)
+                                     engine=engine.value, scheduler=scheduler)
         if not quiet:
             typer.echo(_budget_summary(run, out, notes))
 
@@ -365,8 +366,9 @@ def budget(
 
 
 def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, variable: str | None = None,
-                csv: bool = False, dask: bool = False, scheduler: str | None = None):
-    """Check, budget (streamed to ``out``) and report; returns (run, notes). Shared by ``budget`` and ``demo``.
+                csv: bool = False, engine: str = "local", scheduler: str | None = None):
+    """Check, budget (written to ``out`` partition by partition) and report; returns (run, notes).
+    Shared by ``budget`` and ``demo``.
 
     The figures are drawn in a worker process while the budget is computed:
     the QC overview as soon as QC is done, the budget figures as soon as the
@@ -374,25 +376,21 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     """
     from concurrent.futures import ThreadPoolExecutor
 
-    from .pipeline import budget_to_files
+    from .api import budget_to_files
     from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
     from .report.painter import Painter
+    from .run.workers import import_ahead
 
-    _import_ahead()
+    import_ahead()
     with Painter() as painter, ThreadPoolExecutor(1, thread_name_prefix="stationflow-qc-figure") as side:
         chk = _checked(obs, stations, cfg, out, report, command="budget")
         # the QC overview's image is binned on a thread beside the budget's set-up (both only read the
         # checked observations), then drawn by the figure worker
         qc_job = side.submit(submit_qc_figure, painter, out, chk)
         figs: dict = {}
-        if dask:
-            from .scale import budget_to_files_dask
-
-            run = budget_to_files_dask(chk, cfg, out, variable=variable, csv=csv, scheduler=scheduler, progress=report)
-            figs = submit_budget_figures(painter, out, run)
-        else:
-            run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report,
-                                  on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
+        run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report, engine=engine,
+                              scheduler=scheduler,
+                              on_summary=lambda r: figs.update(submit_budget_figures(painter, out, r)))
         qc_fig = qc_job.result()
         report("writing the report")
         _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
@@ -400,31 +398,9 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     return run, notes
 
 
-#: modules the budget needs after the input is read; imported on a thread while it is read
-_LATER_MODULES = ("scipy.spatial", "scipy.sparse", "pyproj", "netCDF4", "pyarrow.parquet")
-
-
-def _import_ahead() -> None:
-    """Import :data:`_LATER_MODULES` on a background thread (about 0.3-0.5 s, mostly while the CSV parser
-    holds no interpreter lock).  Python's import locks make a concurrent import of the same module wait;
-    a module that fails here is imported (and fails, with its message) where it is used."""
-    import importlib
-    import threading
-
-    def work() -> None:
-        for name in _LATER_MODULES:
-            try:
-                importlib.import_module(name)
-            except Exception:  # noqa: BLE001 - reported where the module is really used
-                pass
-
-    threading.Thread(target=work, name="stationflow-imports", daemon=True).start()
-
-
 def _budget_summary(run, out: Path, notes: list[str]) -> str:
-    from .budget import describe_period
-
-    from .align import format_duration
+    from .network.grid import format_duration
+    from .report.text import describe_period
 
     counts = run.summary.regime_counts()
     fitted = f" (fitted as {run.quantity})" if run.quantity != run.variable else ""
@@ -433,7 +409,7 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")
-        from .budget import display_zone
+        from .report.text import display_zone
 
         tz = display_zone(run.check.config) or "UTC"
         lines += ["  " + describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
@@ -465,7 +441,7 @@ def demo(
     \b
         stationflow demo --scenario frost --out demo_output/frost
     """
-    from . import synthetic
+    from .scenarios import synthetic
 
     def job(report):
         folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
@@ -493,7 +469,25 @@ class Terminated(KeyboardInterrupt):
 def _on_sigterm(signum, frame) -> None:  # noqa: ARG001 - the signal module's signature
     if STATE.get("published"):
         return  # the outputs are in place: finish the last steps of a successful run
+    if _later(signum):
+        return
     raise Terminated()
+
+
+def _on_sigint(signum, frame) -> None:  # noqa: ARG001 - the signal module's signature
+    if _later(signum):
+        return
+    raise KeyboardInterrupt()
+
+
+def _later(signum: int) -> bool:
+    """True when the signal was put off until the imports on the side thread are done (it is then delivered
+    again): raised while both threads import, it could leave a module lock held and hang the process."""
+    import _thread
+
+    from .run.workers import after_imports
+
+    return after_imports(lambda: _thread.interrupt_main(signum))
 
 
 def main() -> None:
@@ -509,27 +503,17 @@ def main() -> None:
     """
     import signal
 
+    from .run.workers import leave
+
     signal.signal(signal.SIGTERM, _on_sigterm)
+    if signal.getsignal(signal.SIGINT) is signal.default_int_handler:
+        signal.signal(signal.SIGINT, _on_sigint)
     try:
         app()
     except SystemExit as done:
         if done.code is None or isinstance(done.code, int):
-            _leave(done.code or 0)
+            leave(done.code or 0)
         raise
-
-
-def _leave(code: int) -> None:
-    """End the process with ``code`` after the interpreter's exit handlers, skipping its teardown."""
-    import atexit
-    import os
-
-    try:
-        atexit._run_exitfuncs()  # what a normal exit runs first (the only way to run them here)
-        sys.stdout.flush()
-        sys.stderr.flush()
-    except Exception:  # noqa: BLE001 - a handler or stream failed: leave the normal way, which reports it
-        return
-    os._exit(code)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -230,7 +230,7 @@ def _validate_values(cfg: Config, where0: str) -> None:
         raise ConfigError(f"{where0}network.clusters = 'file' needs network.cluster_file")
     if not 0.5 <= cfg["budget"]["dominance"] < 1.0:
         raise ConfigError(f"{where0}budget.dominance must be in [0.5, 1)")
-    from .align import parse_duration  # local: align imports nothing from here
+    from .network.grid import parse_duration
 
     for name in ("interval", "window", "chunk"):
         text = cfg["budget"][name]

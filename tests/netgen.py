@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from stationflow import synthetic
+from stationflow.scenarios import synthetic
 
 
 def linear_night(n_stations: int, n_times: int, *, seed: int = 0, elevation: bool = True, missing: float = 0.05,

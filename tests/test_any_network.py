@@ -171,7 +171,7 @@ def test_an_alpine_network_untuned_gives_no_fake_advection(runner, tmp_path):
     The air's horizontal gradient is 0.05 K/km with a 2 m/s wind: the true advection is -0.36 K/h
     everywhere (analytic truth). A fit that let height pose as distance gave tens of K/h.
     """
-    from stationflow import synthetic as s
+    from stationflow.scenarios import synthetic as s
 
     st = s.network(81, radius_km=60, seed=21,
                    elevation=lambda x, y: 900 + 1200 * (1 + np.sin(x / 15000) * np.cos(y / 12000)))

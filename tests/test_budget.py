@@ -4,8 +4,16 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stationflow.budget import (REGIMES, BudgetSettings, classify, compute_budget, fill_short_gaps, main_periods,
-                                window_mean, window_sum_sq_weights)
+from stationflow.estimate.budget import (
+    REGIMES,
+    BudgetSettings,
+    classify,
+    compute_budget,
+    fill_short_gaps,
+    main_periods,
+    window_mean,
+    window_sum_sq_weights,
+)
 
 from .conftest import equilateral
 
@@ -52,8 +60,8 @@ def test_advection_error_example():
 
 def test_known_time_varying_wind_and_source_every_cluster():
     # a linear field advected by a wind that turns and strengthens, with a time-varying in-situ term
-    from stationflow import synthetic
-    from stationflow.geometry import delaunay_clusters
+    from stationflow.network.geometry import delaunay_clusters
+    from stationflow.scenarios import synthetic
 
     st = synthetic.network(12, radius_km=15, seed=4)
     f = synthetic.LinearField(base=283.0, gx=synthetic._const(4e-5), gy=synthetic._const(-2e-5),
@@ -132,7 +140,7 @@ def test_window_helpers():
 
 
 def test_main_periods_and_description():
-    from stationflow.budget import describe_period
+    from stationflow.report.text import describe_period
 
     times = pd.date_range("2026-04-15 04:40", periods=6, freq="10min", tz="UTC")
     t = pd.DataFrame({"time": times, "cluster": "T03", "regime": ["steady"] + ["advective"] * 4 + ["in_situ"],
@@ -146,7 +154,7 @@ def test_main_periods_and_description():
 
 def test_window_sums_on_records_shorter_than_the_window():
     # analytic: with every sample present, the weights are 1 inside the window and 1/2 at its ends
-    from stationflow import budget
+    from stationflow.estimate import budget
 
     acc, wsum, total = budget._window_sums(np.ones((2, 3)), 3, 1)
     assert total == 6.0
@@ -158,7 +166,12 @@ def test_window_sums_on_records_shorter_than_the_window():
 def test_shared_work_gives_the_same_numbers():
     # the budget shares gap positions, window weights and counts between arrays missing in the same
     # places; the results equal the one-array functions bit for bit (and arrays with other gaps still work)
-    from stationflow.budget import cluster_mean, fill_short_gaps_like, membership_matrix, window_mean_and_variance
+    from stationflow.estimate.budget import (
+        cluster_mean,
+        fill_short_gaps_like,
+        membership_matrix,
+        window_mean_and_variance,
+    )
 
     rng = np.random.default_rng(4)
     a = rng.normal(size=(300, 9))
@@ -185,7 +198,7 @@ def test_shared_work_gives_the_same_numbers():
 
 def test_implausible_splits_are_flagged_and_never_a_regime():
     # advection +50.3 and in situ -50.3 against a change of 0.01 K/h (an alpine cluster spanning 2 km of height)
-    from stationflow.budget import implausible
+    from stationflow.estimate.budget import implausible
 
     t, a, r = np.array([0.01, -1.4, 0.5]), np.array([50.32, -0.1, 3.0]), np.array([-50.31, -1.3, -2.5])
     assert implausible(t, a, r, min_rate=0.25).tolist() == [True, False, False]
@@ -201,3 +214,18 @@ def test_implausible_rows_are_undetermined_in_the_budget():
     mid = out["implausible"][3:-3, 0]
     assert mid.all()
     assert (out["regime"][3:-3, 0] == REGIMES.index("undetermined")).all()
+
+
+def test_row_mean_var_equals_numpy_nan_functions():
+    from stationflow.estimate.budget import row_mean_var
+
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(200, 7))
+    x[rng.random(x.shape) < 0.4] = np.nan
+    x[3] = np.nan  # an empty row
+    x[4, 1:] = np.nan  # one value: no variance
+    mean, var = row_mean_var(x)
+    with np.errstate(invalid="ignore", divide="ignore"), pytest.warns(RuntimeWarning):
+        ref_mean, ref_var = np.nanmean(x, axis=1), np.nanvar(x, axis=1, ddof=1)
+    np.testing.assert_allclose(mean, ref_mean, rtol=1e-13, equal_nan=True)
+    np.testing.assert_allclose(var, ref_var, rtol=1e-12, equal_nan=True)

@@ -12,10 +12,10 @@ import pytest
 import xarray as xr
 
 from stationflow import docgen
-from stationflow.budget import REGIMES
 from stationflow.cli import app
-from stationflow.pipeline import TABLE_COLUMNS
+from stationflow.estimate.budget import REGIMES
 from stationflow.report import atomic, files
+from stationflow.schema import TABLE_COLUMNS
 
 from .conftest import ROOT
 
@@ -157,9 +157,9 @@ def test_atomic_write_replaces_an_existing_file(tmp_path, monkeypatch, swap):
 
 
 def test_large_table_goes_to_parquet_only(tmp_path, runner, monkeypatch):
-    from stationflow.report import stream
+    from stationflow.report import tables
 
-    monkeypatch.setattr(stream, "CSV_ROW_LIMIT", 100)
+    monkeypatch.setattr(tables, "CSV_ROW_LIMIT", 100)
     args = ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
             "--config", str(FROST / "config.toml")]
     res = runner.invoke(app, args + ["--out", str(tmp_path / "a")])
@@ -188,12 +188,12 @@ def test_output_folder_that_is_a_file_is_exit_2(tmp_path, runner):
 
 
 def test_disk_full_while_writing_is_exit_2_and_leaves_no_budget_files(tmp_path, runner, monkeypatch):
-    from stationflow.report import stream
+    from stationflow.report import tables
 
     def full(self, first, block):
         raise OSError(28, "No space left on device", str(self.out / "budget.parquet"))
 
-    monkeypatch.setattr(stream.BudgetFiles, "_write_tables", full)
+    monkeypatch.setattr(tables.TableFiles, "_write", full)
     out = tmp_path / "o"
     res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
                               "--config", str(FROST / "config.toml"), "--out", str(out), "--quiet"])

@@ -9,7 +9,7 @@ edge matters as much as the lower: errors stated too large make every change 'st
 import numpy as np
 import pytest
 
-from stationflow.coverage import TERMS, cases, coverage_table, sample_case
+from stationflow.scenarios.coverage import TERMS, cases, coverage_table, sample_case
 
 
 @pytest.fixture(scope="module")

@@ -5,8 +5,8 @@ import pandas as pd
 import pytest
 from pyproj import Geod
 
-from stationflow import geometry
 from stationflow.config import from_dict
+from stationflow.network import geometry
 
 GEOD = Geod(ellps="WGS84")
 
@@ -146,7 +146,9 @@ def test_collinear_network_is_a_clear_error():
 
 
 def test_clusters_spanning_too_much_height_are_screened_with_a_reason():
-    from stationflow import config, geometry, synthetic
+    from stationflow import config
+    from stationflow.network import geometry
+    from stationflow.scenarios import synthetic
 
     st = synthetic.network(20, radius_km=10, seed=5, elevation=lambda x, y: 500 + 0.12 * x)  # 2.4 km of relief
     net = geometry.build_network(st.drop(columns=["x", "y"]), config.load(None))
@@ -159,8 +161,8 @@ def test_clusters_spanning_too_much_height_are_screened_with_a_reason():
 def test_map_labels_are_thinned_so_none_overlap():
     from scipy.spatial.distance import pdist
 
-    from stationflow import synthetic
     from stationflow.report.plots import thin_labels
+    from stationflow.scenarios import synthetic
 
     st = synthetic.network(150, radius_km=20, seed=1)
     x, y = st["x"].to_numpy() / 1000, st["y"].to_numpy() / 1000
@@ -175,8 +177,8 @@ def test_map_labels_are_thinned_so_none_overlap():
 def test_map_colour_is_the_commonest_regime_including_steady_and_undetermined():
     import pandas as pd
 
-    from stationflow.budget import REGIMES
-    from stationflow.summary import BudgetSummary
+    from stationflow.estimate.budget import REGIMES
+    from stationflow.report.summary import BudgetSummary
 
     times = pd.date_range("2026-04-10", periods=10, freq="10min", tz="UTC")
     clusters = pd.DataFrame({"cluster": ["A", "B"], "stations": ["1+2+3", "2+3+4"], "latitude": [0.0, 0.0],

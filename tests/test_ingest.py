@@ -6,8 +6,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stationflow import config, ingest
+from stationflow import config
+from stationflow import read as ingest
 from stationflow.errors import ConfigError, IngestError
+from stationflow.read.stations import station_labels
 
 from .conftest import utc, write_csv
 
@@ -218,6 +220,6 @@ def test_station_labels_of_a_categorical_equal_those_of_plain_text(unused):
     values = [" B2", "A1", None, "C3 ", "A1", " B2"]
     cats = ["C3 ", " B2", "A1"] + (["Z9"] if unused else [])
     coded = pd.Series(pd.Categorical(values, categories=cats))
-    got, want = ingest._station_labels(coded), ingest._station_labels(pd.Series(values, dtype=object))
+    got, want = station_labels(coded), station_labels(pd.Series(values, dtype=object))
     assert got.tolist() == want.tolist() == ["B2", "A1", "", "C3", "A1", "B2"]
     assert list(got.cat.categories) == list(want.cat.categories) == ["", "A1", "B2", "C3"]

@@ -37,7 +37,7 @@ def _start(paths, out: Path) -> subprocess.Popen:
     cmd = [sys.executable, "-c", "from stationflow.cli import main; main()", "budget", "--stations",
            str(paths["stations"]), "--obs", str(paths["obs"]), "--config", str(paths["config"]), "--out", str(out), "--quiet"]
     return subprocess.Popen(cmd, start_new_session=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
-                            env={**os.environ, "STATIONFLOW_FIGURES": ""})
+                            env={**os.environ, "STATIONFLOW_IN_PROCESS": ""})
 
 
 def _whole_run(out: Path) -> dict:

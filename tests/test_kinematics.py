@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from stationflow.kinematics import fit_wind, kinematics, vector_mean
+from stationflow.estimate.kinematics import fit_wind, kinematics, vector_mean
 
 from .conftest import equilateral
 

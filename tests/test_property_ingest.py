@@ -1,12 +1,13 @@
 """Property tests: random CSV text never produces a traceback, only accepted rows or clear errors."""
 
-from pathlib import Path
 import tempfile
+from pathlib import Path
 
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from stationflow import config, ingest
+from stationflow import config
+from stationflow import read as ingest
 from stationflow.cli import app
 from stationflow.errors import StationflowError
 

@@ -6,9 +6,9 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stationflow import qc, synthetic
+from stationflow import qc
 from stationflow.config import from_dict
-
+from stationflow.scenarios import synthetic
 
 MIN = 60_000_000_000  # one minute in ns
 
@@ -48,7 +48,7 @@ def test_step_test_skips_only_changes_that_cannot_exceed(name):
     change = rng.normal(0, 2, 5000) * _largest_limit(table)
     change[:50] = qc.step_limit(table, minutes[:50])  # exactly at the limit: not exceeding
     change[50:60] = np.nan
-    assert (qc._exceeds(change, minutes, table) == (np.abs(change) > qc.step_limit(table, minutes))).all()
+    assert (qc.steps.exceeds_step(change, minutes, table) == (np.abs(change) > qc.step_limit(table, minutes))).all()
 
 
 def _largest_limit(table):
@@ -207,7 +207,8 @@ def test_frost_cold_pool_station_not_flagged_bad():
 def test_real_front_not_flagged_for_disagreeing(arm_dir, arm_config):
     # ARM SGP 2019-05-08 04 UTC (doi:10.5439/1786358): a real front splits the network into a
     # 16 degC west and a 20-23 degC east; neither side is flagged merely for disagreeing
-    from stationflow import config, ingest
+    from stationflow import config
+    from stationflow import read as ingest
 
     cfg = config.load(arm_config)
     data = ingest.read(arm_dir / "sgp_met_1min_long.csv", None, cfg)
@@ -279,11 +280,11 @@ def test_threaded_qc_equals_serial(monkeypatch, parts):
     # give the flags of one whole-period test, whatever their number
     obs, st, _ = _fault_network()
     cfg = from_dict({})
-    monkeypatch.setattr(qc, "THREADED_ROWS", 10**12)
-    monkeypatch.setattr(qc, "SPATIAL_PARTS", 1)
+    monkeypatch.setattr(qc.runner, "THREADED_ROWS", 10**12)
+    monkeypatch.setattr(qc.runner, "SPATIAL_PARTS", 1)
     serial = qc.run_qc(obs, st, cfg)
-    monkeypatch.setattr(qc, "THREADED_ROWS", 0)
-    monkeypatch.setattr(qc, "SPATIAL_PARTS", parts)
+    monkeypatch.setattr(qc.runner, "THREADED_ROWS", 0)
+    monkeypatch.setattr(qc.runner, "SPATIAL_PARTS", parts)
     threaded = qc.run_qc(obs, st, cfg)
     assert any((f > 0).any() & (f < 3).any() for f in serial.flags.values())  # tests fired
     assert ((serial.tests["air_temperature"] & qc.TEST_BITS["spatial"]) > 0).any()  # the buddy test too

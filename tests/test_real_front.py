@@ -8,9 +8,11 @@ eastern stations 20-23 degC with south-east to south winds.
 import numpy as np
 import pytest
 
-from stationflow import config, geometry, ingest
-from stationflow.gradient import fit_planes
-from stationflow.kinematics import fit_wind, kinematics
+from stationflow import config
+from stationflow import read as ingest
+from stationflow.estimate.kinematics import fit_wind, kinematics
+from stationflow.estimate.planes import fit_planes
+from stationflow.network import geometry
 from stationflow.variables import wind_components
 
 

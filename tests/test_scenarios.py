@@ -7,7 +7,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stationflow import config, pipeline, qc, synthetic
+from stationflow import api, config, qc
+from stationflow.scenarios import synthetic
 
 from .conftest import ROOT
 
@@ -31,14 +32,14 @@ def test_sample_data_is_small():
 def frost_run():
     folder = ROOT / "sample_data" / "frost"
     cfg = config.load(folder / "config.toml")
-    return pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.frost_valley()
+    return api.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.frost_valley()
 
 
 @pytest.fixture(scope="module")
 def town_run():
     folder = ROOT / "sample_data" / "town"
     cfg = config.load(folder / "config.toml")
-    return pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.smoke_town()
+    return api.run_budget(folder / "observations.csv", folder / "stations.csv", cfg), synthetic.smoke_town()
 
 
 def _joined(run, sc, quantity=None):
@@ -128,7 +129,7 @@ def test_old_tuning_keys_keep_working():
     raw["uncertainty"].update({"sensor": {"air_temperature": 0.15}, "calibration": 0.05})
     raw["budget"].update({"vertical": "potential_temperature", "window": "60min", "min_rate": 0.2})
     cfg = config.from_dict(raw)
-    run = pipeline.run_budget(folder / "observations.csv", folder / "stations.csv", cfg)
+    run = api.run_budget(folder / "observations.csv", folder / "stations.csv", cfg)
     assert run.window == pd.Timedelta("60min") and run.choices["window_source"] == "budget.window"
     assert run.quantity == "potential_temperature" and run.settings.min_rate == 0.2
     assert np.allclose(run.settings.sigma, 0.15) and run.settings.offset == 0.05  # sensor: reading noise; calibration: offset

@@ -3,7 +3,7 @@
 import numpy as np
 import pytest
 
-from stationflow import thermo
+from stationflow.estimate import thermo
 
 
 # REFERENCES.md 2.2, check values computed there with Poisson's equation, kappa = R_d/c_p ~ 0.2857.

@@ -12,11 +12,12 @@ import numpy as np
 import pandas as pd
 
 from .. import __version__
-from ..align import format_duration
-from ..budget import describe_period, display_zone, show_time
-from ..geometry import cluster_table
-from . import files, stream
+from ..network.geometry import cluster_table
+from ..network.grid import format_duration
+from . import files, tables
 from .painter import Painter
+from .text import describe_period, display_zone, show_time
+
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
 
 
@@ -171,8 +172,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     """Every budget output. Returns (paths, notes for the user).
 
     ``tables_written``: budget.parquet / budget.nc / budget.csv were already
-    streamed by :class:`stationflow.report.stream.BudgetFiles` (the CLI
-    path); otherwise they are written here from ``run.dataset``.
+    written partition by partition by :func:`stationflow.report.tables.budget_files`
+    (the CLI path); otherwise they are written here from ``run.dataset``.
     ``qc_figure`` and ``figures``: figures already started on a
     :class:`~stationflow.report.painter.Painter` (drawn here otherwise).
     """
@@ -183,16 +184,21 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     written = write_check(out, run.check, inputs=inputs, command="budget", qc_figure=qc_figure)
     summary = run.summary
     if tables_written:
-        with_csv = stream.csv_wanted(summary.rows, csv)
+        with_csv = tables.csv_wanted(summary.rows, csv)
         written += [out / n for n in ["budget.parquet", "budget.nc"] + (["budget.csv"] if with_csv else [])]
         if not with_csv:
-            notes.append(stream.csv_skipped(summary.rows))
+            notes.append(tables.csv_skipped(summary.rows))
     else:
-        with stream.BudgetFiles(out, run.layout, csv=csv, background=False) as sink:
-            ds = run.dataset
-            sink.add(0, {name: ds[name].values for name in ds.data_vars})
-        written += sink.paths
-        notes += sink.notes
+        from ..run.sinks import Partition
+
+        ds = run.dataset
+        part = Partition(0, {name: ds[name].values for name in ds.data_vars})
+        with tables.budget_files(out, run.layout, csv=csv, background=False) as sinks:
+            for sink in sinks:
+                sink.write(part)
+        for sink in sinks:
+            written += sink.paths
+            notes += getattr(sink, "notes", [])
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
     lines = [describe_period(p, variable=run.quantity, timezone=display_zone(run.check.config) or "UTC")
              for p in run.periods]

@@ -84,9 +84,9 @@ def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], 
     img = np.where(img < 0, 3, img)
     start = pd.Timestamp(t0, tz="UTC")
     if tz:
-        from ..ingest import _timezone
+        from ..read.times import tzinfo_for
 
-        start = start.tz_convert(_timezone(tz))
+        start = start.tz_convert(tzinfo_for(tz))
     labels = [(start + pd.Timedelta(seconds=span * k / nb)).strftime("%m-%d %H:%M") for k in np.linspace(0, nb, 6)]
     return {"img": img, "stations": stations, "tick_labels": labels, "bins": nb,
             "axis": f"local time ({tz})" if tz else "time (UTC)"}
@@ -287,12 +287,12 @@ def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels:
 
     import pandas as pd
 
-    from ..ingest import _timezone
+    from ..read.times import tzinfo_for
 
     if clusters is None:
         clusters = summary.busiest(max_panels)
     names = ("tendency", "advection", "residual")
-    zone = _timezone(tz) if tz else "UTC"
+    zone = tzinfo_for(tz) if tz else "UTC"
     panels = []
     for c in clusters:
         d = summary.series(c)

@@ -1,0 +1,59 @@
+"""Words and times for people: the main periods as sentences, times in the data's own zone.
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+
+from ..read import is_utc
+from ..read.times import tzinfo_for
+
+
+def display_zone(config) -> str | None:
+    """The zone times are shown in (``observations.display_timezone``, else ``observations.timezone``); None for UTC."""
+    oc = config["observations"]
+    zone = oc.get("display_timezone") or oc["timezone"]
+    return None if is_utc(zone) else zone
+
+
+def show_time(t, zone: str | None, *, date: bool = True) -> str:
+    """A time as people read it: local with its zone abbreviation and UTC in brackets, or UTC alone."""
+    ts = pd.Timestamp(t)
+    ts = ts.tz_localize("UTC") if ts.tzinfo is None else ts.tz_convert("UTC")
+    fmt = "%Y-%m-%d %H:%M" if date else "%H:%M"
+    if zone is None:
+        return f"{ts:{fmt}} UTC"
+    local = ts.tz_convert(tzinfo_for(zone))
+    return f"{local:{fmt}} {local.strftime('%Z') or zone} ({ts:%H:%M} UTC)"
+
+
+def _span(start: pd.Timestamp, end: pd.Timestamp) -> str:
+    end_fmt = "%H:%M" if start.date() == end.date() else "%Y-%m-%d %H:%M"
+    return f"{start:%Y-%m-%d %H:%M}-{end.strftime(end_fmt)}"
+
+
+def describe_period(p: dict, *, variable: str, timezone: str | None = None) -> str:
+    """One line such as 'cluster T03, 2026-04-15 04:40-05:10 UTC: advective cooling -1.9 +/- 0.2 K/h'.
+
+    With a ``timezone`` other than UTC the period is given in local time
+    first, with UTC in brackets (frost staff think in local time).
+    """
+    temp = variable in ("air_temperature", "potential_temperature")
+    if temp:
+        word = "cooling" if p["rate"] < 0 else "warming"
+    else:
+        word = "fall" if p["rate"] < 0 else "rise"
+    label = {"advective": "advective", "in_situ": "in-situ", "mixed": "mixed"}[p["regime"]]
+    start, end = pd.Timestamp(p["start"]), pd.Timestamp(p["end"])
+    if start.tzinfo is None:
+        start, end = start.tz_localize("UTC"), end.tz_localize("UTC")
+    when = f"{_span(start, end)} UTC"
+    if timezone and not is_utc(timezone):
+        tz = tzinfo_for(timezone)
+        ls, le = start.tz_convert(tz), end.tz_convert(tz)
+        when = f"{_span(ls, le)} {ls.strftime('%Z') or timezone} ({start:%H:%M}-{end:%H:%M} UTC)"
+    unit = p["unit"].replace(" h-1", "/h")
+    head = f"cluster {p['cluster']}, {when}:"
+    if p["regime"] == "mixed":
+        return f"{head} mixed: advection {p['advection']:+.2f}, in situ {p['residual']:+.2f} {unit}"
+    return f"{head} {label} {word} {p['rate']:+.2f} +/- {p['rate_se']:.2f} {unit}"

@@ -1,0 +1,329 @@
+"""The plan of a budget: everything besides the observations that every time partition shares.
+
+Takes a :class:`~.check.CheckResult` and the configuration; gives a :class:`BudgetPlan`: the variable and
+the quantity fitted, the network and its clusters, the error model (reading noise learned or declared,
+offsets, the model-error network), the analysis interval and window, the vertical handling, and the
+rows the estimator may use.  Each default resolved from the data is recorded in ``plan.choices``.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from functools import cached_property
+
+import numpy as np
+import pandas as pd
+
+from ..config import Config
+from ..errors import ConfigError, GeometryError
+from ..estimate import uncertainty as errormodel
+from ..estimate.budget import BudgetSettings, model_network
+from ..estimate.planes import fit_planes
+from ..estimate.thermo import KAPPA, P_REF, standard_pressure
+from ..network import geometry
+from ..network import grid as align
+from ..variables import si_unit
+from .check import CheckResult, Progress, no_progress
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class Layout:
+    """The shape and labels of a budget: analysis times, clusters and what was budgeted."""
+
+    times: pd.DatetimeIndex
+    clusters: pd.DataFrame  # cluster, stations, latitude, longitude (centroid), ...
+    convergence: np.ndarray  # meridian convergence at each cluster centroid [degree]
+    unit: str
+    variable: str
+    quantity: str
+
+
+def declared_noise(variable: str, config: Config) -> float | None:
+    """The reading noise declared for ``variable`` (``uncertainty.sensor``) [its unit], or None (learned)."""
+    table = config["uncertainty"]["sensor"]
+    return float(table[variable]) if variable in table else None
+
+
+def offset_uncertainty(variable: str, config: Config) -> tuple[float, str]:
+    """(standard uncertainty of each sensor's persistent offset [unit], where it comes from).
+
+    ``uncertainty.offset.<variable>``, else the older ``uncertainty.calibration``
+    (when non-zero), else the documented default of
+    :func:`stationflow.errormodel.default_offset`.
+    """
+    table = config["uncertainty"]["offset"]
+    if variable in table:
+        return float(table[variable]), "uncertainty.offset"
+    if config["uncertainty"]["calibration"] > 0:
+        return float(config["uncertainty"]["calibration"]), "uncertainty.calibration"
+    value, source = errormodel.default_offset(variable)
+    return value, f"default: {source}"
+
+
+def _quantity(obs: pd.DataFrame, stations: pd.DataFrame, variable: str, vertical: str, usable: dict) -> tuple[np.ndarray, str]:
+    """The field to fit: the variable itself, or potential temperature."""
+    x = obs[variable].to_numpy(float)
+    if variable != "air_temperature" or vertical != "potential_temperature":
+        return x, variable
+    elev = obs["station_id"].map(stations.set_index("station_id")["elevation"]).to_numpy(float)
+    p = standard_pressure(elev)
+    if "air_pressure" in obs:
+        obs_p = obs["air_pressure"].to_numpy(float)
+        ok = np.isfinite(obs_p) & usable.get("air_pressure", np.ones(len(obs), bool))
+        p = np.where(ok, obs_p, p)
+    if np.any(np.isfinite(x) & ~np.isfinite(p)):
+        missing = obs["station_id"][np.isfinite(x) & ~np.isfinite(p)].iloc[0]
+        raise ConfigError(
+            f"budget.vertical = 'potential_temperature' needs air_pressure or an elevation for every station; "
+            f"station {missing!r} has neither. Add elevations to the stations file or set budget.vertical = 'none'"
+        )
+    return x * (P_REF / p) ** KAPPA, "potential_temperature"
+
+
+def _interval(config: Config, observations: pd.DataFrame, known: pd.Timedelta | None = None) -> pd.Timedelta:
+    """The analysis interval; ``known``: the reporting interval QC already found."""
+    bc = config["budget"]
+    if bc["interval"]:
+        return align.parse_duration(bc["interval"])
+    return known if known is not None else align.infer_interval(observations)
+
+
+def _window(config: Config, interval: pd.Timedelta, value_noise_var: float, min_rate: float
+            ) -> tuple[pd.Timedelta, int, str]:
+    """(window, half-window in steps, how it was chosen).
+
+    ``budget.window`` when set; else the shortest window whose tendency
+    error from reading noise (``value_noise_var``, the median over clusters
+    of the centre value's noise variance) is at most ``min_rate``, capped
+    at :data:`stationflow.errormodel.MAX_AUTO_WINDOW_S` (:func:`errormodel.window_steps`).
+    """
+    text = config["budget"]["window"]
+    if text:
+        window = align.parse_duration(text)
+        h = int(round(window / interval / 2))
+        if h < 1:
+            raise ConfigError(f"budget.window = {text} must be at least two analysis intervals ({2 * interval})")
+        return 2 * h * interval, h, "budget.window"
+    h = errormodel.window_steps(value_noise_var, interval.total_seconds(), min_rate)
+    return 2 * h * interval, h, (f"from the data: tendency error from reading noise at most {min_rate:g} per hour "
+                                 f"(capped at {errormodel.MAX_AUTO_WINDOW_S / 60:g} min)")
+
+
+#: cluster-steps per automatic time partition (when budget.chunk is not set)
+AUTO_CHUNK = 500_000
+
+
+@dataclass
+class BudgetPlan:
+    """Everything the budget of one variable needs besides the observations themselves.
+
+    Computed once from the checked data set and shared by every time
+    partition (in a chunked local run or on Dask workers).  ``frame`` holds
+    the rows the estimator may use, with unusable values already set to NaN:
+    ``station_id``, ``time``, ``q`` (the fitted quantity), ``u``/``v`` (true
+    axes, calm as zero), ``wind_speed`` and ``t_air`` (for the mast inversion).
+    """
+
+    variable: str
+    quantity: str
+    unit: str
+    network: geometry.Network
+    clusters: pd.DataFrame
+    members: list[np.ndarray]
+    ids: list[str]
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    convergence: np.ndarray
+    masts: tuple[np.ndarray, np.ndarray] | None
+    settings: BudgetSettings
+    interval: pd.Timedelta
+    window: pd.Timedelta
+    times: pd.DatetimeIndex
+    frame: pd.DataFrame
+    lapse_stations: np.ndarray | None = None  # with vertical = measured: stations of the network-wide vertical fit
+    choices: dict = field(default_factory=dict)  # what the defaults resolved to (vertical, window, noise...): run.json
+
+    @cached_property
+    def layout(self) -> Layout:
+        """Times, clusters and labels of this budget (computed once)."""
+        conv = _convergence(self.clusters["latitude"].to_numpy(), self.clusters["longitude"].to_numpy(), self.network.crs)
+        return Layout(self.times, self.clusters, conv, self.unit, self.variable, self.quantity)
+
+    @property
+    def halo(self) -> int:
+        """Analysis steps needed on each side of a partition for identical results."""
+        h = self.settings.half_window
+        return 2 * h + 1 + (self.settings.model_steps if self.settings.model_error else 0)
+
+
+def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None,
+                progress: Progress = no_progress) -> BudgetPlan:
+    """Choose the variable and quantity, build the network and the settings, mask unusable values."""
+    bc = config["budget"]
+    var = variable or bc["variable"]
+    data = chk.data
+    if var not in data.observations:
+        have = [v for v in data.variables if v not in ("wind_speed", "wind_from_direction")]
+        raise ConfigError(f"variable {var!r} is not in the observations; available: {', '.join(have) or 'none'} "
+                          "(choose one with --variable or budget.variable)")
+    usable = chk.qc.usable(use_suspect=config["qc"]["use_suspect"])
+    obs = data.observations
+    progress("preparing the budget")
+    vertical = _vertical_mode(bc["vertical"], var, data.stations)
+    quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
+    mask_q = usable.get(var, np.ones(len(obs), bool))
+    has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
+    st_all = data.stations.reset_index(drop=True)
+    st_var = st_all[st_all["station_id"].isin(has_var)].reset_index(drop=True)
+    if len(st_var) < 3:
+        raise GeometryError(f"only {len(st_var)} station(s) have good {var} values; a plane needs at least 3")
+    progress("building the network")
+    net = geometry.build_network(st_var, config)
+    if vertical == "regression" and len(net.usable) and net.usable["n_stations"].min() < 4:
+        raise ConfigError("budget.vertical = 'regression' needs clusters of at least 4 stations; "
+                          "set network.clusters = 'nearest' (with network.k >= 5) or use 'measured'")
+    if net.usable.empty:
+        raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
+                            "and relax [network] min_angle/min_shape/max_side_km/max_height_range_m")
+    interval = _interval(config, obs, chk.qc.interval)
+    ids = st_all["station_id"].tolist()
+    x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
+    index = {s: i for i, s in enumerate(ids)}
+    ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
+    to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
+    members = [to_full[net.members[i]] for i in ok_rows]
+    # the error model: reading noise per station (declared or learned), offsets (declared or default)
+    sid = obs["station_id"]
+    if isinstance(sid.dtype, pd.CategoricalDtype):  # by the category codes: no pass over every label
+        lookup = pd.Index(ids).get_indexer(sid.cat.categories.astype(str))
+        codes = np.where(sid.cat.codes.to_numpy() >= 0, lookup[sid.cat.codes.to_numpy()], -1).astype(np.int64)
+    else:
+        codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
+    time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+    # the noise is learned from the first reports of the record (rows come in time order): enough for a robust
+    # estimate per station, and bounded work on long records of large networks
+    first = errormodel.noise_sample_rows(time_ns)
+    sample_codes, sample_ns = codes[first], time_ns[first]
+    order = errormodel.station_order(sample_codes, sample_ns)
+    noise, noise_info = _reading_noise(var, quantity, config, sample_codes, sample_ns,
+                                       np.where(mask_q, quantity_values, np.nan)[first], len(ids), order)
+    offset, offset_source = offset_uncertainty(var, config)
+    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
+    total = np.sqrt(noise ** 2 + offset ** 2)
+    typical = fit_planes(np.zeros((1, len(ids))), x_all, y_all, members, sigma=total, noise=noise, residuals=False)
+    value_noise = float(np.nanmedian(typical.noise_part("var_value"))) if members else np.nan
+    window, h, window_source = _window(config, interval, value_noise, min_rate)
+    settings = BudgetSettings(
+        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or errormodel.WIND_FLOOR), offset=offset,
+        error_model=config["uncertainty"]["gradient_error"],
+        half_window=h, interval_s=interval.total_seconds(), min_stations=bc["min_stations"],
+        significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
+        vertical_regression=(vertical == "regression"),
+    )
+    if members and settings.model_error:  # once per run: every time partition uses the same
+        settings.model_network = model_network(x_all, y_all, members, noise, settings)
+    z = st_all["elevation"].to_numpy(float)
+    if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
+        raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
+    lapse_stations = None
+    if vertical == "measured":
+        lapse_stations = np.flatnonzero(np.isfinite(z) & np.isin(np.arange(len(ids)), np.unique(codes[mask_q])))
+    qc_off = [name for name, on in (("all QC tests", config["qc"]["enabled"]), ("spatial", config["qc"]["spatial"]))
+              if not on]
+    choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
+               "qc_tests_off": qc_off,
+               "min_rate": min_rate, "offset": offset, "offset_source": offset_source, **noise_info}
+    # the rows and values the estimator may use
+    frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
+    frame["q"] = np.where(mask_q, quantity_values, np.nan)
+    if "wind_speed" in obs and "wind_from_direction" in obs:
+        from ..variables import wind_components
+
+        spd = obs["wind_speed"].to_numpy(float)
+        dirn = obs["wind_from_direction"].to_numpy(float)
+        calm = spd < config["qc"]["calm_speed"]
+        u, v = wind_components(np.where(calm, 0.0, spd), np.where(calm, 0.0, dirn))
+        ok_w = usable.get("wind_speed", np.ones(len(obs), bool)) & (usable.get("wind_from_direction", np.ones(len(obs), bool)) | calm)
+        frame["u"] = np.where(ok_w, u, np.nan)
+        frame["v"] = np.where(ok_w, v, np.nan)
+        frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
+        if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
+            su, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["u"].to_numpy()[first], len(ids),
+                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
+            sv, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["v"].to_numpy()[first], len(ids),
+                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
+            settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
+            choices["wind_noise_source"] = "learned from second differences of each station's wind components"
+        else:
+            choices["wind_noise_source"] = "uncertainty.wind_component"
+    else:
+        log.warning("no wind observations: advection cannot be estimated, so every row is undetermined")
+        choices["wind"] = "none"
+    masts = _masts(st_all, x_all, y_all)
+    if masts is not None and "air_temperature" in obs:
+        frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
+                                  obs["air_temperature"].to_numpy(float), np.nan)
+    else:
+        masts = None
+    if not frame["time"].is_monotonic_increasing:  # ingest leaves the rows in time order: usually no sort
+        frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
+    t = frame["time"]
+    first = pd.Timestamp(t.min()).ceil(interval)
+    n_t = int(np.ceil((pd.Timestamp(t.max()).value - first.value) / interval.value)) + 1
+    times = pd.date_range(first, periods=max(n_t, 1), freq=interval)
+    clusters = net.clusters.iloc[ok_rows].reset_index(drop=True)
+    unit = si_unit(var, data.units.get(var))
+    return BudgetPlan(var, quantity, unit, net, clusters, members, ids, x_all, y_all, z, conv, masts, settings,
+                      interval, window, times, frame, lapse_stations, choices)
+
+
+#: height range above which ``vertical = "auto"`` measures the vertical gradient [m] (the QC spatial test's own limit)
+AUTO_VERTICAL_RANGE_M = 30.0
+
+
+def _vertical_mode(setting: str, variable: str, stations: pd.DataFrame) -> str:
+    """The elevation handling in force: ``setting``, with ``auto`` resolved from the station heights.
+
+    Only air temperature has a vertical treatment; ``auto`` is ``measured``
+    where at least 6 stations have heights spanning more than
+    :data:`AUTO_VERTICAL_RANGE_M`, else ``none``.
+    """
+    if variable != "air_temperature":
+        return "none"
+    if setting != "auto":
+        return setting
+    z = stations["elevation"].to_numpy(float) if "elevation" in stations else np.full(len(stations), np.nan)
+    z = z[np.isfinite(z)]
+    return "measured" if z.size >= 6 and np.ptp(z) > AUTO_VERTICAL_RANGE_M else "none"
+
+
+def _reading_noise(variable: str, quantity: str, config: Config, codes: np.ndarray, time_ns: np.ndarray,
+                   values: np.ndarray, n_stations: int, order: np.ndarray) -> tuple[np.ndarray, dict]:
+    """Reading noise per station [unit]: declared, or learned (:func:`errormodel.reading_noise`); and what to record."""
+    declared = declared_noise(variable, config)
+    if declared is not None:
+        return np.full(n_stations, declared), {"noise_source": "uncertainty.sensor"}
+    noise, resolution, count = errormodel.reading_noise(codes, time_ns, values, n_stations, order=order,
+                                                        floor=errormodel.noise_floor(quantity))
+    return noise, {"noise_source": "learned from second differences of each station's series",
+                   "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
+                   "resolution_per_station": resolution}
+
+
+def _masts(stations: pd.DataFrame, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray] | None:
+    roles = geometry.assign_roles(stations, x, y)
+    upper = np.flatnonzero(roles == "upper")
+    if upper.size == 0:
+        return None
+    surf = np.flatnonzero(roles == "surface")
+    d = np.hypot(x[upper, None] - x[None, surf], y[upper, None] - y[None, surf])
+    return upper, surf[np.argmin(d, axis=1)]
+
+
+def _convergence(lat: np.ndarray, lon: np.ndarray, crs: str) -> np.ndarray:
+    _, _, g, _ = geometry.project(lat, lon, crs)
+    return g
