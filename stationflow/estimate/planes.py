@@ -172,8 +172,71 @@ NOISE_ENTRIES = ("var_value", "var_x", "var_y", "cov_xy", "var_z")
 MAX_PATTERN_BITS = 62
 
 
-def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | None, *, p: int, min_n: int,
-              max_cond: float, residuals: bool, chunk_elements: int) -> dict[str, np.ndarray]:
+@dataclass(frozen=True)
+class FitTuning:
+    """Knobs of the plane fit that change its speed or numerics, not its science."""
+
+    max_cond: float = 1e6  # largest condition number of the scaled design a fit may have
+    scale_m: float = 1000.0  # horizontal coordinates are solved in units of this [m]
+    scale_z: float = 100.0  # heights are solved in units of this [m]
+    chunk_elements: int = 400_000  # values per batched product (time chunks that stay in cache)
+
+
+@dataclass
+class _Problem:
+    """What every group of equal-size clusters reads: the values by station, weights, noise, options."""
+
+    vt: np.ndarray  # (n_stations, n_times) values
+    present: np.ndarray  # (n_stations, n_times) finite values
+    all_present: bool
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray | None
+    w_station: np.ndarray
+    noise2: np.ndarray | None
+    centres: np.ndarray | None
+    p: int  # coefficients: 3, or 4 with height
+    min_n: int
+    residuals: bool
+    tuning: FitTuning
+
+    @property
+    def n_t(self) -> int:
+        return self.vt.shape[1]
+
+
+@dataclass
+class _Output:
+    """What the groups write: coefficients and pattern rows per (time, cluster), the table, residual stats."""
+
+    coef: np.ndarray  # (p, n_times, n_clusters)
+    pattern: np.ndarray  # (n_times, n_clusters) row of the table
+    chi2: np.ndarray | None
+    rms: np.ndarray | None
+    tables: list[dict[str, np.ndarray]]
+    n_rows: int = 0
+
+    def add_rows(self, rows: dict[str, np.ndarray], count: int) -> int:
+        """Append ``count`` table rows; the index of the first."""
+        self.tables.append(rows)
+        first, self.n_rows = self.n_rows, self.n_rows + count
+        return first
+
+
+@dataclass
+class _Group:
+    """Clusters of one size ``k``: their members (C, k), scaled designs, weights, noise variances."""
+
+    k: int
+    cols: slice  # their columns in the size-ordered output
+    M: np.ndarray
+    A: np.ndarray
+    W: np.ndarray
+    N2: np.ndarray | None
+
+
+def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | None, prob: _Problem
+              ) -> dict[str, np.ndarray]:
     """One cluster of many stations, each time step from its normal equations.
 
     ``X`` (k, T) values, ``A`` (k, p) scaled design, ``w`` (k,) weights
@@ -184,12 +247,13 @@ def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | 
     ``sqrt(lambda_max / lambda_min)`` of ``A^T W A``.  Returns the table rows
     (one per time step) and ``coef`` (p, T), ``chi2``, ``rms`` (T,).
     """
+    p, min_n, max_cond = prob.p, prob.min_n, prob.tuning.max_cond
     k, n_t = X.shape
     out: dict[str, list[np.ndarray]] = {}
     coef_all = np.full((p, n_t), np.nan)
     chi2 = np.full(n_t, np.nan)
     rms = np.full(n_t, np.nan)
-    step = max(16, chunk_elements // max(1, k))
+    step = max(16, prob.tuning.chunk_elements // max(1, k))
     outer = np.einsum("kp,kq->kpq", A, A).reshape(k, p * p)
     for t0 in range(0, n_t, step):  # time chunks bound the memory; each is one batched solve
         ts = slice(t0, min(n_t, t0 + step))
@@ -221,7 +285,7 @@ def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | 
                 rows[f"{name}_noise"] = np.where(ok, Cn[:, i, j], np.nan) if i < p else np.full(len(ok), np.nan)
         for key, val in rows.items():
             out.setdefault(key, []).append(val)
-        if residuals:
+        if prob.residuals:
             res = np.where(present, xc - A @ coef.T, 0.0)
             dof = n_used - p
             with np.errstate(invalid="ignore", divide="ignore"):
@@ -243,11 +307,8 @@ def fit_planes(
     noise: float | np.ndarray | None = None,
     centres: np.ndarray | None = None,
     min_stations: int = 3,
-    max_cond: float = 1e6,
     residuals: bool = True,
-    scale_m: float = 1000.0,
-    scale_z: float = 100.0,
-    chunk_elements: int = 400_000,
+    tuning: FitTuning | None = None,
 ) -> PlaneFit:
     """Fit a plane per cluster and time step.
 
@@ -283,164 +344,223 @@ def fit_planes(
         coefficients).
     residuals
         Compute residual RMS and chi-square (skip for speed when not needed).
+    tuning
+        Numerical knobs (:class:`FitTuning`); the defaults suit any network.
     """
-    values = np.asarray(values, dtype=float)
-    n_t, n_s = values.shape
-    x = np.asarray(x, float)
-    y = np.asarray(y, float)
-    zz = None if z is None else np.asarray(z, float)
-    sig = np.broadcast_to(np.asarray(sigma, float), (n_s,))
-    w_station = 1.0 / sig ** 2
-    p = 3 if zz is None else 4
-    min_n = max(min_stations, p)
-    n_c = len(members)
+    prob = _problem(values, x, y, z, sigma, noise, centres, min_stations, residuals, tuning or FitTuning())
+    n_t, n_c, p = prob.n_t, len(members), prob.p
     sizes = np.array([len(m) for m in members], dtype=int)
-    noise2 = None if noise is None else np.broadcast_to(np.asarray(noise, float) ** 2, (n_s,))
     # time-major storage (time, cluster) with the clusters in size order: each time chunk is solved in a small
     # cluster-major buffer and copied in transposed, in cache; every later step (budget terms, window sums, the
     # Parquet and NetCDF columns) then reads the arrays in order, and the file writer copies none of them
     order = np.argsort(sizes, kind="stable")
-    coef_all = np.empty((p, n_t, n_c))
-    pattern = np.empty((n_t, n_c), np.int32)
     want_res = residuals and bool(np.any(sizes > p))
-    chi2 = np.full((n_t, n_c), np.nan) if want_res else None
-    rms = np.full((n_t, n_c), np.nan) if residuals else None
-    tables: list[dict[str, np.ndarray]] = []
-    n_rows = 0
-    vt = np.ascontiguousarray(values.T)  # (n_s, n_t)
-    present_st = ~np.isnan(vt)
-    all_present = bool(present_st.all())
+    out = _Output(np.empty((p, n_t, n_c)), np.empty((n_t, n_c), np.int32),
+                  np.full((n_t, n_c), np.nan) if want_res else None,
+                  np.full((n_t, n_c), np.nan) if residuals else None, [])
     first = 0
     for k in np.unique(sizes):
         sel = order[first:first + int(np.sum(sizes == k))]
-        rows = slice(first, first + len(sel))
+        group = _group(prob, members, sel, int(k), slice(first, first + len(sel)))
         first += len(sel)
-        M = np.stack([np.asarray(members[i]) for i in sel])
-        A = design(x, y, zz, M, None if centres is None else np.asarray(centres)[sel], scale_m, scale_z)
-        W = w_station[M]
-        if zz is not None:
-            W = np.where(np.isfinite(A).all(axis=2), W, 0.0)
-            A = np.nan_to_num(A)
-        N2 = None if noise2 is None else noise2[M]
-        if k > MAX_PATTERN_BITS:
-            # too many members for a bit pattern: each time step from its own normal equations
-            for j, col in enumerate(range(rows.start, rows.stop)):  # loop over the (few) wide clusters
-                wide = _fit_wide(vt[M[j]], A[j], W[j], None if N2 is None else N2[j], p=p, min_n=min_n,
-                                 max_cond=max_cond, residuals=residuals, chunk_elements=chunk_elements)
-                coef_all[:, :, col] = wide.pop("coef")
-                pattern[:, col] = n_rows + np.arange(n_t, dtype=np.int32)
-                n_rows += n_t
-                if chi2 is not None:
-                    chi2[:, col] = wide.pop("chi2")
-                if rms is not None:
-                    rms[:, col] = wide.pop("rms")
-                tables.append(wide)
-            continue
-        Pf, Nf, cf, okf = _operators(A, W, max_cond)
-        Pf = Pf.copy()
-        full_ok = okf & ((W > 0).sum(axis=1) >= min_n)
-        tables.append(_table_rows(Nf, cf, full_ok, (W > 0).sum(axis=1), p, Pf, N2))
-        full_rows = n_rows + np.arange(len(sel), dtype=np.int32)
-        n_rows += len(sel)
-        full_code = (1 << k) - 1
-        bits = (1 << np.arange(k, dtype=np.int64))
-        # every distinct incomplete (cluster, pattern) pair of the whole record, solved once
-        if all_present and (zz is None or bool((W > 0).all())):
-            code_all = None  # complete data: every step uses the full pattern
-            uniq = np.zeros(0, np.int64)
+        if k > MAX_PATTERN_BITS:  # too many members for a bit pattern: each time step from its own equations
+            _solve_wide(prob, out, group)
         else:
-            code_type = np.uint8 if k <= 8 else np.uint16 if k <= 16 else np.uint32 if k <= 32 else np.int64
-            code_all = np.zeros((len(sel), n_t), code_type)
-            for j in range(k):  # k is the cluster size (<= MAX_PATTERN_BITS), not time or stations
-                code_all |= present_st[M[:, j]].astype(code_type) << j
-            if zz is not None:
-                code_all &= ((W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None].astype(code_type)
-            inc_c, inc_t = np.nonzero(code_all != full_code)
-            uniq = np.unique(inc_c.astype(np.int64) * (full_code + 1) + code_all[inc_c, inc_t])
-            del inc_c, inc_t
-        if uniq.size:
-            uc = uniq // (full_code + 1)
-            mask = ((uniq % (full_code + 1))[:, None] & bits[None, :]) > 0
-            nu = mask.sum(axis=1)
-            # fewer stations than coefficients: rank-deficient by construction, nothing to solve
-            # (condition number infinite); every incomplete pattern of a triangle is such a case
-            Pu = np.zeros((uniq.size, p, k))
-            Nu = np.full((uniq.size, p, p), np.nan)
-            cu = np.full(uniq.size, np.inf)
-            oku = np.zeros(uniq.size, bool)
-            solve = np.flatnonzero(nu >= p)
-            if solve.size:
-                Pu[solve], Nu[solve], cu[solve], oku[solve] = _operators(A[uc[solve]], W[uc[solve]] * mask[solve],
-                                                                         max_cond)
-            oku &= nu >= min_n
-            tables.append(_table_rows(Nu, cu, oku, nu, p, Pu, None if N2 is None else N2[uc] * mask))
-            base_row = n_rows
-            n_rows += uniq.size
-        # time chunks sized to stay in cache; each chunk is one batched product
-        step = max(16, chunk_elements // max(1, len(sel) * k))
-        for t0 in range(0, n_t, step):
-            t1 = min(n_t, t0 + step)
-            ts = slice(t0, t1)
-            X = vt[M, ts]  # (C, k, T) gather
-            complete = (np.ones((len(sel), t1 - t0), bool) if code_all is None
-                        else code_all[:, ts] == full_code)  # (C, T)
-            all_complete = bool(complete.all())
-            # (C, p, T); einsum avoids per-batch BLAS calls.  Each element is its own sum, so the
-            # incomplete ones (NaN here) are simply overwritten below
-            coef = np.einsum("cpk,ckt->cpt", Pf, X)
-            pat = np.empty((len(sel), t1 - t0), np.int32)
-            pat[...] = full_rows[:, None]
-            if not all_complete:
-                ci, ti = np.nonzero(~complete)
-                key = ci.astype(np.int64) * (full_code + 1) + code_all[ci, ti + t0]
-                inv = np.searchsorted(uniq, key)
-                pat[ci, ti] = base_row + inv
-                ce = np.full((ci.size, p), np.nan)
-                fit = np.flatnonzero(oku[inv])  # solve only where a plane is defined
-                if fit.size:
-                    xi = X[ci[fit], :, ti[fit]]
-                    ce[fit] = np.einsum("epk,ek->ep", Pu[inv[fit]], np.where(np.isnan(xi), 0.0, xi))
-                coef[ci, :, ti] = ce
-            if not full_ok.all():
-                bad_c = ~full_ok
-                coef[bad_c] = np.where(complete[bad_c][:, None, :], np.nan, coef[bad_c])
-            if residuals and k > p:
-                present = ~np.isnan(X)
-                if zz is not None:
-                    present &= (W > 0)[:, :, None]
-                fitted = A @ coef
-                res = np.where(present, X - fitted, 0.0)
-                rss_w = np.einsum("ck,ckt->ct", W, res * res)
-                nu_t = present.sum(axis=1)
-                dof = nu_t - p
-                fine = np.isfinite(coef[:, 0])
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    chi2[ts, rows] = np.where(fine & (dof > 0), rss_w / dof, np.nan).T
-                    rms[ts, rows] = np.where(fine, np.sqrt((res * res).sum(axis=1) / nu_t), np.nan).T
-            elif residuals:
-                rms[ts, rows] = np.where(np.isfinite(coef[:, 0]), 0.0, np.nan).T
-            coef_all[:, ts, rows] = coef.transpose(1, 2, 0)
-            pattern[ts, rows] = pat.T
+            _solve_patterns(prob, out, group)
+    return _finish(prob, out, order)
+
+
+def _problem(values, x, y, z, sigma, noise, centres, min_stations: int, residuals: bool, tuning: FitTuning
+             ) -> _Problem:
+    """The arrays every group reads, in the fit's own layout (see :func:`fit_planes` for the arguments)."""
+    values = np.asarray(values, dtype=float)
+    n_s = values.shape[1]
+    zz = None if z is None else np.asarray(z, float)
+    sig = np.broadcast_to(np.asarray(sigma, float), (n_s,))
+    p = 3 if zz is None else 4
+    noise2 = None if noise is None else np.broadcast_to(np.asarray(noise, float) ** 2, (n_s,))
+    vt = np.ascontiguousarray(values.T)  # (n_s, n_t)
+    present = ~np.isnan(vt)
+    return _Problem(vt, present, bool(present.all()), np.asarray(x, float), np.asarray(y, float), zz, 1.0 / sig ** 2,
+                    noise2, None if centres is None else np.asarray(centres), p, max(min_stations, p), residuals, tuning)
+
+
+def _group(prob: _Problem, members: list[np.ndarray], sel: np.ndarray, k: int, cols: slice) -> _Group:
+    """The clusters ``sel`` (all of ``k`` members): their scaled designs and weights."""
+    M = np.stack([np.asarray(members[i]) for i in sel])
+    A = design(prob.x, prob.y, prob.z, M, None if prob.centres is None else prob.centres[sel], prob.tuning.scale_m,
+               prob.tuning.scale_z)
+    W = prob.w_station[M]
+    if prob.z is not None:
+        W = np.where(np.isfinite(A).all(axis=2), W, 0.0)
+        A = np.nan_to_num(A)
+    return _Group(k, cols, M, A, W, None if prob.noise2 is None else prob.noise2[M])
+
+
+def _solve_wide(prob: _Problem, out: _Output, g: _Group) -> None:
+    """Clusters of more than :data:`MAX_PATTERN_BITS` members, one by one (there are few)."""
+    for j, col in enumerate(range(g.cols.start, g.cols.stop)):
+        wide = _fit_wide(prob.vt[g.M[j]], g.A[j], g.W[j], None if g.N2 is None else g.N2[j], prob)
+        out.coef[:, :, col] = wide.pop("coef")
+        chi2, rms = wide.pop("chi2"), wide.pop("rms")
+        out.pattern[:, col] = out.add_rows(wide, prob.n_t) + np.arange(prob.n_t, dtype=np.int32)
+        if out.chi2 is not None:
+            out.chi2[:, col] = chi2
+        if out.rms is not None:
+            out.rms[:, col] = rms
+
+
+@dataclass
+class _Patterns:
+    """The presence patterns of a group: complete (one solve per cluster) and the distinct incomplete ones."""
+
+    full_ok: np.ndarray  # (C,) the complete pattern gives a fit
+    full_rows: np.ndarray  # (C,) table row of each cluster's complete pattern
+    full_code: int
+    code_all: np.ndarray | None  # (C, T) pattern code per time; None when every step is complete
+    uniq: np.ndarray  # distinct (cluster, incomplete pattern) keys, sorted
+    base_row: int  # table row of uniq[0]
+    Pf: np.ndarray  # (C, p, k) operators of the complete patterns
+    Pu: np.ndarray | None  # (U, p, k) operators of the incomplete ones
+    oku: np.ndarray | None  # (U,) the incomplete pattern gives a fit
+
+
+def _solve_patterns(prob: _Problem, out: _Output, g: _Group) -> None:
+    """Clusters of at most :data:`MAX_PATTERN_BITS` members: each distinct presence pattern solved once,
+    applied to the time steps that have it in batched products over time chunks sized to stay in cache."""
+    pats = _patterns(prob, out, g)
+    step = max(16, prob.tuning.chunk_elements // max(1, (g.cols.stop - g.cols.start) * g.k))
+    for t0 in range(0, prob.n_t, step):
+        _apply_chunk(prob, out, g, pats, slice(t0, min(prob.n_t, t0 + step)))
+
+
+def _patterns(prob: _Problem, out: _Output, g: _Group) -> _Patterns:
+    """Solve the complete pattern of every cluster and every distinct incomplete (cluster, pattern) pair of
+    the whole record; their table rows are appended to ``out``."""
+    p, k, n_sel = prob.p, g.k, g.M.shape[0]
+    Pf, Nf, cf, okf = _operators(g.A, g.W, prob.tuning.max_cond)
+    Pf = Pf.copy()
+    full_ok = okf & ((g.W > 0).sum(axis=1) >= prob.min_n)
+    full_rows = out.add_rows(_table_rows(Nf, cf, full_ok, (g.W > 0).sum(axis=1), p, Pf, g.N2), n_sel) \
+        + np.arange(n_sel, dtype=np.int32)
+    full_code = (1 << k) - 1
+    bits = (1 << np.arange(k, dtype=np.int64))
+    if prob.all_present and (prob.z is None or bool((g.W > 0).all())):
+        code_all = None  # complete data: every step uses the full pattern
+        uniq = np.zeros(0, np.int64)
+    else:
+        code_type = np.uint8 if k <= 8 else np.uint16 if k <= 16 else np.uint32 if k <= 32 else np.int64
+        code_all = np.zeros((n_sel, prob.n_t), code_type)
+        for j in range(k):  # k is the cluster size (<= MAX_PATTERN_BITS), not time or stations
+            code_all |= prob.present[g.M[:, j]].astype(code_type) << j
+        if prob.z is not None:
+            code_all &= ((g.W > 0).astype(np.int64) * bits[None, :]).sum(axis=1)[:, None].astype(code_type)
+        inc_c, inc_t = np.nonzero(code_all != full_code)
+        uniq = np.unique(inc_c.astype(np.int64) * (full_code + 1) + code_all[inc_c, inc_t])
+        del inc_c, inc_t
+    pats = _Patterns(full_ok, full_rows, full_code, code_all, uniq, out.n_rows, Pf, None, None)
+    if uniq.size:
+        _incomplete(prob, out, g, pats, bits)
+    return pats
+
+
+def _incomplete(prob: _Problem, out: _Output, g: _Group, pats: _Patterns, bits: np.ndarray) -> None:
+    """Operators of the distinct incomplete patterns (``pats.uniq``), solved in one batch."""
+    p, k, uniq, full_code = prob.p, g.k, pats.uniq, pats.full_code
+    uc = uniq // (full_code + 1)
+    mask = ((uniq % (full_code + 1))[:, None] & bits[None, :]) > 0
+    nu = mask.sum(axis=1)
+    # fewer stations than coefficients: rank-deficient by construction, nothing to solve
+    # (condition number infinite); every incomplete pattern of a triangle is such a case
+    Pu = np.zeros((uniq.size, p, k))
+    Nu = np.full((uniq.size, p, p), np.nan)
+    cu = np.full(uniq.size, np.inf)
+    oku = np.zeros(uniq.size, bool)
+    solve = np.flatnonzero(nu >= p)
+    if solve.size:
+        Pu[solve], Nu[solve], cu[solve], oku[solve] = _operators(g.A[uc[solve]], g.W[uc[solve]] * mask[solve],
+                                                                 prob.tuning.max_cond)
+    oku &= nu >= prob.min_n
+    pats.base_row = out.add_rows(_table_rows(Nu, cu, oku, nu, p, Pu, None if g.N2 is None else g.N2[uc] * mask),
+                                 uniq.size)
+    pats.Pu, pats.oku = Pu, oku
+
+
+def _apply_chunk(prob: _Problem, out: _Output, g: _Group, pats: _Patterns, ts: slice) -> None:
+    """Coefficients (and residual statistics) of the group's clusters at the time steps ``ts``."""
+    p, rows, n_sel = prob.p, g.cols, g.M.shape[0]
+    t0, t1 = ts.start, ts.stop
+    X = prob.vt[g.M, ts]  # (C, k, T) gather
+    complete = (np.ones((n_sel, t1 - t0), bool) if pats.code_all is None
+                else pats.code_all[:, ts] == pats.full_code)  # (C, T)
+    # (C, p, T); einsum avoids per-batch BLAS calls.  Each element is its own sum, so the
+    # incomplete ones (NaN here) are simply overwritten below
+    coef = np.einsum("cpk,ckt->cpt", pats.Pf, X)
+    pat = np.empty((n_sel, t1 - t0), np.int32)
+    pat[...] = pats.full_rows[:, None]
+    if not bool(complete.all()):
+        ci, ti = np.nonzero(~complete)
+        key = ci.astype(np.int64) * (pats.full_code + 1) + pats.code_all[ci, ti + t0]
+        inv = np.searchsorted(pats.uniq, key)
+        pat[ci, ti] = pats.base_row + inv
+        ce = np.full((ci.size, p), np.nan)
+        fit = np.flatnonzero(pats.oku[inv])  # solve only where a plane is defined
+        if fit.size:
+            xi = X[ci[fit], :, ti[fit]]
+            ce[fit] = np.einsum("epk,ek->ep", pats.Pu[inv[fit]], np.where(np.isnan(xi), 0.0, xi))
+        coef[ci, :, ti] = ce
+    if not pats.full_ok.all():
+        bad_c = ~pats.full_ok
+        coef[bad_c] = np.where(complete[bad_c][:, None, :], np.nan, coef[bad_c])
+    if prob.residuals and g.k > p:
+        _residual_stats(prob, out, g, X, coef, ts)
+    elif prob.residuals:
+        out.rms[ts, rows] = np.where(np.isfinite(coef[:, 0]), 0.0, np.nan).T
+    out.coef[:, ts, rows] = coef.transpose(1, 2, 0)
+    out.pattern[ts, rows] = pat.T
+
+
+def _residual_stats(prob: _Problem, out: _Output, g: _Group, X: np.ndarray, coef: np.ndarray, ts: slice) -> None:
+    """Reduced chi-square and residual RMS of the fits ``coef`` (C, p, T) to ``X`` (C, k, T)."""
+    present = ~np.isnan(X)
+    if prob.z is not None:
+        present &= (g.W > 0)[:, :, None]
+    fitted = g.A @ coef
+    res = np.where(present, X - fitted, 0.0)
+    rss_w = np.einsum("ck,ckt->ct", g.W, res * res)
+    nu_t = present.sum(axis=1)
+    dof = nu_t - prob.p
+    fine = np.isfinite(coef[:, 0])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out.chi2[ts, g.cols] = np.where(fine & (dof > 0), rss_w / dof, np.nan).T
+        out.rms[ts, g.cols] = np.where(fine, np.sqrt((res * res).sum(axis=1) / nu_t), np.nan).T
+
+
+def _finish(prob: _Problem, out: _Output, order: np.ndarray) -> PlaneFit:
+    """Back to physical units and the callers' cluster order; the joined table."""
+    scale_m, scale_z = prob.tuning.scale_m, prob.tuning.scale_z
+    coef_all, pattern, chi2, rms = out.coef, out.pattern, out.chi2, out.rms
     coef_all[1:3] /= scale_m
-    if zz is not None:
+    if prob.z is not None:
         coef_all[3] /= scale_z
-    if not np.array_equal(order, np.arange(n_c)):
+    if not np.array_equal(order, np.arange(len(order))):
         back = np.argsort(order)
         coef_all, pattern = coef_all[:, :, back], pattern[:, back]
         chi2 = None if chi2 is None else chi2[:, back]
         rms = None if rms is None else rms[:, back]
+    noisy = prob.noise2 is not None
     keys = ["var_value", "var_x", "var_y", "cov_xy", "var_z", "cond", "n_used", "reason"]
-    if noise2 is not None:
+    if noisy:
         keys += [f"{name}_noise" for name in NOISE_ENTRIES]
-    table = {key: np.concatenate([t[key] for t in tables]) if tables else np.empty(0) for key in keys}
-    for key in ("var_x", "var_y", "cov_xy") + (("var_x_noise", "var_y_noise", "cov_xy_noise") if noise2 is not None else ()):
+    table = {key: np.concatenate([t[key] for t in out.tables]) if out.tables else np.empty(0) for key in keys}
+    for key in ("var_x", "var_y", "cov_xy") + (("var_x_noise", "var_y_noise", "cov_xy_noise") if noisy else ()):
         table[key] = table[key] / scale_m ** 2
     table["var_z"] = table["var_z"] / scale_z ** 2
-    if noise2 is not None:
+    if noisy:
         table["var_z_noise"] = table["var_z_noise"] / scale_z ** 2
     return PlaneFit(value=coef_all[0], grad_x=coef_all[1], grad_y=coef_all[2],
-                    grad_z=None if zz is None else coef_all[3], pattern=pattern, table=table, chi2=chi2, rms=rms,
-                    n_params=p)
+                    grad_z=None if prob.z is None else coef_all[3], pattern=pattern, table=table, chi2=chi2, rms=rms,
+                    n_params=prob.p)
 
 
 def _table_rows(Ninv: np.ndarray, cond: np.ndarray, ok: np.ndarray, n_used: np.ndarray, p: int,
