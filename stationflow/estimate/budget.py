@@ -401,6 +401,90 @@ def compute_budget(
         raise ValueError(f"error_model must be one of {ERROR_MODELS}")
     h = max(1, int(s.half_window))
     memb = membership_matrix(members, n_s)
+    g = _gradients(fit, s, (x, y, z, members), noise, lapse)
+    w = _cluster_wind(u, v, memb, s.wind_sigma)
+    adv, var_noise, var_persist = _advection(g, w)
+    var_adv = var_noise + var_persist
+    t = _tendency(fit, g, memb, h, s.interval_s, lapse)
+    adv_mean, adv_var_noise = window_mean_and_variance(adv, var_noise, h)
+    adv_var = adv_var_noise + window_mean(var_persist, h)
+    residual = t.tendency - adv_mean
+    res_var = t.variance + adv_var
+    out = {
+        "value": t.value, "value_se": np.sqrt(t.value_var),
+        "tendency": t.tendency, "tendency_se": np.sqrt(t.variance),
+        "advection": adv_mean, "advection_se": np.sqrt(adv_var),
+        "residual": residual, "residual_se": np.sqrt(res_var),
+        "advection_instant": adv, "advection_instant_se": np.sqrt(var_adv),
+        "grad_x": g.gx * 1000.0, "grad_y": g.gy * 1000.0,
+        "grad_x_se": np.sqrt(g.vx + g.model_var) * 1000.0, "grad_y_se": np.sqrt(g.vy + g.model_var) * 1000.0,
+        "model_error": np.sqrt(g.model_var) * 1000.0,
+        "u": w.u, "v": w.v, "u_se": np.sqrt(w.se2_u), "v_se": np.sqrt(w.se2_v),
+        "n_used": fit.n_used, "n_wind": w.n.astype(np.int32), "dof": fit.dof,
+        "rms": fit.rms if fit.rms is not None else np.full_like(g.gx, np.nan),
+        "cond": fit.cond,
+        "gap_filled": t.filled,
+    }
+    _extras(out, fit, g.scale, lapse, wind_speed, memb)
+    if np.isfinite(u).any():
+        from .kinematics import fit_wind, kinematics
+
+        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations,
+                                  residuals=False),
+                         deformation=False)  # the budget reports divergence and vorticity only
+        for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
+            out[name] = kin[name]
+    _label(out, s)
+    return out
+
+
+def _advection(g: "_Gradients", w: "_Wind") -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Instantaneous advection [unit h-1] and the two parts of its variance: errors independent in time
+    (reading noise, wind), which average down over the window, and persistent ones (offsets, model
+    error), which do not."""
+    hour = 3600.0
+    adv = -(w.u * g.gx + w.v * g.gy) * hour
+    var_noise = (w.u * w.u * g.vxn + w.v * w.v * g.vyn + 2 * w.u * w.v * g.cxyn + g.gx * g.gx * w.se2_u
+                 + g.gy * g.gy * w.se2_v) * hour ** 2
+    var_persist = (w.u * w.u * (g.vx - g.vxn + g.model_var) + w.v * w.v * (g.vy - g.vyn + g.model_var)
+                   + 2 * w.u * w.v * (g.cxy - g.cxyn)) * hour ** 2
+    return adv, var_noise, var_persist
+
+
+def _label(out: dict, s: BudgetSettings) -> None:
+    """The regime of every row, and the implausible splits (labelled undetermined)."""
+    out["regime"] = classify_codes(out["tendency"], out["advection"], out["residual"], out["advection_se"],
+                                   out["residual_se"], significance=s.significance, dominance=s.dominance,
+                                   min_rate=s.min_rate, tendency_se=out["tendency_se"])
+    out["implausible"] = implausible(out["tendency"], out["advection"], out["residual"], min_rate=s.min_rate,
+                                     advection_se=out["advection_se"], residual_se=out["residual_se"],
+                                     significance=s.significance)
+    out["regime"][out["implausible"]] = np.int8(REGIMES.index("undetermined"))
+
+
+@dataclass
+class _Gradients:
+    """Gradients with their covariances: the whole and the reading-noise part, plus the model error."""
+
+    gx: np.ndarray
+    gy: np.ndarray
+    vx: np.ndarray
+    vy: np.ndarray
+    cxy: np.ndarray
+    vxn: np.ndarray
+    vyn: np.ndarray
+    cxyn: np.ndarray
+    va: np.ndarray  # the centre value's variance, and its noise part
+    van: np.ndarray
+    model_var: np.ndarray
+    scale: np.ndarray  # the error model's factor on the prior variances
+    dz: np.ndarray | None  # with a measured lapse: each cluster's mean height above the reference
+
+
+def _gradients(fit: PlaneFit, s: BudgetSettings, geometry: tuple, noise: np.ndarray, lapse) -> _Gradients:
+    """The gradients' error budget: prior covariances (whole and noise part), the measured lapse's error
+    carried through the terrain gradient, and the model error (``geometry``: x, y, z, members)."""
+    x, y, z, members = geometry
     scale = fit.error_scale(s.error_model)
     # prior covariances: the whole (noise + offsets) and the reading-noise part alone
     vx, vy, cxy, va = fit.var_x, fit.var_y, fit.cov_xy, fit.var_value
@@ -409,6 +493,7 @@ def compute_budget(
     else:  # a fit made without the noise split: all of it is noise
         vxn, vyn, cxyn, van = vx, vy, cxy, va
     gx, gy = fit.grad_x, fit.grad_y
+    dz = None
     if lapse is not None:  # a measured vertical gradient was removed before the fit: its error, and the value back
         gamma, gamma_var, gamma_var_noise, z_ref = lapse
         dz, zx, zy = _cluster_terrain(x, y, z, members, z_ref)
@@ -426,80 +511,77 @@ def compute_budget(
         model_var = model_variance(bx, by, structure, null_b2, null_structure)
     excess = (scale - 1.0) * 0.5 * (vx + vy)  # chi-square above 1: what the residuals show beyond the noise
     model_var = np.fmax(model_var, np.where(np.isfinite(excess), excess, 0.0))
+    return _Gradients(gx, gy, vx, vy, cxy, vxn, vyn, cxyn, va, van, model_var, scale, dz)
+
+
+@dataclass
+class _Wind:
+    """Cluster-mean wind components with their squared standard errors and the members with wind."""
+
+    u: np.ndarray
+    v: np.ndarray
+    se2_u: np.ndarray
+    se2_v: np.ndarray
+    n: np.ndarray
+
+
+def _cluster_wind(u: np.ndarray, v: np.ndarray, memb, wind_sigma: float) -> _Wind:
+    """The mean of the member stations' winds; where no member has wind, the network mean stands in (its
+    error is then the spatial spread)."""
     um, uvar, n_w = cluster_mean(u, memb)
     vm, vvar, _ = cluster_mean(v, memb, counts=(np.isfinite(u), n_w))
     nw = np.maximum(n_w, 1)
-    se2_u = np.fmax(s.wind_sigma ** 2, np.nan_to_num(uvar)) / nw
-    se2_v = np.fmax(s.wind_sigma ** 2, np.nan_to_num(vvar)) / nw
-    # where no member has wind, the network mean stands in: its error is the spatial spread
-    se2_u = np.where(n_w == 0, s.wind_sigma ** 2 + np.nan_to_num(uvar), se2_u)
-    se2_v = np.where(n_w == 0, s.wind_sigma ** 2 + np.nan_to_num(vvar), se2_v)
+    se2_u = np.fmax(wind_sigma ** 2, np.nan_to_num(uvar)) / nw
+    se2_v = np.fmax(wind_sigma ** 2, np.nan_to_num(vvar)) / nw
+    se2_u = np.where(n_w == 0, wind_sigma ** 2 + np.nan_to_num(uvar), se2_u)
+    se2_v = np.where(n_w == 0, wind_sigma ** 2 + np.nan_to_num(vvar), se2_v)
+    return _Wind(um, vm, se2_u, se2_v, n_w)
+
+
+@dataclass
+class _Tendency:
+    """The centred tendency [unit h-1] and its variance, and the centre value with short gaps bridged."""
+
+    tendency: np.ndarray
+    variance: np.ndarray
+    value: np.ndarray
+    value_var: np.ndarray
+    filled: np.ndarray  # value interpolated across a short gap
+
+
+def _tendency(fit: PlaneFit, g: _Gradients, memb, h: int, interval_s: float, lapse) -> _Tendency:
+    """Centred difference of the centre value over ``2 h`` steps; offsets cancel where the same stations
+    were used at both ends (else they count too)."""
     hour = 3600.0
-    adv = -(um * gx + vm * gy) * hour
-    # errors independent in time (reading noise, wind) average down over the window; persistent ones
-    # (offsets, model error) do not
-    var_noise = (um * um * vxn + vm * vm * vyn + 2 * um * vm * cxyn + gx * gx * se2_u + gy * gy * se2_v) * hour ** 2
-    var_persist = (um * um * (vx - vxn + model_var) + vm * vm * (vy - vyn + model_var)
-                   + 2 * um * vm * (cxy - cxyn)) * hour ** 2
-    var_adv = var_noise + var_persist
-    span = 2 * h * s.interval_s
+    span = 2 * h * interval_s
     # bridge short gaps (a station missing for a step or two) so one gap does not void a whole window
     gap = max(1, h // 2)
-    value = fit.value if lapse is None else fit.value + lapse[0][:, None] * dz
-    value, va, van = fill_short_gaps_like([value, va, van], gap)
+    value = fit.value if lapse is None else fit.value + lapse[0][:, None] * g.dz
+    value, va, van = fill_short_gaps_like([value, g.va, g.van], gap)
     filled = ~np.isfinite(fit.value) & np.isfinite(value)
     a_plus, a_minus = shift(value, h), shift(value, -h)
     tendency = (a_plus - a_minus) / span * hour
-    # offsets cancel in the difference when the same stations were used at both ends; else they count too
     sizes = np.asarray(memb.sum(axis=0))  # (1, n_clusters)
     complete = (fit.n_used == sizes).astype(float)
     same = ((shift(fit.pattern.astype(float), h) == shift(fit.pattern.astype(float), -h))
             | ((shift(complete, h) == 1.0) & (shift(complete, -h) == 1.0)))
     end_var = van + np.where(same, 0.0, 1.0) * (va - van)
     tendency_var = (shift(end_var, h) + shift(end_var, -h)) / span ** 2 * hour ** 2
-    adv_mean, adv_var_noise = window_mean_and_variance(adv, var_noise, h)
-    adv_var = adv_var_noise + window_mean(var_persist, h)
-    residual = tendency - adv_mean
-    res_var = tendency_var + adv_var
-    out = {
-        "value": value, "value_se": np.sqrt(va),
-        "tendency": tendency, "tendency_se": np.sqrt(tendency_var),
-        "advection": adv_mean, "advection_se": np.sqrt(adv_var),
-        "residual": residual, "residual_se": np.sqrt(res_var),
-        "advection_instant": adv, "advection_instant_se": np.sqrt(var_adv),
-        "grad_x": gx * 1000.0, "grad_y": gy * 1000.0,
-        "grad_x_se": np.sqrt(vx + model_var) * 1000.0, "grad_y_se": np.sqrt(vy + model_var) * 1000.0,
-        "model_error": np.sqrt(model_var) * 1000.0,
-        "u": um, "v": vm, "u_se": np.sqrt(se2_u), "v_se": np.sqrt(se2_v),
-        "n_used": fit.n_used, "n_wind": n_w.astype(np.int32), "dof": fit.dof,
-        "rms": fit.rms if fit.rms is not None else np.full_like(gx, np.nan),
-        "cond": fit.cond,
-        "gap_filled": filled,
-    }
+    return _Tendency(tendency, tendency_var, value, va, filled)
+
+
+def _extras(out: dict, fit: PlaneFit, scale: np.ndarray, lapse, wind_speed: np.ndarray | None, memb) -> None:
+    """The vertical gradient (fitted or measured) and the scalar mean wind speed, where known."""
+    shape = fit.grad_x.shape
     if fit.grad_z is not None:
         out["vertical_gradient"] = fit.grad_z * 100.0
         out["vertical_gradient_se"] = np.sqrt(fit.var_z * scale) * 100.0
     elif lapse is not None:
-        out["vertical_gradient"] = np.broadcast_to(lapse[0][:, None] * 100.0, gx.shape).copy()
-        out["vertical_gradient_se"] = np.broadcast_to(np.sqrt(lapse[1])[:, None] * 100.0, gx.shape).copy()
+        out["vertical_gradient"] = np.broadcast_to(lapse[0][:, None] * 100.0, shape).copy()
+        out["vertical_gradient_se"] = np.broadcast_to(np.sqrt(lapse[1])[:, None] * 100.0, shape).copy()
     if wind_speed is not None:
         sp, _, _ = cluster_mean(wind_speed, memb, variance=False)
         out["wind_speed"] = sp
-    if np.isfinite(u).any():
-        from .kinematics import fit_wind, kinematics
-
-        kin = kinematics(fit_wind(u, v, x, y, members, sigma=s.wind_sigma, min_stations=s.min_stations,
-                                  residuals=False),
-                         deformation=False)  # the budget reports divergence and vorticity only
-        for name in ("divergence", "divergence_se", "vorticity", "vorticity_se"):
-            out[name] = kin[name]
-    out["regime"] = classify_codes(tendency, adv_mean, residual, out["advection_se"], out["residual_se"],
-                                   significance=s.significance, dominance=s.dominance, min_rate=s.min_rate,
-                                   tendency_se=out["tendency_se"])
-    out["implausible"] = implausible(tendency, adv_mean, residual, min_rate=s.min_rate, advection_se=out["advection_se"],
-                                     residual_se=out["residual_se"], significance=s.significance)
-    out["regime"][out["implausible"]] = np.int8(REGIMES.index("undetermined"))
-    return out
 
 
 def model_network(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], noise: np.ndarray,
