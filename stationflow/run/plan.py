@@ -176,8 +176,60 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     vertical = _vertical_mode(bc["vertical"], var, data.stations)
     quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
     mask_q = usable.get(var, np.ones(len(obs), bool))
-    has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
-    st_all = data.stations.reset_index(drop=True)
+    st = _stations(chk, config, var, vertical, obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique(),
+                   progress)
+    interval = _interval(config, obs, chk.qc.interval)
+    sample = _NoiseSample.of(obs, st.ids)
+    values = np.where(mask_q, quantity_values, np.nan)
+    noise, noise_info = _reading_noise(var, quantity, config, sample, values)
+    settings, window, window_source = _settings(config, var, vertical, noise, st, interval)
+    z = st.table["elevation"].to_numpy(float)
+    if settings.vertical_regression and not np.isfinite(z[np.concatenate(st.members)]).all():
+        raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
+    lapse_stations = None
+    if vertical == "measured":
+        lapse_stations = np.flatnonzero(np.isfinite(z) & np.isin(np.arange(len(st.ids)), np.unique(sample.codes[mask_q])))
+    qc_off = [name for name, on in (("all QC tests", config["qc"]["enabled"]), ("spatial", config["qc"]["spatial"]))
+              if not on]
+    choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
+               "qc_tests_off": qc_off, "min_rate": settings.min_rate, "offset": settings.offset,
+               "offset_source": offset_uncertainty(var, config)[1], **noise_info}
+    # the rows and values the estimator may use
+    frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
+    frame["q"] = values
+    _add_wind(frame, obs, usable, config, settings, sample, choices)
+    masts = _masts(st.table, st.x, st.y)
+    if masts is not None and "air_temperature" in obs:
+        frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
+                                  obs["air_temperature"].to_numpy(float), np.nan)
+    else:
+        masts = None
+    if not frame["time"].is_monotonic_increasing:  # ingest leaves the rows in time order: usually no sort
+        frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
+    unit = si_unit(var, data.units.get(var))
+    return BudgetPlan(var, quantity, unit, st.network, st.clusters, st.members, st.ids, st.x, st.y, z, st.convergence,
+                      masts, settings, interval, window, _analysis_times(frame, interval), frame, lapse_stations,
+                      choices)
+
+
+@dataclass
+class _Stations:
+    """Every station of the data set (``table``, projected), and the network of those with the variable."""
+
+    table: pd.DataFrame
+    ids: list[str]
+    x: np.ndarray
+    y: np.ndarray
+    convergence: np.ndarray
+    network: geometry.Network
+    clusters: pd.DataFrame  # the usable clusters
+    members: list[np.ndarray]  # their member stations, as rows of ``table``
+
+
+def _stations(chk: CheckResult, config: Config, var: str, vertical: str, has_var: np.ndarray,
+              progress: Progress) -> _Stations:
+    """Build the network of the stations that have good values of ``var`` (``has_var``), and screen it."""
+    st_all = chk.data.stations.reset_index(drop=True)
     st_var = st_all[st_all["station_id"].isin(has_var)].reset_index(drop=True)
     if len(st_var) < 3:
         raise GeometryError(f"only {len(st_var)} station(s) have good {var} values; a plane needs at least 3")
@@ -189,33 +241,55 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     if net.usable.empty:
         raise GeometryError("no cluster passed the shape and size tests; see clusters.csv (stationflow network) "
                             "and relax [network] min_angle/min_shape/max_side_km/max_height_range_m")
-    interval = _interval(config, obs, chk.qc.interval)
     ids = st_all["station_id"].tolist()
     x_all, y_all, conv, _ = geometry.project(st_all["latitude"].to_numpy(), st_all["longitude"].to_numpy(), net.crs)
     index = {s: i for i, s in enumerate(ids)}
     ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
     to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
     members = [to_full[net.members[i]] for i in ok_rows]
-    # the error model: reading noise per station (declared or learned), offsets (declared or default)
-    sid = obs["station_id"]
-    if isinstance(sid.dtype, pd.CategoricalDtype):  # by the category codes: no pass over every label
-        lookup = pd.Index(ids).get_indexer(sid.cat.categories.astype(str))
-        codes = np.where(sid.cat.codes.to_numpy() >= 0, lookup[sid.cat.codes.to_numpy()], -1).astype(np.int64)
-    else:
-        codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
-    time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
-    # the noise is learned from the first reports of the record (rows come in time order): enough for a robust
-    # estimate per station, and bounded work on long records of large networks
-    first = errormodel.noise_sample_rows(time_ns)
-    sample_codes, sample_ns = codes[first], time_ns[first]
-    order = errormodel.station_order(sample_codes, sample_ns)
-    noise, noise_info = _reading_noise(var, quantity, config, sample_codes, sample_ns,
-                                       np.where(mask_q, quantity_values, np.nan)[first], len(ids), order)
-    offset, offset_source = offset_uncertainty(var, config)
+    return _Stations(st_all, ids, x_all, y_all, conv, net, net.clusters.iloc[ok_rows].reset_index(drop=True), members)
+
+
+@dataclass
+class _NoiseSample:
+    """Each row's station (as a row of the station table) and time, and the first rows of the record, on
+    which the reading noise is learned (rows come in time order: enough for a robust estimate per
+    station, and bounded work on long records of large networks)."""
+
+    codes: np.ndarray
+    time_ns: np.ndarray
+    first: np.ndarray  # the rows of the sample
+    order: np.ndarray  # the sample's rows in (station, time) order
+    n_stations: int
+
+    @classmethod
+    def of(cls, obs: pd.DataFrame, ids: list[str]) -> "_NoiseSample":
+        sid = obs["station_id"]
+        if isinstance(sid.dtype, pd.CategoricalDtype):  # by the category codes: no pass over every label
+            lookup = pd.Index(ids).get_indexer(sid.cat.categories.astype(str))
+            codes = np.where(sid.cat.codes.to_numpy() >= 0, lookup[sid.cat.codes.to_numpy()], -1).astype(np.int64)
+        else:
+            codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
+        time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
+        first = errormodel.noise_sample_rows(time_ns)
+        return cls(codes, time_ns, first, errormodel.station_order(codes[first], time_ns[first]), len(ids))
+
+    def learn(self, values: np.ndarray, **kw) -> tuple:
+        """:func:`errormodel.reading_noise` of ``values`` (one per row) on the sample."""
+        return errormodel.reading_noise(self.codes[self.first], self.time_ns[self.first], values[self.first],
+                                        self.n_stations, order=self.order, **kw)
+
+
+def _settings(config: Config, var: str, vertical: str, noise: np.ndarray, st: _Stations, interval: pd.Timedelta
+              ) -> tuple[BudgetSettings, pd.Timedelta, str]:
+    """The budget settings (error model, window, regime thresholds), the window and how it was chosen."""
+    bc = config["budget"]
+    offset, _ = offset_uncertainty(var, config)
     min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
     total = np.sqrt(noise ** 2 + offset ** 2)
-    typical = fit_planes(np.zeros((1, len(ids))), x_all, y_all, members, sigma=total, noise=noise, residuals=False)
-    value_noise = float(np.nanmedian(typical.noise_part("var_value"))) if members else np.nan
+    typical = fit_planes(np.zeros((1, len(st.ids))), st.x, st.y, st.members, sigma=total, noise=noise,
+                         residuals=False)
+    value_noise = float(np.nanmedian(typical.noise_part("var_value"))) if st.members else np.nan
     window, h, window_source = _window(config, interval, value_noise, min_rate)
     settings = BudgetSettings(
         sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or errormodel.WIND_FLOOR), offset=offset,
@@ -224,61 +298,45 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
         significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
         vertical_regression=(vertical == "regression"),
     )
-    if members and settings.model_error:  # once per run: every time partition uses the same
-        settings.model_network = model_network(x_all, y_all, members, noise, settings)
-    z = st_all["elevation"].to_numpy(float)
-    if settings.vertical_regression and not np.isfinite(z[np.concatenate(members)]).all():
-        raise ConfigError("budget.vertical = 'regression' needs an elevation for every station in the stations file")
-    lapse_stations = None
-    if vertical == "measured":
-        lapse_stations = np.flatnonzero(np.isfinite(z) & np.isin(np.arange(len(ids)), np.unique(codes[mask_q])))
-    qc_off = [name for name, on in (("all QC tests", config["qc"]["enabled"]), ("spatial", config["qc"]["spatial"]))
-              if not on]
-    choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
-               "qc_tests_off": qc_off,
-               "min_rate": min_rate, "offset": offset, "offset_source": offset_source, **noise_info}
-    # the rows and values the estimator may use
-    frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
-    frame["q"] = np.where(mask_q, quantity_values, np.nan)
-    if "wind_speed" in obs and "wind_from_direction" in obs:
-        from ..variables import wind_components
+    if st.members and settings.model_error:  # once per run: every time partition uses the same
+        settings.model_network = model_network(st.x, st.y, st.members, noise, settings)
+    return settings, window, window_source
 
-        spd = obs["wind_speed"].to_numpy(float)
-        dirn = obs["wind_from_direction"].to_numpy(float)
-        calm = spd < config["qc"]["calm_speed"]
-        u, v = wind_components(np.where(calm, 0.0, spd), np.where(calm, 0.0, dirn))
-        ok_w = usable.get("wind_speed", np.ones(len(obs), bool)) & (usable.get("wind_from_direction", np.ones(len(obs), bool)) | calm)
-        frame["u"] = np.where(ok_w, u, np.nan)
-        frame["v"] = np.where(ok_w, v, np.nan)
-        frame["wind_speed"] = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), spd, np.nan)
-        if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
-            su, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["u"].to_numpy()[first], len(ids),
-                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
-            sv, _, _ = errormodel.reading_noise(sample_codes, sample_ns, frame["v"].to_numpy()[first], len(ids),
-                                                order=order, floor=errormodel.WIND_FLOOR, resolution=False)
-            settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
-            choices["wind_noise_source"] = "learned from second differences of each station's wind components"
-        else:
-            choices["wind_noise_source"] = "uncertainty.wind_component"
-    else:
+
+def _add_wind(frame: pd.DataFrame, obs: pd.DataFrame, usable: dict, config: Config, settings: BudgetSettings,
+              sample: _NoiseSample, choices: dict) -> None:
+    """The wind components (true axes, calm as zero) and speed the estimator may use; the wind noise learned
+    from them unless declared."""
+    if "wind_speed" not in obs or "wind_from_direction" not in obs:
         log.warning("no wind observations: advection cannot be estimated, so every row is undetermined")
         choices["wind"] = "none"
-    masts = _masts(st_all, x_all, y_all)
-    if masts is not None and "air_temperature" in obs:
-        frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
-                                  obs["air_temperature"].to_numpy(float), np.nan)
+        return
+    from ..variables import wind_components
+
+    spd = obs["wind_speed"].to_numpy(float)
+    dirn = obs["wind_from_direction"].to_numpy(float)
+    calm = spd < config["qc"]["calm_speed"]
+    u, v = wind_components(np.where(calm, 0.0, spd), np.where(calm, 0.0, dirn))
+    everywhere = np.ones(len(obs), bool)
+    ok_w = usable.get("wind_speed", everywhere) & (usable.get("wind_from_direction", everywhere) | calm)
+    frame["u"] = np.where(ok_w, u, np.nan)
+    frame["v"] = np.where(ok_w, v, np.nan)
+    frame["wind_speed"] = np.where(usable.get("wind_speed", everywhere), spd, np.nan)
+    if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
+        su, _, _ = sample.learn(frame["u"].to_numpy(), floor=errormodel.WIND_FLOOR, resolution=False)
+        sv, _, _ = sample.learn(frame["v"].to_numpy(), floor=errormodel.WIND_FLOOR, resolution=False)
+        settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
+        choices["wind_noise_source"] = "learned from second differences of each station's wind components"
     else:
-        masts = None
-    if not frame["time"].is_monotonic_increasing:  # ingest leaves the rows in time order: usually no sort
-        frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
+        choices["wind_noise_source"] = "uncertainty.wind_component"
+
+
+def _analysis_times(frame: pd.DataFrame, interval: pd.Timedelta) -> pd.DatetimeIndex:
+    """Every analysis time from the first to the last row, on the ``interval`` grid."""
     t = frame["time"]
     first = pd.Timestamp(t.min()).ceil(interval)
     n_t = int(np.ceil((pd.Timestamp(t.max()).value - first.value) / interval.value)) + 1
-    times = pd.date_range(first, periods=max(n_t, 1), freq=interval)
-    clusters = net.clusters.iloc[ok_rows].reset_index(drop=True)
-    unit = si_unit(var, data.units.get(var))
-    return BudgetPlan(var, quantity, unit, net, clusters, members, ids, x_all, y_all, z, conv, masts, settings,
-                      interval, window, times, frame, lapse_stations, choices)
+    return pd.date_range(first, periods=max(n_t, 1), freq=interval)
 
 
 #: height range above which ``vertical = "auto"`` measures the vertical gradient [m] (the QC spatial test's own limit)
@@ -301,14 +359,13 @@ def _vertical_mode(setting: str, variable: str, stations: pd.DataFrame) -> str:
     return "measured" if z.size >= 6 and np.ptp(z) > AUTO_VERTICAL_RANGE_M else "none"
 
 
-def _reading_noise(variable: str, quantity: str, config: Config, codes: np.ndarray, time_ns: np.ndarray,
-                   values: np.ndarray, n_stations: int, order: np.ndarray) -> tuple[np.ndarray, dict]:
+def _reading_noise(variable: str, quantity: str, config: Config, sample: _NoiseSample, values: np.ndarray
+                   ) -> tuple[np.ndarray, dict]:
     """Reading noise per station [unit]: declared, or learned (:func:`errormodel.reading_noise`); and what to record."""
     declared = declared_noise(variable, config)
     if declared is not None:
-        return np.full(n_stations, declared), {"noise_source": "uncertainty.sensor"}
-    noise, resolution, count = errormodel.reading_noise(codes, time_ns, values, n_stations, order=order,
-                                                        floor=errormodel.noise_floor(quantity))
+        return np.full(sample.n_stations, declared), {"noise_source": "uncertainty.sensor"}
+    noise, resolution, count = sample.learn(values, floor=errormodel.noise_floor(quantity))
     return noise, {"noise_source": "learned from second differences of each station's series",
                    "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
                    "resolution_per_station": resolution}
