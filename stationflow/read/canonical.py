@@ -40,20 +40,45 @@ class IngestResult:
         return [c for c in self.observations.columns if c not in V.ID_COLUMNS]
 
 
+@dataclass
+class RawTable:
+    """What a format reader gives: the rows as in the file, before names, units and times are made canonical.
+
+    ``frame``: the columns as in the file (strings, or typed when the reader
+    could); ``lines``: each row's 1-based source line (record number for
+    Parquet and netCDF); ``files``: one file name for every row, or one per
+    row; ``rejected``: rows that could not even be split, as (file, line,
+    reason); ``n_rows``: data rows read; ``units``: units the file itself
+    declares; ``wide_rows``: for a wide file melted to long rows, the wide
+    line each long row came from (one bad cell rejects its whole line).
+    """
+
+    frame: pd.DataFrame
+    lines: np.ndarray
+    files: str | np.ndarray
+    rejected: list
+    n_rows: int
+    sources: list[str]
+    units: dict[str, str] = field(default_factory=dict)
+    wide_rows: np.ndarray | None = None
+
+
 def variable_columns(columns: list[str], oc) -> tuple[list[str], list[str]]:
     """(variable columns, ignored columns) among canonical column names."""
     time_cols = oc["time_columns"]
     mapped_targets = set(oc["columns"].values())
     coord_cols = {"latitude", "longitude", "elevation", "sensor_height"}
     var_cols = [c for c in columns
-                if c not in V.ID_COLUMNS and c not in time_cols and c not in coord_cols and c != "__file__"
+                if c not in V.ID_COLUMNS and c not in time_cols and c not in coord_cols
                 and (c in V.CANONICAL or c in mapped_targets or c == oc["wide_variable"] and oc["layout"] == "wide")]
     ignored = [c for c in columns if c not in var_cols and c not in V.ID_COLUMNS
-               and c not in time_cols and c not in coord_cols and c != "__file__"]
+               and c not in time_cols and c not in coord_cols]
     return var_cols, ignored
 
 
-def melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str):
+def melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str
+              ) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
+    """A wide file (one column per station) as long rows: (rows, their source lines, their wide line index)."""
     oc = cfg["observations"]
     mapping = oc["columns"]
     renamed = frame.rename(columns=rename_columns(list(frame.columns), mapping))
@@ -73,18 +98,62 @@ def melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str):
     long = pd.DataFrame({c: np.repeat(renamed[c].to_numpy(object), k) for c in time_cols})
     long["station_id"] = np.tile(np.asarray(station_cols, dtype=object), n)
     long[var] = renamed[station_cols].to_numpy(object).reshape(-1)
-    long["__row__"] = np.repeat(np.arange(n), k)
-    return long.astype({c: "string" for c in long.columns if c != "__row__"}), np.repeat(lines, k)
+    return long.astype({c: "string" for c in long.columns}), np.repeat(lines, k), np.repeat(np.arange(n), k)
 
 
-def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations) -> IngestResult:
+def canonicalise(raw: RawTable, cfg: Config, stations: pd.DataFrame | None) -> IngestResult:
+    """Canonical names, SI units and UTC times of a :class:`RawTable`; rows that cannot be used are rejected
+    with their reason, identical repeats collapsed and conflicting ones rejected."""
     oc = cfg["observations"]
-    src_name = sources[0] if len(sources) == 1 else str(Path(sources[0]).parent)
-    wide_rows = frame.pop("__row__").to_numpy() if "__row__" in frame else None
-    skipped = list(frame.attrs.get("ignored_columns", []))
-    frame = frame.rename(columns=rename_columns(list(frame.columns), oc["columns"]))
+    src_name = raw.sources[0] if len(raw.sources) == 1 else str(Path(raw.sources[0]).parent)
+    skipped = list(raw.frame.attrs.get("ignored_columns", []))
+    frame = raw.frame.rename(columns=rename_columns(list(raw.frame.columns), oc["columns"]))
+    _check_columns(frame, oc, src_name, empty_ok=bool(raw.rejected))
+    var_cols, ignored = variable_columns(list(frame.columns), oc)
+    ignored = ignored + [c for c in skipped if c not in ignored]
+    if not var_cols:
+        raise IngestError(
+            f"{src_name}: no variable columns (columns are: {', '.join(map(str, frame.columns))}); "
+            "name them by their canonical names (air_temperature, wind_speed, ...) or map them in [observations.columns]"
+        )
+    units_cfg = _units_in_force(raw.units, oc)
+    reasons = _Reasons()
+    station = station_labels(frame["station_id"])
     time_cols = oc["time_columns"]
-    for c in time_cols or ["time"]:
+    times, bad_t, t_reasons, layout = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
+                                                  time_format=oc["time_format"], timezone=oc["timezone"], station=station,
+                                                  source=src_name)
+    for i in np.flatnonzero(bad_t):
+        reasons.add(i, t_reasons[i])
+    empty_sid = (station == "").to_numpy(bool)
+    for i in np.flatnonzero(empty_sid):
+        reasons.add(i, "station_id is empty")
+    # the columns of the result, made into a frame at the end without copying them (see read_typed_csv)
+    out_cols: dict = {"station_id": station.array, "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")}
+    _values(frame, var_cols, units_cfg, cfg, reasons, out_cols)
+    out = pd.DataFrame(out_cols, copy=False)
+    if stations is None:
+        if not ("latitude" in frame and "longitude" in frame):
+            raise IngestError(
+                f"{src_name}: no station file was given and the observations have no latitude/longitude columns; "
+                "pass --stations FILE"
+            )
+        stations = stations_from_rows(frame, out, raw.lines, raw.files, reasons)
+    unknown = ~out["station_id"].isin(set(stations["station_id"])).to_numpy() & ~empty_sid
+    if raw.wide_rows is not None and unknown.any():
+        sid = out["station_id"][unknown].iloc[0]
+        raise IngestError(f"{src_name}: column {sid!r} is not a station in the stations file; add it there or drop the column")
+    for i in np.flatnonzero(unknown):
+        reasons.add(i, f"station {clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)")
+    good, rej, accounting = _accept(raw, out, reasons, var_cols)
+    units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
+    return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(raw.sources), ignored,
+                        reading={"time_layout": layout, "timezone": oc["timezone"]})
+
+
+def _check_columns(frame: pd.DataFrame, oc, src_name: str, *, empty_ok: bool) -> None:
+    """Stop with one line when the time or station column is missing, or when there are no rows at all."""
+    for c in oc["time_columns"] or ["time"]:
         if c not in frame:
             raise IngestError(
                 f"{src_name}: no column {c!r} for the time (columns are: {', '.join(map(str, frame.columns))}); "
@@ -95,15 +164,12 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
             f"{src_name}: no column 'station_id' (columns are: {', '.join(map(str, frame.columns))}); "
             "map yours in [observations.columns], for example Site = \"station_id\""
         )
-    if len(frame) == 0 and not rejected:
+    if len(frame) == 0 and not empty_ok:
         raise IngestError(f"{src_name}: no data rows after the header")
-    var_cols, ignored = variable_columns(list(frame.columns), oc)
-    ignored = ignored + [c for c in skipped if c not in ignored]
-    if not var_cols:
-        raise IngestError(
-            f"{src_name}: no variable columns (columns are: {', '.join(map(str, frame.columns))}); "
-            "name them by their canonical names (air_temperature, wind_speed, ...) or map them in [observations.columns]"
-        )
+
+
+def _units_in_force(source_units: dict[str, str], oc) -> dict[str, str]:
+    """The units of the file's columns: declared by the file, overridden by ``observations.units``; checked."""
     units_cfg = dict(source_units)
     units_cfg.update(oc["units"])
     for name in units_cfg:
@@ -112,21 +178,14 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
                 V.unit_factors(name, units_cfg[name])
             except ConfigError as exc:
                 raise ConfigError(f"observations.units.{name}: {exc}") from None
-    n = len(frame)
-    reasons = _Reasons()
-    station = station_labels(frame["station_id"])
-    times, bad_t, t_reasons, layout = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
-                                                  time_format=oc["time_format"], timezone=oc["timezone"], station=station,
-                                                  source=src_name)
-    for i in np.flatnonzero(bad_t):
-        reasons.add(i, t_reasons[i])
-    empty_sid = (station == "").to_numpy(bool)
-    for i in np.flatnonzero(empty_sid):
-        reasons.add(i, "station_id is empty")
-    missing = {str(m) for m in oc["missing_values"]}
-    # the columns of the result, made into a frame at the end without copying them (see read_typed_csv)
-    out_cols: dict = {"station_id": station.array, "time": times.reset_index(drop=True).astype("datetime64[ns, UTC]")}
-    calm_codes = np.zeros(n, bool)
+    return units_cfg
+
+
+def _values(frame: pd.DataFrame, var_cols: list[str], units_cfg: dict, cfg: Config, reasons: "_Reasons",
+            out_cols: dict) -> None:
+    """Each variable column as SI numbers into ``out_cols``; a cell that cannot be read rejects its row."""
+    missing = {str(m) for m in cfg["observations"]["missing_values"]}
+    calm_codes = np.zeros(len(frame), bool)
     for name in var_cols:
         col = frame[name]
         if name == "wind_from_direction" and (units_cfg.get(name, "degree") == "compass"
@@ -147,41 +206,35 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
                             f"{name}: {clip(raw)!r} is not a finite number")
         out_cols[name] = x
     if "wind_from_direction" in out_cols:
-        # a direction of exactly 0 is calm (with a speed below calm_speed, or with no speed column) or north
-        # (360), and a calm code (compass text) is calm whatever its number: only those rows change
-        d = out_cols["wind_from_direction"]
-        zero = np.flatnonzero(d == 0)
-        coded = bool(calm_codes.any())
-        if "wind_speed" in out_cols:
-            s = out_cols["wind_speed"]
-            calm = np.isfinite(s[zero]) & (s[zero] < cfg["qc"]["calm_speed"])
-            if coded:  # a calm code without a speed is a speed of 0 (a new array: ``s`` may be the input's own)
-                out_cols["wind_speed"] = np.where(calm_codes & ~np.isfinite(s), 0.0, s)
-        else:
-            calm = np.ones(zero.size, bool)
-        if zero.size or coded:
-            d = d.copy()
-            d[zero] = np.where(calm, np.nan, 360.0)
-            d[calm_codes] = np.nan
-        out_cols["wind_from_direction"] = d
-    out = pd.DataFrame(out_cols, copy=False)
-    # station table
-    coords_in_obs = "latitude" in frame and "longitude" in frame
-    if stations is None:
-        if not coords_in_obs:
-            raise IngestError(
-                f"{src_name}: no station file was given and the observations have no latitude/longitude columns; "
-                "pass --stations FILE"
-            )
-        stations = stations_from_rows(frame, out, lines, files, reasons)
-    known = set(stations["station_id"])
-    unknown = ~out["station_id"].isin(known).to_numpy() & ~empty_sid
-    if wide_rows is not None and unknown.any():
-        sid = out["station_id"][unknown].iloc[0]
-        raise IngestError(f"{src_name}: column {sid!r} is not a station in the stations file; add it there or drop the column")
-    for i in np.flatnonzero(unknown):
-        reasons.add(i, f"station {clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)")
-    bad_row = reasons.mask(n)
+        _calm_directions(out_cols, calm_codes, cfg["qc"]["calm_speed"])
+
+
+def _calm_directions(out_cols: dict, calm_codes: np.ndarray, calm_speed: float) -> None:
+    """A direction of exactly 0 is calm (with a speed below ``calm_speed``, or with no speed column) or
+    north (360), and a calm code (compass text) is calm whatever its number: only those rows change."""
+    d = out_cols["wind_from_direction"]
+    zero = np.flatnonzero(d == 0)
+    coded = bool(calm_codes.any())
+    if "wind_speed" in out_cols:
+        s = out_cols["wind_speed"]
+        calm = np.isfinite(s[zero]) & (s[zero] < calm_speed)
+        if coded:  # a calm code without a speed is a speed of 0 (a new array: ``s`` may be the input's own)
+            out_cols["wind_speed"] = np.where(calm_codes & ~np.isfinite(s), 0.0, s)
+    else:
+        calm = np.ones(zero.size, bool)
+    if zero.size or coded:
+        d = d.copy()
+        d[zero] = np.where(calm, np.nan, 360.0)
+        d[calm_codes] = np.nan
+    out_cols["wind_from_direction"] = d
+
+
+def _accept(raw: RawTable, out: pd.DataFrame, reasons: "_Reasons", var_cols: list[str]
+            ) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, int]]:
+    """(the rows kept, in (time, station) order with duplicates collapsed; every rejected row with its file,
+    line and reason; the row accounting)."""
+    lines, files, wide_rows = raw.lines, raw.files, raw.wide_rows
+    bad_row = reasons.mask(len(out))
     if wide_rows is not None:
         # one bad cell rejects its whole line: a wide line is one row
         bad_line = np.zeros(wide_rows.max() + 1 if len(wide_rows) else 0, bool)
@@ -195,7 +248,7 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
     else:
         rej_rows = [(_file_of(files, i), int(lines[i]), reasons[i]) for i in np.flatnonzero(bad_row)]
     keep = ~bad_row
-    if keep.all():  # `out` is this function's own frame: no copy when all rows stay
+    if keep.all():  # `out` is this module's own frame: no copy when all rows stay
         good, good_lines, good_files = out, np.asarray(lines), files
     else:
         good = out[keep].copy()
@@ -204,13 +257,12 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
     ordered = _in_key_order(good)
     good, dup_rejects, collapsed = (good, [], 0) if ordered else _deduplicate(good, good_lines, good_files, var_cols)
     rej_rows.extend(dup_rejects)
-    rejected_all = list(rejected) + rej_rows
-    rej = pd.DataFrame(rejected_all, columns=["file", "line", "reason"])
+    rej = pd.DataFrame(list(raw.rejected) + rej_rows, columns=["file", "line", "reason"])
     rej = rej.sort_values(["file", "line"], kind="stable").reset_index(drop=True)
     if wide_rows is not None:
         rej = rej.drop_duplicates(["file", "line"])
     n_rej = len(rej)
-    accounting = {"rows_read": int(n_rows), "rows_accepted": int(n_rows - n_rej), "rows_rejected": int(n_rej),
+    accounting = {"rows_read": int(raw.n_rows), "rows_accepted": int(raw.n_rows - n_rej), "rows_rejected": int(n_rej),
                   "duplicates_collapsed": int(collapsed)}
     if not ordered:
         good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
@@ -222,9 +274,7 @@ def canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, c
         good["station_id"] = good["station_id"].cat.remove_categories(good["station_id"].cat.categories[~used])
     if pd.DatetimeIndex(good["time"]).unit != "ns":
         good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
-    units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
-    return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(sources), ignored,
-                        reading={"time_layout": layout, "timezone": oc["timezone"]})
+    return good, rej, accounting
 
 
 class _Reasons(dict):

@@ -14,10 +14,12 @@ import pandas as pd
 from .. import variables as V
 from ..config import Config
 from ..errors import IngestError
+from .canonical import RawTable
 from .text import clip
 
 
-def load_netcdf(p: Path, cfg: Config):
+def load_netcdf(p: Path, cfg: Config) -> RawTable:
+    """The rows of one netCDF station file or of every one in a folder (one station per file)."""
     import xarray as xr
 
     files = sorted(p.glob("*.nc")) + sorted(p.glob("*.cdf")) + sorted(p.glob("*.nc4")) if p.is_dir() else [p]
@@ -66,4 +68,4 @@ def load_netcdf(p: Path, cfg: Config):
             frames.append(fr)
     frame = pd.concat(frames, ignore_index=True)
     lines = frame.pop("__line__").to_numpy()
-    return frame, lines, [], units, len(frame), [str(f) for f in files]
+    return RawTable(frame, lines, np.asarray(frame.pop("__file__")), [], len(frame), [str(f) for f in files], units)

@@ -13,7 +13,7 @@ import pandas as pd
 
 from ..config import Config
 from ..errors import IngestError
-from .canonical import IngestResult, canonicalise, melt_wide
+from .canonical import IngestResult, RawTable, canonicalise, melt_wide
 from .fastcsv import read_typed_csv
 from .netcdf import load_netcdf
 from .parquet import load_parquet
@@ -63,30 +63,29 @@ def read_observations(
         raise IngestError(f"{p}: file not found; check the path")
     fmt = _detect_format(p, oc["format"])
     if fmt == "netcdf":
-        frame, lines, rejected, source_units, n_rows, sources = load_netcdf(p, cfg)
-        files = np.asarray(frame.pop("__file__"))
+        raw = load_netcdf(p, cfg)
+    elif fmt == "parquet":
+        raw = load_parquet(p, cfg)
     else:
-        if fmt == "parquet":
-            frame, lines, rejected, n_rows, sources = load_parquet(p, cfg)
-            source_units = {}
-        else:
-            sources = [str(p)]
-            source_units = {}
-            typed = read_typed_csv(p, cfg, stations)
-            if typed is not None:  # a clean file: typed columns straight from pyarrow
-                frame, lines, rejected = typed, np.arange(2, len(typed) + 2), []
-                n_rows = len(frame)
-            else:
-                table = read_text_table(p, delimiter=oc["delimiter"], skip_lines=oc["skip_lines"],
-                                        encoding=oc["encoding"], section="observations")
-                frame, lines, rejected = table.cells, table.lines, list(table.rejected)
-                n_rows = len(lines) + len(rejected)
-                if oc["layout"] == "long":
-                    _check_mapped(table.header, oc["columns"], str(p))
-                if oc["layout"] == "wide":
-                    frame, lines = melt_wide(frame, lines, cfg, str(p))
-        files = str(sources[0]) if sources else str(p)  # one file: one name for every row
-    return canonicalise(frame, lines, files, rejected, n_rows, sources, source_units, cfg, stations)
+        raw = _read_csv(p, cfg, stations)
+    return canonicalise(raw, cfg, stations)
+
+
+def _read_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> RawTable:
+    """A CSV file: the typed fast path when the file is clean, else the general text reader."""
+    oc = cfg["observations"]
+    typed = read_typed_csv(p, cfg, stations)
+    if typed is not None:  # a clean file: typed columns straight from pyarrow
+        return RawTable(typed, np.arange(2, len(typed) + 2), str(p), [], len(typed), [str(p)])
+    table = read_text_table(p, delimiter=oc["delimiter"], skip_lines=oc["skip_lines"], encoding=oc["encoding"],
+                            section="observations")
+    raw = RawTable(table.cells, table.lines, str(p), list(table.rejected), len(table.lines) + len(table.rejected),
+                   [str(p)])
+    if oc["layout"] == "long":
+        _check_mapped(table.header, oc["columns"], str(p))
+    if oc["layout"] == "wide":
+        raw.frame, raw.lines, raw.wide_rows = melt_wide(raw.frame, raw.lines, cfg, str(p))
+    return raw
 
 
 def _check_mapped(header: list[str], mapping: dict[str, str], source: str) -> None:

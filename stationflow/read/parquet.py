@@ -12,10 +12,12 @@ import pandas as pd
 
 from ..config import Config
 from ..errors import IngestError
+from .canonical import RawTable
 from .text import clip
 
 
-def load_parquet(p: Path, cfg: Config):
+def load_parquet(p: Path, cfg: Config) -> RawTable:
+    """The rows of a Parquet file or dataset folder (hive partitions become columns)."""
     import pyarrow as pa
     import pyarrow.dataset as ds
 
@@ -29,4 +31,4 @@ def load_parquet(p: Path, cfg: Config):
         if isinstance(frame[c].dtype, pd.CategoricalDtype) and cfg["observations"]["columns"].get(c, c) != "station_id":
             frame[c] = frame[c].astype("string")
     lines = np.arange(1, len(frame) + 1)
-    return frame, lines, [], len(frame), [str(p)]
+    return RawTable(frame, lines, str(p), [], len(frame), [str(p)])
