@@ -18,7 +18,7 @@ from ..config import Config
 from ..errors import ConfigError, IngestError
 from .stations import looks_infinite, rename_columns, station_labels, stations_from_rows
 from .text import as_text, clip, parse_numbers
-from .times import parse_times
+from .times import TimeSettings, parse_times
 
 
 @dataclass
@@ -119,10 +119,7 @@ def canonicalise(raw: RawTable, cfg: Config, stations: pd.DataFrame | None) -> I
     units_cfg = _units_in_force(raw.units, oc)
     reasons = _Reasons()
     station = station_labels(frame["station_id"])
-    time_cols = oc["time_columns"]
-    times, bad_t, t_reasons, layout = parse_times(frame, time_column=None if time_cols else "time", time_columns=time_cols,
-                                                  time_format=oc["time_format"], timezone=oc["timezone"], station=station,
-                                                  source=src_name)
+    times, bad_t, t_reasons, layout = parse_times(frame, TimeSettings.of(oc), station, source=src_name)
     for i in np.flatnonzero(bad_t):
         reasons.add(i, t_reasons[i])
     empty_sid = (station == "").to_numpy(bool)

@@ -86,10 +86,44 @@ def read_text_table(
     at one by one.
     """
     name = str(path)
+    src = _Lines.of(_utf8(path, encoding, section), name)
+    data, n_lines = src.data, src.starts.size
+    skip = np.zeros(n_lines, bool)
+    if skip_lines:
+        idx = np.asarray([n - 1 for n in skip_lines if 0 < n <= n_lines], dtype=int)
+        skip[idx] = True
+    candidates = np.flatnonzero(~src.blank & ~skip)
+    if candidates.size == 0:
+        raise IngestError(f"{name}: no header line found (every line is blank or skipped)")
+    h = candidates[0]
+    header = _header(data[src.starts[h]:src.ends_c[h]], h + 1, name, delimiter, section)
+    is_row = ~src.blank & ~skip
+    is_row[h] = False
+    rejected: list[tuple[str, int, str]] = []
+    # bytes that are not valid UTF-8: find the lines (error path only)
+    try:
+        data.decode("utf-8")
+    except UnicodeDecodeError:
+        for i in np.flatnonzero(is_row):
+            try:
+                data[src.starts[i]:src.ends[i]].decode("utf-8")
+            except UnicodeDecodeError:
+                is_row[i] = False
+                rejected.append((name, int(i + 1), f"not valid UTF-8 text (set [{section}] encoding)"))
+    is_row = _fields_checked(src, is_row, len(header), delimiter, section, rejected)
+    rows = np.flatnonzero(is_row)
+    cells = _parse_rows(src, rows, header, delimiter)
+    if len(cells) != rows.size:  # quoting the fast path could not follow
+        cells = _parse_rows_python(src, rows, header, delimiter)
+    return TextTable(name, header, cells, np.arange(1, n_lines + 1)[rows], rejected)
+
+
+def _utf8(path: str | Path, encoding: str, section: str) -> bytes:
+    """The file's bytes as UTF-8 (a byte-order mark dropped; another encoding converted)."""
+    name = str(path)
     data = read_bytes(path)
     if data.startswith(b"\xef\xbb\xbf"):
         data = data[3:]
-    rejected: list[tuple[str, int, str]] = []
     enc = encoding.lower().replace("_", "-")
     if enc not in ("utf-8", "utf8"):
         try:
@@ -100,39 +134,50 @@ def read_text_table(
             raise IngestError(f"{name}: not valid {encoding} text ({exc.reason}); set [{section}] encoding") from None
     if not data.strip():
         raise IngestError(f"{name}: the file is empty; expected a header line and data rows")
-    arr = np.frombuffer(data, np.uint8)
-    nl = np.flatnonzero(arr == 10)
-    starts = np.concatenate([[0], nl + 1])
-    ends = np.concatenate([nl, [arr.size]])
-    if starts[-1] >= arr.size:
-        starts, ends = starts[:-1], ends[:-1]
-    cr = (ends > starts) & (arr[np.maximum(ends - 1, 0)] == 13)
-    ends_c = ends - cr
-    n_lines = starts.size
-    lineno = np.arange(1, n_lines + 1)
-    # blank lines: nothing but spaces/tabs (only lines that start with one need a closer look)
-    length = ends_c - starts
-    blank = length == 0
-    first = np.where(length > 0, arr[np.minimum(starts, arr.size - 1)], 0)
-    for i in np.flatnonzero((first == 32) | (first == 9)):
-        blank[i] = not data[starts[i]:ends_c[i]].strip()
-    skip = np.zeros(n_lines, bool)
-    if skip_lines:
-        idx = np.asarray([n - 1 for n in skip_lines if 0 < n <= n_lines], dtype=int)
-        skip[idx] = True
-    candidates = np.flatnonzero(~blank & ~skip)
-    if candidates.size == 0:
-        raise IngestError(f"{name}: no header line found (every line is blank or skipped)")
-    h = candidates[0]
-    header_text = data[starts[h]:ends_c[h]]
+    return data
+
+
+@dataclass
+class _Lines:
+    """A text's lines by byte offsets: ``starts``, ``ends`` (at the newline), ``ends_c`` (before a closing
+    carriage return), and which lines are blank (nothing but spaces and tabs)."""
+
+    data: bytes
+    arr: np.ndarray
+    starts: np.ndarray
+    ends: np.ndarray
+    ends_c: np.ndarray
+    blank: np.ndarray
+    name: str
+
+    @classmethod
+    def of(cls, data: bytes, name: str) -> "_Lines":
+        arr = np.frombuffer(data, np.uint8)
+        nl = np.flatnonzero(arr == 10)
+        starts = np.concatenate([[0], nl + 1])
+        ends = np.concatenate([nl, [arr.size]])
+        if starts[-1] >= arr.size:
+            starts, ends = starts[:-1], ends[:-1]
+        cr = (ends > starts) & (arr[np.maximum(ends - 1, 0)] == 13)
+        ends_c = ends - cr
+        length = ends_c - starts
+        blank = length == 0
+        first = np.where(length > 0, arr[np.minimum(starts, arr.size - 1)], 0)
+        for i in np.flatnonzero((first == 32) | (first == 9)):  # only lines that start with a space need a look
+            blank[i] = not data[starts[i]:ends_c[i]].strip()
+        return cls(data, arr, starts, ends, ends_c, blank, name)
+
+
+def _header(text: bytes, line: int, name: str, delimiter: str, section: str) -> list[str]:
+    """The column names of the header ``text`` (on ``line``), checked: readable, unique, not empty."""
     try:
-        header_str = header_text.decode("utf-8")
+        header_str = text.decode("utf-8")
     except UnicodeDecodeError:
-        raise IngestError(f"{name}: line {h + 1} (header) is not valid UTF-8 text; set [{section}] encoding") from None
+        raise IngestError(f"{name}: line {line} (header) is not valid UTF-8 text; set [{section}] encoding") from None
     try:
         header = [c.strip() for c in next(csv.reader([header_str.rstrip("\r")], delimiter=delimiter))]
     except (csv.Error, StopIteration):
-        raise IngestError(f"{name}: line {h + 1} (header) cannot be read as delimited text") from None
+        raise IngestError(f"{name}: line {line} (header) cannot be read as delimited text") from None
     if len(header) == 1:
         for other in (";", "\t", ",", "|"):
             if other != delimiter and other in header_str:
@@ -142,26 +187,21 @@ def read_text_table(
                     f"set [{section}] delimiter = \"{shown}\" in the configuration"
                 )
     if any(c == "" for c in header):
-        raise IngestError(f"{name}: line {h + 1} (header) has an empty column name")
+        raise IngestError(f"{name}: line {line} (header) has an empty column name")
     dupes = sorted({c for c in header if header.count(c) > 1})
     if dupes:
         raise IngestError(f"{name}: the header repeats column(s) {', '.join(dupes)}; column names must be unique")
-    is_row = ~blank & ~skip
-    is_row[h] = False
-    # bytes that are not valid UTF-8: find the lines (error path only)
-    try:
-        data.decode("utf-8")
-    except UnicodeDecodeError:
-        for i in np.flatnonzero(is_row):
-            try:
-                data[starts[i]:ends[i]].decode("utf-8")
-            except UnicodeDecodeError:
-                is_row[i] = False
-                rejected.append((name, int(i + 1), f"not valid UTF-8 text (set [{section}] encoding)"))
-    # count fields per line from the delimiter positions, honouring double quotes
+    return header
+
+
+def _fields_checked(src: _Lines, is_row: np.ndarray, n_header: int, delimiter: str, section: str,
+                    rejected: list) -> np.ndarray:
+    """``is_row`` without the lines that have a stray carriage return or the wrong number of fields (counted
+    from the delimiter positions, honouring double quotes); each rejected with its reason."""
+    arr, starts, n_lines, name = src.arr, src.starts, src.starts.size, src.name
     pos = np.flatnonzero(arr == ord(delimiter))
     line_of = np.searchsorted(starts, pos, side="right") - 1
-    if data.find(b'"') >= 0:
+    if src.data.find(b'"') >= 0:
         qpos = np.flatnonzero(arr == 34)
         # quotes before each delimiter within its line: odd means the delimiter is inside a quoted field
         before = np.searchsorted(qpos, pos) - np.searchsorted(qpos, starts[line_of])
@@ -170,28 +210,25 @@ def read_text_table(
     n_fields = np.bincount(line_of, minlength=n_lines) + 1
     crpos = np.flatnonzero(arr == 13)
     cr_line = np.searchsorted(starts, crpos, side="right") - 1
-    inner_cr = crpos < ends_c[cr_line]
+    inner_cr = crpos < src.ends_c[cr_line]
     stray = np.zeros(n_lines, bool)
     stray[cr_line[inner_cr]] = True
     stray_cr = is_row & stray
     for i in np.flatnonzero(stray_cr):
         rejected.append((name, int(i + 1), "a carriage-return character inside the line (mixed line endings?)"))
-    is_row &= ~stray_cr
-    wrong = is_row & (n_fields != len(header))
+    is_row = is_row & ~stray_cr
+    wrong = is_row & (n_fields != n_header)
     for i in np.flatnonzero(wrong):
-        rejected.append((name, int(i + 1), f"expected {len(header)} fields, found {int(n_fields[i])} (check [{section}] delimiter)"))
-    is_row &= ~wrong
-    rows = np.flatnonzero(is_row)
-    cells = _parse_rows(data, arr, starts, ends, rows, header, delimiter)
-    if len(cells) != rows.size:  # quoting the fast path could not follow
-        cells = _parse_rows_python(data, starts, ends, rows, header, delimiter)
-    return TextTable(name, header, cells, lineno[rows], rejected)
+        rejected.append((name, int(i + 1), f"expected {n_header} fields, found {int(n_fields[i])} (check [{section}] delimiter)"))
+    return is_row & ~wrong
 
 
-def _parse_rows(data, arr, starts, ends, rows, header, delimiter) -> pd.DataFrame:
+def _parse_rows(src: _Lines, rows: np.ndarray, header: list[str], delimiter: str) -> pd.DataFrame:
+    """The cells of the lines ``rows`` as strings, parsed by pyarrow in one pass."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
+    data, arr, starts, ends = src.data, src.arr, src.starts, src.ends
     if rows.size == 0:
         return pd.DataFrame({c: pd.Series([], dtype="str") for c in header})
     # keep the bytes of the selected lines, each with its newline
@@ -220,11 +257,11 @@ def _parse_rows(data, arr, starts, ends, rows, header, delimiter) -> pd.DataFram
     return table.to_pandas(types_mapper={pa.string(): pd.StringDtype("pyarrow")}.get)
 
 
-def _parse_rows_python(data, starts, ends, rows, header, delimiter) -> pd.DataFrame:
+def _parse_rows_python(src: _Lines, rows: np.ndarray, header: list[str], delimiter: str) -> pd.DataFrame:
     """Slow path, one line at a time, used only when quoting defeats the fast parser."""
     parsed = []
     for i in rows:
-        line = data[starts[i]:ends[i]].decode("utf-8").rstrip("\r")
+        line = src.data[src.starts[i]:src.ends[i]].decode("utf-8").rstrip("\r")
         try:
             cells = next(csv.reader([line], delimiter=delimiter))
         except (csv.Error, StopIteration):

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import re
+from dataclasses import dataclass
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
@@ -42,75 +43,112 @@ def tzinfo_for(name: str) -> _dt.tzinfo:
         ) from None
 
 
-def parse_times(
-    frame: pd.DataFrame,
-    *,
-    time_column: str | None,
-    time_columns: list[str],
-    time_format: str,
-    timezone: str,
-    station: pd.Series,
-    source: str = "observations",
-) -> tuple[pd.Series, np.ndarray, list[str | None], str]:
+@dataclass(frozen=True)
+class TimeSettings:
+    """How a file states its times: one column (``column``) or one column per part (``columns``: year,
+    month, day[, hour, minute, second]), a ``strftime`` layout or "" (found from the data), and the
+    zone naive times are in (IANA name or fixed offset)."""
+
+    column: str | None = "time"
+    columns: tuple[str, ...] = ()
+    format: str = ""
+    zone: str = "UTC"
+
+    @classmethod
+    def of(cls, oc) -> "TimeSettings":
+        """From the ``[observations]`` configuration table."""
+        cols = tuple(oc["time_columns"])
+        return cls(None if cols else "time", cols, oc["time_format"], oc["timezone"])
+
+
+def parse_times(frame: pd.DataFrame, settings: TimeSettings, station: pd.Series, source: str = "observations"
+                ) -> tuple[pd.Series, np.ndarray, list[str | None], str]:
     """Parse times to UTC. Returns (times, bad_mask, reasons per bad row, layout used).
 
-    Without ``time_format`` the layout is found from the data
-    (:func:`stationflow.times.detect_layout`: ISO 8601 or a common
+    Without ``settings.format`` the layout is found from the data
+    (:func:`stationflow.read.layouts.detect_layout`: ISO 8601 or a common
     spreadsheet/logger layout, day-first against month-first settled by the
     data).
-    Naive times are local times in ``timezone``.  At a daylight-saving
+    Naive times are local times in ``settings.zone``.  At a daylight-saving
     fall-back, an ambiguous local time is resolved from the station's order
     in the file (first occurrence summer time, second standard time); if
     that cannot be told the row is rejected, as are local times that do not
     exist (spring-forward gap).
     """
     n = len(frame)
-    reasons: list[str | None] = [None] * n
-    layout = time_format or "ISO8601"
-    if time_columns:
-        layout = "columns: " + ", ".join(time_columns)
-        parts = {}
-        for key, colname in zip(("year", "month", "day", "hour", "minute", "second"), time_columns):
-            parts[key] = pd.to_numeric(as_text(frame[colname]), errors="coerce")
-        for key in ("hour", "minute", "second"):
-            parts.setdefault(key, pd.Series(0, index=frame.index))
-        comp = pd.DataFrame(parts).astype(float)
-        whole = comp.notna().all(axis=1) & (comp.fillna(0) % 1 == 0).all(axis=1)
-        naive = pd.to_datetime(comp.where(whole), errors="coerce")
-        hour24 = whole & (comp["hour"] == 24)  # 24:00 means midnight of the next day
-        if hour24.any():
-            c2 = comp.copy()
-            c2.loc[hour24, "hour"] = 0
-            naive = naive.where(~hour24, pd.to_datetime(c2.where(hour24), errors="coerce") + pd.Timedelta(days=1))
-        aware_mask = np.zeros(n, bool)
-        aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+    no_aware = (np.zeros(n, bool), pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]"))
+    if settings.columns:
+        naive, layout = _from_parts(frame, settings.columns)
+        aware_mask, aware = no_aware
     else:
-        col = frame[time_column]
-        if isinstance(col.dtype, pd.DatetimeTZDtype):
+        col = frame[settings.column]
+        if isinstance(col.dtype, pd.DatetimeTZDtype):  # typed and zoned already (Parquet, netCDF)
             t = col.dt.tz_convert("UTC")
             missing_t = t.isna().to_numpy()
-            reasons_t: list[str | None] = [None] * n
-            for i in np.flatnonzero(missing_t):
-                reasons_t[i] = "time is missing"
-            return t, missing_t, reasons_t, "ISO8601"
+            return t, missing_t, [("time is missing" if m else None) for m in missing_t], "ISO8601"
         if pd.api.types.is_datetime64_dtype(col.dtype):
-            naive = col
-            aware_mask = np.zeros(n, bool)
-            aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+            naive, layout = col, settings.format or "ISO8601"
+            aware_mask, aware = no_aware
         else:
-            text = as_text(col)
-            aware_mask = text.str.contains(_TZ_SUFFIX, regex=True).fillna(False).to_numpy(bool)
-            if not time_format and not aware_mask.all():
-                from .layouts import detect_layout
-
-                layout = detect_layout(text.where(~aware_mask), station)
-            fmt = layout
-            naive = pd.to_datetime(text.where(~aware_mask), errors="coerce", format=fmt)
-            if aware_mask.any():
-                aware = pd.to_datetime(text.where(aware_mask), errors="coerce", utc=True,
-                                       format=time_format or "ISO8601")
+            naive, aware_mask, aware, layout = _from_text(col, settings.format, station)
+    reasons: list[str | None] = [None] * n
+    naive, aware = _in_years(naive, aware, aware_mask, reasons)
+    out = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+    nav = naive.notna().to_numpy() & ~aware_mask
+    out[nav] = _local_to_utc(naive, nav, settings.zone, station, source, reasons)[nav]
+    out[aware_mask] = aware[aware_mask]
+    bad = out.isna().to_numpy()
+    for i in np.flatnonzero(bad):
+        if reasons[i] is None:
+            if settings.columns:
+                vals = "/".join(clip(frame[c].iloc[i]) for c in settings.columns)
+                reasons[i] = f"cannot build a time from {'/'.join(settings.columns)} = {vals}"
             else:
-                aware = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
+                raw = frame[settings.column].iloc[i]
+                reasons[i] = ("time is missing" if (pd.isna(raw) or str(raw).strip() == "")
+                              else f"cannot parse time {clip(raw)!r}")
+    return out, bad, reasons, layout
+
+
+def _from_parts(frame: pd.DataFrame, columns: tuple[str, ...]) -> tuple[pd.Series, str]:
+    """Naive times from one column per part (year, month, day, hour, minute, second); 24:00 is next midnight."""
+    parts = {}
+    for key, colname in zip(("year", "month", "day", "hour", "minute", "second"), columns):
+        parts[key] = pd.to_numeric(as_text(frame[colname]), errors="coerce")
+    for key in ("hour", "minute", "second"):
+        parts.setdefault(key, pd.Series(0, index=frame.index))
+    comp = pd.DataFrame(parts).astype(float)
+    whole = comp.notna().all(axis=1) & (comp.fillna(0) % 1 == 0).all(axis=1)
+    naive = pd.to_datetime(comp.where(whole), errors="coerce")
+    hour24 = whole & (comp["hour"] == 24)  # 24:00 means midnight of the next day
+    if hour24.any():
+        c2 = comp.copy()
+        c2.loc[hour24, "hour"] = 0
+        naive = naive.where(~hour24, pd.to_datetime(c2.where(hour24), errors="coerce") + pd.Timedelta(days=1))
+    return naive, "columns: " + ", ".join(columns)
+
+
+def _from_text(col: pd.Series, time_format: str, station: pd.Series
+               ) -> tuple[pd.Series, np.ndarray, pd.Series, str]:
+    """(naive times, which rows carry their own offset, those rows in UTC, the layout used) of a text column."""
+    text = as_text(col)
+    aware_mask = text.str.contains(_TZ_SUFFIX, regex=True).fillna(False).to_numpy(bool)
+    layout = time_format or "ISO8601"
+    if not time_format and not aware_mask.all():
+        from .layouts import detect_layout
+
+        layout = detect_layout(text.where(~aware_mask), station)
+    naive = pd.to_datetime(text.where(~aware_mask), errors="coerce", format=layout)
+    if aware_mask.any():
+        aware = pd.to_datetime(text.where(aware_mask), errors="coerce", utc=True, format=time_format or "ISO8601")
+    else:
+        aware = pd.Series(pd.NaT, index=col.index, dtype="datetime64[ns, UTC]")
+    return naive, aware_mask, aware, layout
+
+
+def _in_years(naive: pd.Series, aware: pd.Series, aware_mask: np.ndarray, reasons: list
+              ) -> tuple[pd.Series, pd.Series]:
+    """Times outside the years 1900-2200 made missing, with their reason."""
     if getattr(naive.dt, "tz", None) is not None:
         naive = naive.dt.tz_localize(None)
     out_of_range = (naive.notna() & ((naive.dt.year < 1900) | (naive.dt.year > 2200))).to_numpy(bool)
@@ -120,43 +158,39 @@ def parse_times(
         aware = aware.where(~aw)
     for i in np.flatnonzero(out_of_range):
         reasons[i] = "time is outside the years 1900-2200"
-    naive = naive.where(~pd.Series(out_of_range, index=naive.index)).astype("datetime64[ns]")
+    return naive.where(~pd.Series(out_of_range, index=naive.index)).astype("datetime64[ns]"), aware
+
+
+def _local_to_utc(naive: pd.Series, nav: np.ndarray, timezone: str, station: pd.Series, source: str,
+                  reasons: list) -> pd.Series:
+    """The naive local times (rows ``nav``) in UTC; at a fall-back hour resolved by each station's order,
+    in a spring-forward gap missing, each with its reason."""
     tz = tzinfo_for(timezone)
-    out = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns, UTC]")
-    nav = naive.notna().to_numpy() & ~aware_mask
     if isinstance(tz, _dt.timezone):
+        out = pd.Series(pd.NaT, index=naive.index, dtype="datetime64[ns, UTC]")
         out[nav] = (naive[nav] - pd.Timedelta(tz.utcoffset(None))).dt.tz_localize("UTC")
-    elif nav.any():
-        loc_nat = naive.dt.tz_localize(tz, ambiguous="NaT", nonexistent="NaT")
-        loc_dst = naive.dt.tz_localize(tz, ambiguous=np.ones(n, bool), nonexistent="NaT")
-        nonexistent = nav & loc_dst.isna().to_numpy()
-        ambiguous = nav & loc_nat.isna().to_numpy() & ~nonexistent
-        resolved = loc_nat.copy()
-        if ambiguous.any():
-            _check_order_at_fall_back(naive, station, ambiguous, source)
-            is_dst, unresolved = _resolve_ambiguous(naive, station, ambiguous)
-            ok = ambiguous & ~unresolved
-            flags = np.where(ok, is_dst, True)
-            fixed = naive.dt.tz_localize(tz, ambiguous=flags, nonexistent="NaT")
-            resolved[ok] = fixed[ok]
-            for i in np.flatnonzero(unresolved):
-                reasons[i] = (f"local time {naive.iloc[i]} occurs twice at the daylight-saving change "
-                              "and the station's time order does not tell which is meant")
-        for i in np.flatnonzero(nonexistent):
-            reasons[i] = f"local time {naive.iloc[i]} does not exist in {timezone} (daylight-saving gap)"
-        out[nav] = resolved[nav].dt.tz_convert("UTC")
-    out[aware_mask] = aware[aware_mask]
-    bad = out.isna().to_numpy()
-    for i in np.flatnonzero(bad):
-        if reasons[i] is None:
-            if time_columns:
-                vals = "/".join(clip(frame[c].iloc[i]) for c in time_columns)
-                reasons[i] = f"cannot build a time from {'/'.join(time_columns)} = {vals}"
-            else:
-                raw = frame[time_column].iloc[i]
-                reasons[i] = ("time is missing" if (pd.isna(raw) or str(raw).strip() == "")
-                              else f"cannot parse time {clip(raw)!r}")
-    return out, bad, reasons, layout
+        return out
+    if not nav.any():
+        return pd.Series(pd.NaT, index=naive.index, dtype="datetime64[ns, UTC]")
+    n = len(naive)
+    loc_nat = naive.dt.tz_localize(tz, ambiguous="NaT", nonexistent="NaT")
+    loc_dst = naive.dt.tz_localize(tz, ambiguous=np.ones(n, bool), nonexistent="NaT")
+    nonexistent = nav & loc_dst.isna().to_numpy()
+    ambiguous = nav & loc_nat.isna().to_numpy() & ~nonexistent
+    resolved = loc_nat.copy()
+    if ambiguous.any():
+        _check_order_at_fall_back(naive, station, ambiguous, source)
+        is_dst, unresolved = _resolve_ambiguous(naive, station, ambiguous)
+        ok = ambiguous & ~unresolved
+        flags = np.where(ok, is_dst, True)
+        fixed = naive.dt.tz_localize(tz, ambiguous=flags, nonexistent="NaT")
+        resolved[ok] = fixed[ok]
+        for i in np.flatnonzero(unresolved):
+            reasons[i] = (f"local time {naive.iloc[i]} occurs twice at the daylight-saving change "
+                          "and the station's time order does not tell which is meant")
+    for i in np.flatnonzero(nonexistent):
+        reasons[i] = f"local time {naive.iloc[i]} does not exist in {timezone} (daylight-saving gap)"
+    return resolved.dt.tz_convert("UTC")
 
 
 def _check_order_at_fall_back(naive: pd.Series, station: pd.Series, ambiguous: np.ndarray, source: str) -> None:
