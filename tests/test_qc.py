@@ -110,7 +110,7 @@ def test_buddy_flags_an_isolated_bias_not_a_cold_pool():
     inner = int(np.argmin(np.hypot(x - x.mean(), y - y.mean())))  # inside its neighbours: an interpolation
     biased = field.copy()
     biased[:, inner] += 3.0
-    passed, bad, _ = qc.agrees_with_neighbours(biased, x, y, z, floor=1.5, sigma=0.1)
+    passed, bad, _ = qc.agrees_with_neighbours(biased, x, y, z, qc.BuddyRules(floor=1.5, sigma=0.1))
     assert (~passed[:, inner]).mean() > 0.9
     others = np.delete(~passed, inner, axis=1)
     assert others.mean() < 0.02
@@ -118,7 +118,7 @@ def test_buddy_flags_an_isolated_bias_not_a_cold_pool():
     pool = field.copy()
     low = int(np.argmin(z))
     pool[:, low] -= 2.5
-    passed, bad, _ = qc.agrees_with_neighbours(pool, x, y, z, floor=1.5, sigma=0.1, relaxed=np.ones(40, bool), relax=2.0)
+    passed, bad, _ = qc.agrees_with_neighbours(pool, x, y, z, qc.BuddyRules(floor=1.5, sigma=0.1, relax=2.0), relaxed=np.ones(40, bool))
     assert not bad[:, low].any()
 
 

@@ -54,14 +54,29 @@ def solar_elevation(times: pd.DatetimeIndex | np.ndarray, latitude: float, longi
     return np.rad2deg(np.arcsin(np.clip(sin_el, -1, 1)))
 
 
-def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, *,
-                           neighbours: int = 6, max_distance_m: float = 0.0, suspect_z: float = 3.0,
-                           bad_z: float = 6.0, floor: float = 0.0, relaxed: np.ndarray | None = None,
-                           relax: float = 2.0, sigma: float = 1.0,
-                           predictors: np.ndarray | None = None, passes: int = 2) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+@dataclass(frozen=True)
+class BuddyRules:
+    """The spatial test's settings (``[qc]`` spatial_* keys): neighbours per prediction, the farthest a
+    neighbour may be (0: any), the suspect and bad thresholds in robust standard deviations, the smallest
+    residual that can fail [unit], the factor on the thresholds where relaxed, one reading's standard
+    uncertainty [unit] (the fits' weights), and the passes."""
+
+    neighbours: int = 6
+    max_distance_m: float = 0.0
+    suspect_z: float = 3.0
+    bad_z: float = 6.0
+    floor: float = 0.0
+    relax: float = 2.0
+    sigma: float = 1.0
+    passes: int = 2
+
+
+def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray,
+                           rules: BuddyRules = BuddyRules(), *, relaxed: np.ndarray | None = None,
+                           predictors: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Spatial (buddy) test on a (n_times, n_stations) grid.
 
-    Each station is predicted from its ``neighbours`` nearest stations by a
+    Each station is predicted from its ``rules.neighbours`` nearest stations by a
     leave-one-out plane fit evaluated at the station, after adjusting all
     values to the station's height with the vertical gradient fitted over
     the whole network at that time (elevation-aware, and stable where a
@@ -86,37 +101,46 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
 
     vals = np.asarray(values, float)
     n_t, n_s = vals.shape
-    k = min(neighbours, n_s - 1)
+    k = min(rules.neighbours, n_s - 1)
     if k < 3:
         return np.ones(vals.shape, bool), np.zeros(vals.shape, bool), np.full(vals.shape, np.nan)
     tree = cKDTree(np.column_stack([x, y]))
     dist, idx = tree.query(np.column_stack([x, y]), k=k + 1)
-    members = [idx[i, 1:] for i in range(n_s)]
-    far = dist[:, 1:].max(axis=1) > max_distance_m if max_distance_m > 0 else None
+    far = dist[:, 1:].max(axis=1) > rules.max_distance_m if rules.max_distance_m > 0 else None
+    hood = _Neighbourhood(np.asarray(x), np.asarray(y), np.asarray(z, float), [idx[i, 1:] for i in range(n_s)], far)
     base = vals if predictors is None else np.asarray(predictors, float)
-    pred, leverage = _buddy_predictions(base, x, y, z, members, sigma, far)
-    judge = dict(suspect_z=suspect_z, bad_z=bad_z, floor=floor, relaxed=relaxed, relax=relax)
-    for _ in range(passes - 1):
+    pred, leverage = _buddy_predictions(base, hood, rules.sigma)
+    for _ in range(rules.passes - 1):
         # later passes leave out the values the previous pass failed; the fits are independent per
         # time, so only the times where a predictor changed are fitted again (the same numbers)
-        first, _, _ = _judge(vals, pred, leverage, **judge)
+        first, _, _ = _judge(vals, pred, leverage, rules, relaxed)
         src = np.where(first, base, np.nan)
         rows = np.flatnonzero((np.isnan(src) != np.isnan(base)).any(axis=1))
         if rows.size:
             pred = pred.copy()
             leverage = leverage.copy()
-            pred[rows], leverage[rows] = _buddy_predictions(src[rows], x, y, z, members, sigma, far)
+            pred[rows], leverage[rows] = _buddy_predictions(src[rows], hood, rules.sigma)
         base = src
-    return _judge(vals, pred, leverage, **judge)
+    return _judge(vals, pred, leverage, rules, relaxed)
 
 
-def _buddy_predictions(src: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, members: list[np.ndarray],
-                       sigma: float, far: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+@dataclass
+class _Neighbourhood:
+    """Station positions [m], each station's neighbours, and the stations whose neighbours are too far."""
+
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    members: list[np.ndarray]
+    far: np.ndarray | None
+
+
+def _buddy_predictions(src: np.ndarray, hood: _Neighbourhood, sigma: float) -> tuple[np.ndarray, np.ndarray]:
     """Leave-one-out predictions of every station from its neighbours, and their leverage (see above)."""
     from ..estimate.planes import fit_planes
 
+    x, y, zz = hood.x, hood.y, hood.z
     n_t, n_s = src.shape
-    zz = np.asarray(z, float)
     centres = np.column_stack([x, y])
     # one vertical gradient per time from the whole network (stable), then a plain plane among
     # the neighbours of the lapse-adjusted values: pred_s = plane(v - g z)(s) + g z_s
@@ -126,16 +150,16 @@ def _buddy_predictions(src: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndar
         gamma = np.nan_to_num(net.grad_z[:, 0])
     z0 = np.where(np.isfinite(zz), zz, 0.0)
     adjusted = src - gamma[:, None] * z0[None, :]
-    fit = fit_planes(adjusted, x, y, members, sigma=sigma, centres=centres, residuals=False)
+    fit = fit_planes(adjusted, x, y, hood.members, sigma=sigma, centres=centres, residuals=False)
     pred = fit.value + gamma[:, None] * z0[None, :]
     leverage = fit.var_value / sigma ** 2  # prediction variance in units of one reading's
-    if far is not None:
-        pred[:, far] = np.nan
+    if hood.far is not None:
+        pred[:, hood.far] = np.nan
     return pred, leverage
 
 
-def _judge(vals: np.ndarray, pred: np.ndarray, leverage: np.ndarray, *, suspect_z: float, bad_z: float,
-           floor: float, relaxed: np.ndarray | None, relax: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _judge(vals: np.ndarray, pred: np.ndarray, leverage: np.ndarray, rules: BuddyRules,
+           relaxed: np.ndarray | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Studentised residuals against the robust spread of each time: (passed, bad, residual)."""
     r = vals - pred
     # studentise: an extrapolated prediction (station outside its neighbours) is less certain
@@ -145,9 +169,9 @@ def _judge(vals: np.ndarray, pred: np.ndarray, leverage: np.ndarray, *, suspect_
     dev = rs - med
     # relaxed (night, light wind) only for values colder/lower than predicted: cold pools are real
     cold_relax = np.zeros(vals.shape, bool) if relaxed is None else (np.asarray(relaxed)[:, None] & (dev < 0))
-    scale = np.where(cold_relax, relax, 1.0)
-    thr_s = np.fmax(suspect_z * mad, floor) * scale
-    thr_b = np.fmax(bad_z * mad, 2 * floor) * scale
+    scale = np.where(cold_relax, rules.relax, 1.0)
+    thr_s = np.fmax(rules.suspect_z * mad, rules.floor) * scale
+    thr_b = np.fmax(rules.bad_z * mad, 2 * rules.floor) * scale
     fin = np.isfinite(dev)
     passed = ~(fin & (np.abs(dev) > thr_s))
     bad = fin & (np.abs(dev) > thr_b) & ~cold_relax
@@ -234,11 +258,11 @@ class SpatialTest:
         a, b = (data.shape[0] * part) // len(results), (data.shape[0] * (part + 1)) // len(results)
         floor = self.th["spatial_floor"].get(v, np.log(2.0) if is_pm(v) else 0.0)
         sigma = self.cfg["uncertainty"]["sensor"]
-        opts = dict(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
-                    suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor, relaxed=relaxed[a:b],
-                    relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
+        rules = BuddyRules(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
+                           suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor,
+                           relax=qcfg["spatial_relax"], sigma=float(sigma.get(v, 1.0)))
         with np.errstate(all="ignore"):  # thread-safe, unlike warnings.catch_warnings (this runs on a thread)
-            passed, bad, _ = agrees_with_neighbours(data[a:b], self.sx, self.sy, self.sz, **opts)
+            passed, bad, _ = agrees_with_neighbours(data[a:b], self.sx, self.sy, self.sz, rules, relaxed=relaxed[a:b])
         results[part] = (passed, bad)
 
     def finish(self, v: str, fired_v: dict[str, np.ndarray], finite: np.ndarray) -> None:
