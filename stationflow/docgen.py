@@ -1,4 +1,5 @@
-"""Generate the CLI reference (docs/cli.md) from the commands' own --help.
+"""Generate the CLI reference (docs/cli.md) from the commands' own --help, the configuration reference and
+the column table of docs/outputs.md (from :mod:`stationflow.schema`).
 
 ``python -m stationflow.docgen`` rewrites docs/cli.md; a test fails when the
 file is stale.
@@ -107,15 +108,35 @@ def config_reference() -> str:
     return "\n".join(parts)
 
 
+COLUMNS_BEGIN = "<!-- columns: generated from stationflow/schema.py -->"
+COLUMNS_END = "<!-- end of generated columns -->"
+
+
+def outputs_page(current: str) -> str:
+    """docs/outputs.md with its column table regenerated from :data:`stationflow.schema.COLUMNS`."""
+    from .schema import markdown_table
+
+    head, rest = current.split(COLUMNS_BEGIN, 1)
+    _, tail = rest.split(COLUMNS_END, 1)
+    return f"{head}{COLUMNS_BEGIN}\n{markdown_table()}{COLUMNS_END}{tail}"
+
+
+#: whole pages generated from the code
 PAGES = {"cli.md": cli_reference, "configuration.md": config_reference}
+#: pages whose generated part sits between markers in hand-written text
+SECTIONS = {"outputs.md": outputs_page}
 
 
 def write_all(folder: Path) -> list[Path]:
-    """Regenerate the generated pages in ``folder``."""
+    """Regenerate the generated pages and sections in ``folder``."""
     out = []
     for name, fn in PAGES.items():
         p = folder / name
         p.write_text(fn(), encoding="utf-8")
+        out.append(p)
+    for name, fn in SECTIONS.items():
+        p = folder / name
+        p.write_text(fn(p.read_text(encoding="utf-8")), encoding="utf-8")
         out.append(p)
     return out
 

@@ -249,10 +249,35 @@ def test_every_command_has_help_with_an_example_and_docs():
     assert "CAUTION: a decision aid only" in budget_help and "extension services" in budget_help
 
 
-@pytest.mark.parametrize("page", sorted(docgen.PAGES))
+@pytest.mark.parametrize("page", sorted(docgen.PAGES) + sorted(docgen.SECTIONS))
 def test_generated_docs_are_current(page):
-    assert (ROOT / "docs" / page).read_text(encoding="utf-8") == docgen.PAGES[page](), \
-        f"docs/{page} is stale: run python -m stationflow.docgen"
+    current = (ROOT / "docs" / page).read_text(encoding="utf-8")
+    want = docgen.PAGES[page]() if page in docgen.PAGES else docgen.SECTIONS[page](current)
+    assert current == want, f"docs/{page} is stale: run python -m stationflow.docgen docs"
+
+
+def test_every_output_column_is_in_the_schema(tmp_path):
+    # the schema is the one description of the columns: every column a budget writes is in it, with a unit
+    from typer.testing import CliRunner
+
+    from stationflow import schema
+
+    frost = ROOT / "sample_data" / "frost"
+    res = CliRunner().invoke(app, ["budget", "--stations", str(frost / "stations.csv"), "--obs",
+                                   str(frost / "observations.csv"), "--config", str(frost / "config.toml"),
+                                   "--out", str(tmp_path), "--quiet"])
+    assert res.exit_code == 0, res.output
+    import pyarrow.parquet as pq
+
+    names = pq.read_schema(tmp_path / "budget.parquet").names
+    assert names[:len(schema.TABLE_COLUMNS)] == schema.TABLE_COLUMNS
+    assert set(names) <= set(schema.BY_NAME), set(names) - set(schema.BY_NAME)
+    import xarray as xr
+
+    with xr.open_dataset(tmp_path / "budget.nc") as ds:
+        for name in ds.data_vars:
+            assert ds[name].attrs["long_name"] == schema.BY_NAME[name].long_name or name == "value", name
+            assert ds[name].attrs.get("units") == schema.unit_of(name, "K"), name
 
 
 def test_every_command_and_config_key_is_documented():

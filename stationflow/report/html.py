@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import base64
 import html
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -82,20 +83,32 @@ def _table(frame: pd.DataFrame, *, max_rows: int = 60) -> str:
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>{more}"
 
 
-def write_report(path: str | Path, *, title: str, summary: list[tuple[str, str]], periods: list[str],
-                 quality: list[str], cluster_table: pd.DataFrame, figures: list[tuple[str, Path]],
-                 method: list[str], files: list[str], kind: str = "other") -> Path:
-    """Write report.html from already computed pieces (all text is escaped here); ``kind`` picks the cautions."""
+@dataclass
+class Page:
+    """The pieces of report.html, computed before it is written (all text is escaped when written)."""
+
+    title: str
+    summary: list[tuple[str, str]]
+    periods: list[str]
+    quality: list[str]
+    cluster_table: pd.DataFrame
+    method: list[str]
+    columns: list[tuple[str, str, str]]  # (name, unit, meaning) of the budget table's columns
+    kind: str = "other"  # temperature, concentration or other: which cautions
+
+
+def write_report(path: str | Path, page: Page, figures: list[tuple[str, Path]], files: list[str]) -> Path:
+    """Write report.html from ``page``, the finished ``figures`` (caption, PNG) and the list of ``files``."""
     esc = html.escape
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{esc(title)}</title>"
-             f"<style>{CSS}</style></head><body>", f"<h1>{esc(title)}</h1>"]
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>{esc(page.title)}</title>"
+             f"<style>{CSS}</style></head><body>", f"<h1>{esc(page.title)}</h1>"]
     parts.append('<div class="caution"><strong>Decision aid only.</strong> ' + esc(DECISION_AID) + "</div>")
     parts.append("<h2>What was computed</h2><table>" +
-                 "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in summary) + "</table>")
+                 "".join(f"<tr><th>{esc(k)}</th><td>{esc(v)}</td></tr>" for k, v in page.summary) + "</table>")
     parts.append("<h2>Main periods</h2>")
-    if periods:
+    if page.periods:
         items = []
-        for line in periods:
+        for line in page.periods:
             cls = "advective" if " advective " in line else "in_situ" if " in-situ " in line else "mixed"
             items.append(f'<li class="reg-{cls}">{esc(line)}</li>')
         parts.append("<ul>" + "".join(items) + "</ul>")
@@ -104,14 +117,19 @@ def write_report(path: str | Path, *, title: str, summary: list[tuple[str, str]]
                      "in-situ periods) with its mean standard error; mixed periods give both terms.</p>")
     else:
         parts.append("<p>No period of three or more steps had a clear regime.</p>")
-    parts.append("<h2>How good is it</h2><ul>" + "".join(f"<li>{esc(q)}</li>" for q in quality) + "</ul>")
-    parts.append("<h2>Clusters</h2>" + _table(cluster_table))
+    parts.append("<h2>How good is it</h2><ul>" + "".join(f"<li>{esc(q)}</li>" for q in page.quality) + "</ul>")
+    parts.append("<h2>Clusters</h2>" + _table(page.cluster_table))
     parts.append("<h2>Figures</h2>")
     for caption, fig in figures:
         parts.append(f"<h3>{esc(caption)}</h3>{_img(fig)}")
-    parts.append("<h2>Method</h2><ul>" + "".join(f"<li>{esc(m)}</li>" for m in method) + "</ul>")
-    parts.append("<h2>Cautions</h2>" + "".join(f'<div class="caution">{esc(c)}</div>' for c in cautions(kind)))
+    parts.append("<h2>Method</h2><ul>" + "".join(f"<li>{esc(m)}</li>" for m in page.method) + "</ul>")
+    parts.append("<h2>Cautions</h2>" + "".join(f'<div class="caution">{esc(c)}</div>' for c in cautions(page.kind)))
     parts.append("<h2>Files</h2><ul>" + "".join(f"<li><code>{esc(f)}</code></li>" for f in files) + "</ul>")
+    if page.columns:
+        parts.append("<h2>Columns of budget.csv and budget.parquet</h2><table><tr><th>column</th><th>unit</th>"
+                     "<th>meaning</th></tr>" + "".join(f"<tr><td><code>{esc(n)}</code></td><td>{esc(u)}</td>"
+                                                       f"<td>{esc(m)}</td></tr>" for n, u, m in page.columns)
+                     + "</table>")
     parts.append('<p class="muted">Made by stationflow.</p></body></html>')
     with atomic_write(path) as tmp:
         tmp.write_text("\n".join(parts), encoding="utf-8")

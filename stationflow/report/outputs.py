@@ -15,6 +15,7 @@ from .. import __version__
 from ..network.geometry import cluster_table
 from ..network.grid import format_duration
 from . import files, tables
+from .html import Page
 from .painter import Painter
 from .text import describe_period, display_zone, show_time
 
@@ -204,7 +205,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
              for p in run.periods]
     # everything the report says is prepared while the figures are still being drawn
     flags = _flag_counts(run.check)
-    pieces = _report_pieces(run, lines, inputs, flags) if report else None
+    pieces = _report_pieces(run, lines, inputs, flags, out) if report else None
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit, "reading": run.check.data.reading,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
@@ -265,28 +266,39 @@ VERTICAL_WORDS = {
 }
 
 
-def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
+def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path) -> Page:
     """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`."""
+    return Page(title=f"stationflow budget: {display_name(run.variable)}", summary=_summary_rows(run, inputs),
+                periods=lines, quality=_quality_lines(run, flags), cluster_table=_cluster_rows(run),
+                method=_method_lines(run), columns=_column_rows(out / "budget.parquet", run.unit),
+                kind=variable_kind(run.variable))
+
+
+def _summary_rows(run, inputs: dict) -> list[tuple[str, str]]:
+    """The report's "What was computed" table."""
     data = run.check.data
     obs = data.observations
-    t0, t1 = obs["time"].min(), obs["time"].max()
-    quantity = run.quantity
     zone = display_zone(run.check.config)
-    summary = [
+    return [
         ("Question", f"How much of the observed change of {display_name(run.variable)} was carried in by the wind "
                      "(advection) and how much was made in place (in-situ residual)?"),
         ("Data", f"{inputs.get('observations')} ({data.accounting['rows_read']:,} rows read, "
                  f"{data.accounting['rows_accepted']:,} accepted, {data.accounting['rows_rejected']:,} rejected)"),
         ("Stations", f"{len(data.stations)} stations; {len(run.network.usable)} of {len(run.network.clusters)} "
                      "clusters usable"),
-        ("Period", f"{show_time(t0, zone)} to {show_time(t1, zone)}"),
-        ("Quantity fitted", f"{quantity} [{run.unit}]"),
+        ("Period", f"{show_time(obs['time'].min(), zone)} to {show_time(obs['time'].max(), zone)}"),
+        ("Quantity fitted", f"{run.quantity} [{run.unit}]"),
         ("Analysis step / window", f"{format_duration(run.interval)} / {format_duration(run.window)} (centred)"),
         ("How the window was chosen", run.choices.get("window_source", "")),
         ("Station heights", VERTICAL_WORDS.get(run.choices.get("vertical", ""), str(run.choices.get("vertical", "")))),
         ("Sensor errors", noise_sentence(run)),
     ]
+
+
+def _quality_lines(run, flags: dict) -> list[str]:
+    """The report's "How good is it" list."""
     bs = run.summary
+    zone = display_zone(run.check.config)
     counts = bs.regime_counts()
     determined = bs.rows - counts.get("undetermined", 0)
     quality = [
@@ -302,13 +314,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     if run.choices.get("wind") == "none":
         quality.insert(0, "No wind was observed (no wind_speed and wind_from_direction columns): the advection cannot "
                           "be estimated, so every row is undetermined. Map the wind columns in [observations.columns].")
-    if bs.implausible_rows:
-        quality.append(f"{bs.implausible_rows} rows had advected and in-situ parts each over 5 times the observed change "
-                       "and cancelling (usually height differences or a broken sensor posing as a gradient): they are "
-                       "marked in the implausible column, labelled undetermined and left out of the main periods.")
-    else:
-        quality.append("No row had advected and in-situ parts that each far exceeded the change and cancelled "
-                       "(the implausible column).")
+    quality.append(_implausible_line(bs))
     if run.choices.get("qc_tests_off"):
         quality.append("Quality-control tests switched off in the configuration: "
                        + ", ".join(run.choices["qc_tests_off"]) + "; values they would have caught were used.")
@@ -329,10 +335,28 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
         if np.isfinite(inv).any():
             quality.append(f"Mast inversion (upper minus surface sensor): max {np.nanmax(inv):+.2f} K, "
                            f"min {np.nanmin(inv):+.2f} K; positive values mean warmer air aloft (radiative cooling).")
+    return quality
+
+
+def _implausible_line(bs) -> str:
+    if bs.implausible_rows:
+        return (f"{bs.implausible_rows} rows had advected and in-situ parts each over 5 times the observed change "
+                "and cancelling (usually height differences or a broken sensor posing as a gradient): they are "
+                "marked in the implausible column, labelled undetermined and left out of the main periods.")
+    return ("No row had advected and in-situ parts that each far exceeded the change and cancelled "
+            "(the implausible column).")
+
+
+def _cluster_rows(run) -> pd.DataFrame:
+    """The report's cluster table: shape, status and the steps in each regime that occurs."""
     ct = cluster_table(run.network)[["cluster", "stations", "area_km2", "min_angle", "noise_amplification", "status", "reason"]]
-    reg = bs.cluster_counts()
+    reg = run.summary.cluster_counts()
     reg = reg.loc[:, reg.sum(axis=0) > 0]  # the regimes that occur
-    ct = ct.merge(reg, left_on="cluster", right_index=True, how="left")
+    return ct.merge(reg, left_on="cluster", right_index=True, how="left")
+
+
+def _method_lines(run) -> list[str]:
+    """The report's "Method" list."""
     method = [
         "Stations are projected with a local azimuthal equidistant projection (WGS84) centred on the network.",
         "Clusters (Delaunay triangles by default) with poor shape are rejected; a weighted least-squares plane is "
@@ -354,9 +378,20 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict) -> dict:
     if run.quantity == "potential_temperature":
         method.append("Air temperature was converted to potential temperature (pressure observed or from the standard "
                       "atmosphere at the station elevation) so that height differences do not pose as horizontal gradients.")
-    title = f"stationflow budget: {display_name(run.variable)}"
-    return dict(title=title, summary=summary, periods=lines, quality=quality, cluster_table=ct, method=method,
-                kind=variable_kind(run.variable))
+    return method
+
+
+def _column_rows(parquet: Path, unit: str) -> list[tuple[str, str, str]]:
+    """(name, unit, meaning) of every column the budget table has, from :mod:`stationflow.schema`."""
+    import pyarrow.parquet as pq
+
+    from ..schema import BY_NAME, unit_of
+
+    try:
+        names = pq.read_schema(parquet).names
+    except (OSError, ValueError):
+        return []
+    return [(n, unit_of(n, unit) or "", BY_NAME[n].long_name) for n in names if n in BY_NAME]
 
 
 def error_model_record(run) -> dict:
@@ -388,9 +423,9 @@ def noise_sentence(run) -> str:
     return text
 
 
-def _report(out: Path, pieces: dict, figs) -> Path:
+def _report(out: Path, pieces: Page, figs) -> Path:
     """Write report.html from :func:`_report_pieces` and the finished figures (run.json is written next)."""
     from .html import write_report
 
     file_list = sorted(p.name for p in out.iterdir() if p.is_file() and not p.name.startswith("."))
-    return write_report(out / "report.html", figures=figs, files=sorted(set(file_list) | {"report.html", "run.json"}), **pieces)
+    return write_report(out / "report.html", pieces, figs, sorted(set(file_list) | {"report.html", "run.json"}))
