@@ -16,7 +16,7 @@ help:
 	@echo "make fuzz       the whole-pipeline property test with many examples (not part of make test)"
 	@echo "make coverage   the coverage suite at full size: do stated errors cover the truth? (not part of make test)"
 	@echo "make bench      run the benchmarks (not part of make test)"
-	@echo "make sample-data regenerate sample_data/ from stationflow.synthetic"
+	@echo "make sample-data regenerate sample_data/ from stationflow.scenarios.synthetic"
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -54,7 +54,7 @@ bench: $(STAMP_TEST)
 	$(BIN)/python benchmarks/run.py
 
 sample-data: $(STAMP_RUN)
-	$(BIN)/python -m stationflow.synthetic sample_data
+	$(BIN)/python -m stationflow.scenarios.synthetic sample_data
 
 clean:
 	rm -rf $(VENV) $(OUT) .pytest_cache

@@ -4,7 +4,7 @@ Run with ``make bench`` (or ``python benchmarks/run.py [size ...]``).  For each 
 synthetic network (a linear field carried by a turning wind, with a day-night in-situ heating and
 cooling cycle, 0.1 K noise, 5 % of values missing at random) as a long CSV and as Parquet under ``benchmarks/output/``, then reports:
 
-- the fitting core (`gradient.fit_planes` on Delaunay triangles) with complete data and with 5 %
+- the fitting core (`stationflow.estimate.planes.fit_planes` on Delaunay triangles) with complete data and with 5 %
   missing: station-values per second (input values) and member-values per second (values entering
   the fits: each station is in about six triangles);
 - the physical floor: a bare pyarrow parse of the input CSV plus a bare pyarrow write of the output
@@ -18,7 +18,7 @@ the ratio is best over best.  Larger sizes run once.  Before each timing the pre
 are removed and the page cache is written out (``os.sync``; neither timed), so that the run, like the
 floor, writes new files and no measurement pays for the previous one's output.
 
-Nothing here is asserted; ``tests/test_scale.py`` only checks that the harness runs on ``tiny``.
+Nothing here is asserted; ``tests/test_benchmarks.py`` only checks that the harness runs on ``tiny``.
 """
 
 from __future__ import annotations

@@ -4,7 +4,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stationflow.network import grid as align
+from stationflow.network import grid
 
 
 def _obs():
@@ -16,7 +16,7 @@ def _obs():
 
 
 def test_right_labelled_bins_and_means():
-    g = align.to_grid(_obs(), ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"))
+    g = grid.to_grid(_obs(), ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"))
     assert list(g.times) == list(pd.date_range("2026-01-01T00:00Z", periods=3, freq="10min"))
     a = g.values["air_temperature"][:, 0]
     # bin 00:00 holds 00:00; bin 00:10 holds (00:00, 00:10] = 00:05 and 00:10; bin 00:20 holds 00:12
@@ -26,7 +26,7 @@ def test_right_labelled_bins_and_means():
 
 
 def test_vector_mean_winds_and_calm():
-    g = align.to_grid(_obs(), ["A", "B"], [], interval=pd.Timedelta("10min"))
+    g = grid.to_grid(_obs(), ["A", "B"], [], interval=pd.Timedelta("10min"))
     # bin 00:10 at A: 5 m/s from the south and a calm report: vector mean v = (+5 + 0) / 2
     assert g.values["u"][1, 0] == pytest.approx(0.0, abs=1e-12)
     assert g.values["v"][1, 0] == pytest.approx(2.5)
@@ -36,20 +36,20 @@ def test_vector_mean_winds_and_calm():
 def test_usable_masks_drop_values():
     obs = _obs()
     use = {"air_temperature": np.array([True, False, True, True, True])}
-    g = align.to_grid(obs, ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"), usable=use)
+    g = grid.to_grid(obs, ["A", "B"], ["air_temperature"], interval=pd.Timedelta("10min"), usable=use)
     assert g.values["air_temperature"][1, 0] == 272.0
 
 
 def test_durations():
-    assert align.parse_duration("10min") == pd.Timedelta(minutes=10)
-    assert align.parse_duration("1.5h") == pd.Timedelta(minutes=90)
-    assert align.parse_duration("7D") == pd.Timedelta(days=7)
+    assert grid.parse_duration("10min") == pd.Timedelta(minutes=10)
+    assert grid.parse_duration("1.5h") == pd.Timedelta(minutes=90)
+    assert grid.parse_duration("7D") == pd.Timedelta(days=7)
     for bad in ("ten minutes", "0min", "5 parsecs"):
         with pytest.raises(ValueError):
-            align.parse_duration(bad)
-    assert align.format_duration(pd.Timedelta("1h")) == "1h"
-    assert align.format_duration(pd.Timedelta("90s")) == "90s"
-    assert align.infer_interval(_obs()) == pd.Timedelta(minutes=5)
+            grid.parse_duration(bad)
+    assert grid.format_duration(pd.Timedelta("1h")) == "1h"
+    assert grid.format_duration(pd.Timedelta("90s")) == "90s"
+    assert grid.infer_interval(_obs()) == pd.Timedelta(minutes=5)
 
 
 def _interval_by_groupby(obs: pd.DataFrame) -> pd.Timedelta:
@@ -74,7 +74,7 @@ def test_inferred_interval_of_mostly_regular_networks(seed):
         frames.append(pd.DataFrame({"station_id": f"S{k:02d}",
                                     "time": pd.Timestamp("2026-03-01", tz="UTC") + pd.to_timedelta(off, unit="s")}))
     obs = pd.concat(frames, ignore_index=True).sort_values("time", kind="stable").reset_index(drop=True)
-    assert align.infer_interval(obs) == _interval_by_groupby(obs)
+    assert grid.infer_interval(obs) == _interval_by_groupby(obs)
 
 
 @pytest.mark.parametrize("seed", range(40))
@@ -88,11 +88,11 @@ def test_inferred_interval_equals_the_group_by_definition(seed):
     if seed % 3 == 0:
         obs = obs.sample(frac=1, random_state=seed)  # not in time order
     if obs.groupby("station_id", observed=True)["time"].apply(lambda s: (s.sort_values().diff().dt.total_seconds() > 0).any()).any():
-        assert align.infer_interval(obs) == _interval_by_groupby(obs)
+        assert grid.infer_interval(obs) == _interval_by_groupby(obs)
     # QC finds the same interval on the same rows while they are in station order (the budget then reuses it)
     from stationflow import qc
 
     obs["air_temperature"] = 280.0 + rng.normal(0, 0.1, len(obs))
     st = pd.DataFrame({"station_id": ["A", "B", "C", "D"], "latitude": [45.0, 45.1, 45.0, 45.1],
                        "longitude": [7.0, 7.0, 7.1, 7.1], "elevation": 100.0})
-    assert qc.run_qc(obs, st).interval == align.infer_interval(obs)
+    assert qc.run_qc(obs, st).interval == grid.infer_interval(obs)

@@ -7,7 +7,7 @@ import pandas as pd
 import pytest
 
 from stationflow import config
-from stationflow import read as ingest
+from stationflow import read
 from stationflow.errors import ConfigError, IngestError
 from stationflow.read.stations import station_labels
 
@@ -53,7 +53,7 @@ def _cfg(tmp_path: Path, text: str) -> config.Config:
 
 def test_messy_export(tmp_path, stations_file):
     obs = write_csv(tmp_path / "obs.csv", MESSY)
-    r = ingest.read(obs, stations_file, _cfg(tmp_path, MESSY_TOML))
+    r = read.read(obs, stations_file, _cfg(tmp_path, MESSY_TOML))
     assert r.accounting == {"rows_read": 6, "rows_accepted": 4, "rows_rejected": 2, "duplicates_collapsed": 0}
     assert r.rejected["line"].tolist() == [6, 7]
     assert "expected 7 fields, found 1" in r.rejected["reason"].iloc[0]
@@ -82,7 +82,7 @@ def test_spring_forward_gap_rejected(tmp_path, stations_file):
     # 2026-03-08 02:30 does not exist in America/Denver (clocks jump from 02:00 to 03:00)
     obs = _dst_obs(tmp_path, ["A,2026-03-08 01:30,1", "A,2026-03-08 02:30,2", "A,2026-03-08 03:30,3"])
     cfg = config.from_dict({"observations": {"timezone": "America/Denver"}})
-    r = ingest.read(obs, stations_file, cfg)
+    r = read.read(obs, stations_file, cfg)
     assert r.rejected["line"].tolist() == [3]
     assert "does not exist in America/Denver" in r.rejected["reason"].iloc[0]
     t = r.observations["time"].tolist()
@@ -95,7 +95,7 @@ def test_fall_back_resolved_from_station_order(tmp_path, stations_file):
             "A,2026-11-01 01:30,5", "A,2026-11-01 02:00,6", "B,2026-11-01 01:30,7"]
     obs = _dst_obs(tmp_path, rows)
     cfg = config.from_dict({"observations": {"timezone": "America/Denver"}})
-    r = ingest.read(obs, stations_file, cfg)
+    r = read.read(obs, stations_file, cfg)
     a = r.observations[r.observations["station_id"] == "A"].sort_values("time")
     assert a["air_temperature"].tolist() == [1, 2, 3, 4, 5, 6]
     assert a["time"].tolist() == [utc("2026-11-01 06:30"), utc("2026-11-01 07:00"), utc("2026-11-01 07:30"),
@@ -108,7 +108,7 @@ def test_fall_back_resolved_from_station_order(tmp_path, stations_file):
 def test_fixed_offset_and_explicit_offsets(tmp_path, stations_file):
     obs = _dst_obs(tmp_path, ["A,2026-05-01 08:00,1", "B,2026-05-01T00:00:00Z,2", "C,2026-05-01T09:00:00+09:00,3"])
     cfg = config.from_dict({"observations": {"timezone": "+08:00"}})
-    r = ingest.read(obs, stations_file, cfg)
+    r = read.read(obs, stations_file, cfg)
     assert r.observations["time"].tolist() == [utc("2026-05-01 00:00")] * 3
 
 
@@ -116,7 +116,7 @@ def test_time_columns_assembled(tmp_path, stations_file):
     text = "station_id,year,month,day,hour,air_temperature\nA,2026,1,2,3,270\nA,2026,1,2,24,271\nA,2026,13,2,3,272\n"
     obs = write_csv(tmp_path / "o.csv", text)
     cfg = config.from_dict({"observations": {"time_columns": ["year", "month", "day", "hour"]}})
-    r = ingest.read(obs, stations_file, cfg)
+    r = read.read(obs, stations_file, cfg)
     assert r.observations["time"].tolist() == [utc("2026-01-02 03:00"), utc("2026-01-03 00:00")]
     assert r.rejected["line"].tolist() == [4]
     assert "cannot build a time from year/month/day/hour = 2026/13/2/3" in r.rejected["reason"].iloc[0]
@@ -127,7 +127,7 @@ def test_wide_layout(tmp_path, stations_file):
     obs = write_csv(tmp_path / "w.csv", text)
     cfg = config.from_dict({"observations": {"layout": "wide", "wide_variable": "air_temperature",
                                              "units": {"air_temperature": "degC"}}})
-    r = ingest.read(obs, stations_file, cfg)
+    r = read.read(obs, stations_file, cfg)
     assert r.accounting["rows_read"] == 3 and r.accounting["rows_rejected"] == 1
     assert r.rejected["line"].tolist() == [3]
     assert len(r.observations) == 6  # 3 + 3 values from lines 2 and 4 (the empty C cell is missing, kept as NaN)
@@ -139,7 +139,7 @@ def test_parquet_input(tmp_path, stations_file):
                        "air_temperature": [270.0, np.inf]})
     p = tmp_path / "o.parquet"
     df.to_parquet(p)
-    r = ingest.read(p, stations_file, config.Config())
+    r = read.read(p, stations_file, config.Config())
     assert r.accounting == {"rows_read": 2, "rows_accepted": 1, "rows_rejected": 1, "duplicates_collapsed": 0}
     assert r.rejected["line"].tolist() == [2]
 
@@ -148,18 +148,18 @@ def test_stations_from_observation_rows(tmp_path):
     text = ("station_id,time,latitude,longitude,elevation,air_temperature\n"
             "A,2026-01-01T00:00Z,45.0,10.0,100,270\nB,2026-01-01T00:00Z,45.1,10.0,120,271\n"
             "A,2026-01-01T00:10Z,45.0,10.0,100,270.5\n")
-    r = ingest.read(write_csv(tmp_path / "o.csv", text), None, config.Config())
+    r = read.read(write_csv(tmp_path / "o.csv", text), None, config.Config())
     assert r.stations["station_id"].tolist() == ["A", "B"]
     assert r.stations["elevation"].tolist() == [100.0, 120.0]
     moved = text + "B,2026-01-01T00:10Z,45.2,10.0,120,271\n"
     with pytest.raises(IngestError, match="station 'B' changes coordinates between lines 3 and 5"):
-        ingest.read(write_csv(tmp_path / "o2.csv", moved), None, config.Config())
+        read.read(write_csv(tmp_path / "o2.csv", moved), None, config.Config())
 
 
 def test_duplicates_collapsed_and_conflicts_rejected(tmp_path, stations_file):
     text = ("station_id,time,air_temperature\nA,2026-01-01T00:00Z,270\nA,2026-01-01T00:00Z,270\n"
             "B,2026-01-01T00:00Z,271\nB,2026-01-01T00:00Z,275\nC,2026-01-01T00:00Z,272\n")
-    r = ingest.read(write_csv(tmp_path / "o.csv", text), stations_file, config.Config())
+    r = read.read(write_csv(tmp_path / "o.csv", text), stations_file, config.Config())
     assert r.accounting == {"rows_read": 5, "rows_accepted": 3, "rows_rejected": 2, "duplicates_collapsed": 1}
     assert r.rejected["line"].tolist() == [4, 5]
     assert r.rejected["reason"].iloc[0] == "conflicts with line 5 (same station and time, different values)"
@@ -175,7 +175,7 @@ def test_row_order_does_not_change_the_result(tmp_path, stations_file, extra):
     results = []
     for order in (rows, sorted(rows), [rows[i] for i in rng.permutation(len(rows))]):
         text = "station_id,time,air_temperature\n" + "\n".join(order) + "\n" + extra
-        results.append(ingest.read(write_csv(tmp_path / "o.csv", text), stations_file, config.Config()))
+        results.append(read.read(write_csv(tmp_path / "o.csv", text), stations_file, config.Config()))
     for r in results:
         pd.testing.assert_frame_equal(r.observations, results[0].observations)
         assert r.accounting == results[0].accounting
@@ -190,7 +190,7 @@ def test_row_order_does_not_change_the_result(tmp_path, stations_file, extra):
 def test_real_netcdf_station_files(arm_dir, arm_config):
     # ARM SGP met b1 files (doi:10.5439/1786358): coordinates from lat/lon/alt, units from attributes
     cfg = config.load(arm_config)
-    r = ingest.read(arm_dir, None, cfg)
+    r = read.read(arm_dir, None, cfg)
     assert len(r.stations) == 13
     e9 = r.stations.set_index("station_id").loc["E9"]
     assert e9["latitude"] == pytest.approx(37.133, abs=1e-3)
@@ -199,7 +199,7 @@ def test_real_netcdf_station_files(arm_dir, arm_config):
     assert r.units["air_temperature"] == "K" and r.units["air_pressure"] == "Pa"
     assert r.accounting["rows_read"] == 78 and r.accounting["rows_rejected"] == 0
     # the same values as the long CSV export of the same files
-    c = ingest.read(arm_dir / "sgp_met_1min_long.csv", None, cfg)
+    c = read.read(arm_dir / "sgp_met_1min_long.csv", None, cfg)
     m = r.observations.merge(c.observations, on=["station_id", "time"], suffixes=("_nc", "_csv"))
     assert len(m) == 78
     np.testing.assert_allclose(m["air_temperature_nc"], m["air_temperature_csv"], atol=1e-4)
@@ -211,7 +211,7 @@ def test_real_netcdf_station_files(arm_dir, arm_config):
 def test_unknown_timezone_is_a_config_error(tmp_path, stations_file):
     obs = _dst_obs(tmp_path, ["A,2026-05-01 08:00,1"])
     with pytest.raises(ConfigError, match="not an IANA time zone"):
-        ingest.read(obs, stations_file, config.from_dict({"observations": {"timezone": "Mars/Olympus"}}))
+        read.read(obs, stations_file, config.from_dict({"observations": {"timezone": "Mars/Olympus"}}))
 
 
 @pytest.mark.parametrize("unused", [False, True])

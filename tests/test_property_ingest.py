@@ -7,7 +7,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from stationflow import config
-from stationflow import read as ingest
+from stationflow import read
 from stationflow.cli import app
 from stationflow.errors import StationflowError
 
@@ -41,7 +41,7 @@ def test_random_csv_is_accepted_or_clearly_refused(data):
         obs.write_bytes(data)
         cfg = config.from_dict({"observations": {"columns": {}, "units": {}}})
         try:
-            r = ingest.read(obs, _stations(tmp), cfg)
+            r = read.read(obs, _stations(tmp), cfg)
         except StationflowError as exc:
             msg = str(exc)
             assert msg and "\n" not in msg

@@ -208,10 +208,10 @@ def test_real_front_not_flagged_for_disagreeing(arm_dir, arm_config):
     # ARM SGP 2019-05-08 04 UTC (doi:10.5439/1786358): a real front splits the network into a
     # 16 degC west and a 20-23 degC east; neither side is flagged merely for disagreeing
     from stationflow import config
-    from stationflow import read as ingest
+    from stationflow import read
 
     cfg = config.load(arm_config)
-    data = ingest.read(arm_dir / "sgp_met_1min_long.csv", None, cfg)
+    data = read.read(arm_dir / "sgp_met_1min_long.csv", None, cfg)
     res = qc.run_qc(data.observations, data.stations, cfg)
     spatial = (res.tests["air_temperature"] & qc.TEST_BITS["spatial"]) > 0
     assert not spatial.any(), data.observations.loc[spatial, "station_id"].unique()

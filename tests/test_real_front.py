@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 from stationflow import config
-from stationflow import read as ingest
+from stationflow import read
 from stationflow.estimate.kinematics import fit_wind, kinematics
 from stationflow.estimate.planes import fit_planes
 from stationflow.network import geometry
@@ -24,7 +24,7 @@ def front(tmp_path_factory):
     p = tmp_path_factory.mktemp("arm") / "arm.toml"
     p.write_text(ARM_TOML)
     cfg = config.load(p)
-    data = ingest.read(ARM / "sgp_met_1min_long.csv", None, cfg)
+    data = read.read(ARM / "sgp_met_1min_long.csv", None, cfg)
     net = geometry.build_network(data.stations, cfg)
     return data, net
 

@@ -64,7 +64,7 @@ class BudgetSettings:
     dominance: float = 0.67
     min_rate: float = 0.0  # [unit h-1]
     vertical_regression: bool = False
-    model_error: bool = True  # add the model error (the field is not a plane; errormodel) to gradient variances
+    model_error: bool = True  # add the model error (the field is not a plane; estimate.uncertainty) to gradient variances
     model_half_window: int = 0  # smoothing of the model error, steps each side (0: automatic, see model_steps)
     #: what the model error needs that depends only on the network (computed once per run by the pipeline;
     #: computed here when None): (CurvatureGeometry, null level of the curvature part, of the structure part)

@@ -232,7 +232,7 @@ class SpatialTest:
         return sp
 
     def bin_means(self, v: str, usable: np.ndarray | None = None) -> np.ndarray:
-        """(time, station) bin means of the finite (and ``usable``) values of ``v``, as :func:`align.to_grid` gives."""
+        """(time, station) bin means of the finite (and ``usable``) values of ``v``, as :func:`stationflow.network.grid.to_grid` gives."""
         from ..network.grid import cell_means
 
         ok = self.inside if usable is None else self.inside & usable

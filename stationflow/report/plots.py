@@ -356,7 +356,7 @@ def budget_timeseries(summary, path: str | Path, *, unit: str, clusters: list[in
                       max_panels: int = 8, tz: str | None = None) -> Path:
     """Tendency, advection and residual with 95 % bands per cluster, regimes shaded.
 
-    ``summary`` is a :class:`stationflow.summary.BudgetSummary`; ``clusters``
+    ``summary`` is a :class:`stationflow.report.summary.BudgetSummary`; ``clusters``
     are indices into its clusters (default: those with the most determined steps).
     """
     return draw_timeseries(timeseries_panels(summary, clusters=clusters, max_panels=max_panels, tz=tz), path,

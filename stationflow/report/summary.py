@@ -146,7 +146,7 @@ class BudgetSummary:
         return (float(vals[:k].max()) + float(vals[k])) / 2
 
     def periods(self, unit: str, **kw) -> list[dict]:
-        """Main periods (runs of one regime), see :func:`stationflow.budget.periods_from_arrays`."""
+        """Main periods (runs of one regime), see :func:`stationflow.estimate.budget.periods_from_arrays`."""
         return periods_from_arrays(self.times, self.clusters["cluster"].astype(str).to_numpy(),
                                    {"regime": self.regime, **self.terms}, unit=unit, **kw)
 

@@ -15,7 +15,7 @@ from typing import Callable
 import pandas as pd
 
 from .. import qc
-from .. import read as ingest
+from .. import read
 from ..config import Config
 from ..errors import ConfigError, NoUsableRows
 
@@ -32,7 +32,7 @@ def no_progress(_: str) -> None:
 class CheckResult:
     """What ``check`` found: the ingest result, the QC flags and summaries."""
 
-    data: ingest.IngestResult
+    data: read.IngestResult
     qc: qc.QCResult
     flags: pd.DataFrame
     periods: pd.DataFrame
@@ -44,7 +44,7 @@ class CheckResult:
 def run_check(obs: str | Path, stations: str | Path | None, config: Config, *, progress: Progress = no_progress) -> CheckResult:
     """Ingest and quality-control the observations."""
     progress("reading observations")
-    data = ingest.read(obs, stations, config)
+    data = read.read(obs, stations, config)
     if data.observations.empty:
         raise NoUsableRows(f"{obs}: no usable rows ({data.accounting['rows_rejected']} rejected; "
                            "see rejected_rows.csv for the line and reason of each)", data)

@@ -24,7 +24,7 @@ from typing import Iterator
 
 from ..config import Config
 from ..errors import ConfigError
-from ..network import grid as align
+from ..network import grid
 from .check import Progress, no_progress
 from .partitions import derive, partition_rows, partitions, run_partition
 from .plan import BudgetPlan
@@ -92,7 +92,7 @@ def run_on_dask(plan: BudgetPlan, sinks: list, config: Config, *, scheduler: str
     started on loopback and closed afterwards.
     """
     partition = config["budget"]["chunk"] or DEFAULT_PARTITION
-    steps = max(1, int(align.parse_duration(partition) / plan.interval))
+    steps = max(1, int(grid.parse_duration(partition) / plan.interval))
     bounds = partitions(len(plan.times), steps)
     client, cluster = _client(scheduler, n_workers=n_workers)
     try:

@@ -15,7 +15,7 @@ from ..config import Config
 from ..estimate.budget import compute_budget, row_mean_var
 from ..estimate.planes import fit_planes
 from ..network import geometry
-from ..network import grid as align
+from ..network import grid
 from .check import Progress, no_progress
 from .plan import AUTO_CHUNK, BudgetPlan
 from .sinks import Partition, deliver
@@ -42,11 +42,11 @@ def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: in
     """
     times = plan.times[first:last + 1]
     names = [c for c in ("q", "u", "v", "wind_speed", "t_air") if c in rows]
-    grid = align.to_grid(rows, plan.ids, names, interval=plan.interval, start=times[0], end=times[-1])
-    values = grid.values["q"]
-    if "u" in grid.values:
-        ug, vg = geometry.rotate_to_grid(grid.values["u"], grid.values["v"], plan.convergence[None, :])
-        speed = grid.values.get("wind_speed")
+    cells = grid.to_grid(rows, plan.ids, names, interval=plan.interval, start=times[0], end=times[-1])
+    values = cells.values["q"]
+    if "u" in cells.values:
+        ug, vg = geometry.rotate_to_grid(cells.values["u"], cells.values["v"], plan.convergence[None, :])
+        speed = cells.values.get("wind_speed")
     else:
         ug = vg = np.full(values.shape, np.nan)
         speed = None
@@ -55,9 +55,9 @@ def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: in
         values, lapse = remove_lapse(values, plan)
     terms = compute_budget(values, ug, vg, plan.x, plan.y, plan.members, plan.settings, z=plan.z, wind_speed=speed,
                            lapse=lapse)
-    if plan.masts is not None and "t_air" in grid.values:
+    if plan.masts is not None and "t_air" in cells.values:
         upper, partner = plan.masts
-        t = grid.values["t_air"]
+        t = cells.values["t_air"]
         inv, _ = row_mean_var(t[:, upper] - t[:, partner])  # no warnings machinery: this may run on a thread
         terms["inversion"] = np.broadcast_to(inv[:, None], terms["value"].shape).copy()
     return terms
@@ -68,7 +68,7 @@ def remove_lapse(values: np.ndarray, plan: BudgetPlan
     """Take the measured vertical gradient out of ``values`` (n_times, n_stations) before the horizontal fits.
 
     One plane with height as a regressor is fitted per time through every
-    station with a height (:func:`gradient.fit_planes`, the same estimator;
+    station with a height (:func:`stationflow.estimate.planes.fit_planes`, the same estimator;
     networks of any size), its vertical coefficient gamma(t) [unit m-1]
     with the larger of its prior and posterior variance (the whole network
     is rarely a plane) and the variance from reading noise alone (what a
@@ -138,7 +138,7 @@ def partition_bounds(plan: BudgetPlan, chunk: str | None) -> list[tuple[int, int
     """
     n = len(plan.times)
     if chunk:
-        steps = int(align.parse_duration(chunk) / plan.interval)
+        steps = int(grid.parse_duration(chunk) / plan.interval)
     else:  # automatic: partitions of about AUTO_CHUNK cluster-steps bound the intermediates (same results)
         steps = max(4 * plan.halo, AUTO_CHUNK // max(1, len(plan.members)))
     parts = partitions(n, steps)

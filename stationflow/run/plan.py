@@ -17,12 +17,12 @@ import pandas as pd
 
 from ..config import Config
 from ..errors import ConfigError, GeometryError
-from ..estimate import uncertainty as errormodel
+from ..estimate import uncertainty
 from ..estimate.budget import BudgetSettings, model_network
 from ..estimate.planes import fit_planes
 from ..estimate.thermo import KAPPA, P_REF, standard_pressure
 from ..network import geometry
-from ..network import grid as align
+from ..network import grid
 from ..variables import si_unit
 from .check import CheckResult, Progress, no_progress
 
@@ -52,14 +52,14 @@ def offset_uncertainty(variable: str, config: Config) -> tuple[float, str]:
 
     ``uncertainty.offset.<variable>``, else the older ``uncertainty.calibration``
     (when non-zero), else the documented default of
-    :func:`stationflow.errormodel.default_offset`.
+    :func:`stationflow.estimate.uncertainty.default_offset`.
     """
     table = config["uncertainty"]["offset"]
     if variable in table:
         return float(table[variable]), "uncertainty.offset"
     if config["uncertainty"]["calibration"] > 0:
         return float(config["uncertainty"]["calibration"]), "uncertainty.calibration"
-    value, source = errormodel.default_offset(variable)
+    value, source = uncertainty.default_offset(variable)
     return value, f"default: {source}"
 
 
@@ -87,8 +87,8 @@ def _interval(config: Config, observations: pd.DataFrame, known: pd.Timedelta | 
     """The analysis interval; ``known``: the reporting interval QC already found."""
     bc = config["budget"]
     if bc["interval"]:
-        return align.parse_duration(bc["interval"])
-    return known if known is not None else align.infer_interval(observations)
+        return grid.parse_duration(bc["interval"])
+    return known if known is not None else grid.infer_interval(observations)
 
 
 def _window(config: Config, interval: pd.Timedelta, value_noise_var: float, min_rate: float
@@ -98,18 +98,18 @@ def _window(config: Config, interval: pd.Timedelta, value_noise_var: float, min_
     ``budget.window`` when set; else the shortest window whose tendency
     error from reading noise (``value_noise_var``, the median over clusters
     of the centre value's noise variance) is at most ``min_rate``, capped
-    at :data:`stationflow.errormodel.MAX_AUTO_WINDOW_S` (:func:`errormodel.window_steps`).
+    at :data:`stationflow.estimate.uncertainty.MAX_AUTO_WINDOW_S` (:func:`stationflow.estimate.uncertainty.window_steps`).
     """
     text = config["budget"]["window"]
     if text:
-        window = align.parse_duration(text)
+        window = grid.parse_duration(text)
         h = int(round(window / interval / 2))
         if h < 1:
             raise ConfigError(f"budget.window = {text} must be at least two analysis intervals ({2 * interval})")
         return 2 * h * interval, h, "budget.window"
-    h = errormodel.window_steps(value_noise_var, interval.total_seconds(), min_rate)
+    h = uncertainty.window_steps(value_noise_var, interval.total_seconds(), min_rate)
     return 2 * h * interval, h, (f"from the data: tendency error from reading noise at most {min_rate:g} per hour "
-                                 f"(capped at {errormodel.MAX_AUTO_WINDOW_S / 60:g} min)")
+                                 f"(capped at {uncertainty.MAX_AUTO_WINDOW_S / 60:g} min)")
 
 
 #: cluster-steps per automatic time partition (when budget.chunk is not set)
@@ -271,12 +271,12 @@ class _NoiseSample:
         else:
             codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
         time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
-        first = errormodel.noise_sample_rows(time_ns)
-        return cls(codes, time_ns, first, errormodel.station_order(codes[first], time_ns[first]), len(ids))
+        first = uncertainty.noise_sample_rows(time_ns)
+        return cls(codes, time_ns, first, uncertainty.station_order(codes[first], time_ns[first]), len(ids))
 
     def learn(self, values: np.ndarray, **kw) -> tuple:
-        """:func:`errormodel.reading_noise` of ``values`` (one per row) on the sample."""
-        return errormodel.reading_noise(self.codes[self.first], self.time_ns[self.first], values[self.first],
+        """:func:`stationflow.estimate.uncertainty.reading_noise` of ``values`` (one per row) on the sample."""
+        return uncertainty.reading_noise(self.codes[self.first], self.time_ns[self.first], values[self.first],
                                         self.n_stations, order=self.order, **kw)
 
 
@@ -285,14 +285,14 @@ def _settings(config: Config, var: str, vertical: str, noise: np.ndarray, st: _S
     """The budget settings (error model, window, regime thresholds), the window and how it was chosen."""
     bc = config["budget"]
     offset, _ = offset_uncertainty(var, config)
-    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else errormodel.default_min_rate(var)
+    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else uncertainty.default_min_rate(var)
     total = np.sqrt(noise ** 2 + offset ** 2)
     typical = fit_planes(np.zeros((1, len(st.ids))), st.x, st.y, st.members, sigma=total, noise=noise,
                          residuals=False)
     value_noise = float(np.nanmedian(typical.noise_part("var_value"))) if st.members else np.nan
     window, h, window_source = _window(config, interval, value_noise, min_rate)
     settings = BudgetSettings(
-        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or errormodel.WIND_FLOOR), offset=offset,
+        sigma=noise, wind_sigma=float(config["uncertainty"]["wind_component"] or uncertainty.WIND_FLOOR), offset=offset,
         error_model=config["uncertainty"]["gradient_error"],
         half_window=h, interval_s=interval.total_seconds(), min_stations=bc["min_stations"],
         significance=float(bc["significance"]), dominance=float(bc["dominance"]), min_rate=min_rate,
@@ -323,8 +323,8 @@ def _add_wind(frame: pd.DataFrame, obs: pd.DataFrame, usable: dict, config: Conf
     frame["v"] = np.where(ok_w, v, np.nan)
     frame["wind_speed"] = np.where(usable.get("wind_speed", everywhere), spd, np.nan)
     if config["uncertainty"]["wind_component"] is None:  # learned like the scalar's reading noise
-        su, _, _ = sample.learn(frame["u"].to_numpy(), floor=errormodel.WIND_FLOOR, resolution=False)
-        sv, _, _ = sample.learn(frame["v"].to_numpy(), floor=errormodel.WIND_FLOOR, resolution=False)
+        su, _, _ = sample.learn(frame["u"].to_numpy(), floor=uncertainty.WIND_FLOOR, resolution=False)
+        sv, _, _ = sample.learn(frame["v"].to_numpy(), floor=uncertainty.WIND_FLOOR, resolution=False)
         settings.wind_sigma = float(np.median(np.sqrt(0.5 * (su ** 2 + sv ** 2))))
         choices["wind_noise_source"] = "learned from second differences of each station's wind components"
     else:
@@ -361,11 +361,11 @@ def _vertical_mode(setting: str, variable: str, stations: pd.DataFrame) -> str:
 
 def _reading_noise(variable: str, quantity: str, config: Config, sample: _NoiseSample, values: np.ndarray
                    ) -> tuple[np.ndarray, dict]:
-    """Reading noise per station [unit]: declared, or learned (:func:`errormodel.reading_noise`); and what to record."""
+    """Reading noise per station [unit]: declared, or learned (:func:`stationflow.estimate.uncertainty.reading_noise`); and what to record."""
     declared = declared_noise(variable, config)
     if declared is not None:
         return np.full(sample.n_stations, declared), {"noise_source": "uncertainty.sensor"}
-    noise, resolution, count = sample.learn(values, floor=errormodel.noise_floor(quantity))
+    noise, resolution, count = sample.learn(values, floor=uncertainty.noise_floor(quantity))
     return noise, {"noise_source": "learned from second differences of each station's series",
                    "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
                    "resolution_per_station": resolution}

@@ -11,7 +11,7 @@ own answer.
 carried by a time-varying uniform wind, plus an in-situ source, a vertical
 gradient and optional non-planar terms.  :func:`frost_valley` and
 :func:`smoke_town` are the two demo scenarios (invented places).  Running
-``python -m stationflow.synthetic DIR`` writes the sample data.
+``python -m stationflow.scenarios.synthetic DIR`` writes the sample data.
 """
 
 from __future__ import annotations
