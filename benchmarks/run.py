@@ -63,7 +63,7 @@ def generate(name: str, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Pat
     radius = 10.0 * np.sqrt(n)  # about 17 km between neighbours
     st = synthetic.network(n, radius_km=radius, seed=seed, prefix="B")
     st[["station_id", "latitude", "longitude", "elevation", "sensor_height"]].to_csv(st_path, index=False)
-    f = synthetic.LinearField(base=285.0, gx=synthetic._const(2e-5), gy=synthetic._const(-1e-5),
+    f = synthetic.LinearField(base=285.0, gx=synthetic.constant(2e-5), gy=synthetic.constant(-1e-5),
                               u=synthetic.ramp([(0, 3.0), (24 * days, -2.0)]), v=synthetic.ramp([(0, 1.0), (24 * days, 4.0)]),
                               source=synthetic.ramp([(12 * k, (0.5 if k % 2 else -0.5) / 3600) for k in range(2 * days + 2)]), horizon_s=days * 86400 + 7200)
     times = pd.date_range("2026-01-01", periods=days * 24 * 60 // minutes, freq=f"{minutes}min", tz="UTC")

@@ -20,8 +20,8 @@ def linear_night(n_stations: int, n_times: int, *, seed: int = 0, elevation: boo
     radius = 3.0 * np.sqrt(n_stations)  # about 5 km between neighbours at any size
     relief = (lambda x, y: 300 + 200 * np.sin(x / 9000) + 150 * np.cos(y / 7000)) if elevation else None
     st = synthetic.network(n_stations, radius_km=radius, seed=seed, elevation=relief)
-    f = synthetic.LinearField(base=283.0, gx=synthetic._const(1e-4), gy=synthetic._const(-0.5e-4),
-                              u=synthetic._const(3.0), v=synthetic._const(1.0), source=synthetic._const(-0.5 / 3600))
+    f = synthetic.LinearField(base=283.0, gx=synthetic.constant(1e-4), gy=synthetic.constant(-0.5e-4),
+                              u=synthetic.constant(3.0), v=synthetic.constant(1.0), source=synthetic.constant(-0.5 / 3600))
     times = pd.date_range(pd.Timestamp(start, tz=tz).tz_convert("UTC"), periods=n_times, freq=interval)
     obs = synthetic.sample(f, st, times, noise=0.05, wind_noise=0.3, seed=seed + 1, missing=missing)
     return st, obs

@@ -177,7 +177,7 @@ def test_an_alpine_network_untuned_gives_no_fake_advection(runner, tmp_path):
                    elevation=lambda x, y: 900 + 1200 * (1 + np.sin(x / 15000) * np.cos(y / 12000)))
     lapse = s.smooth([(0, -0.0065), (8, -0.0065), (14, 0.005), (30, 0.005), (34, -0.0065), (48, -0.0065)], 1.0)
     cooling = s.smooth([(0, 0.5), (6, 0.5), (8, -1.0), (20, -0.6), (30, 0.8), (48, 0.0)], 1.0)
-    f = s.LinearField(base=285.0, gx=s._const(5e-5), u=s._const(2.0), v=s._const(0.5), gamma=lapse, z_ref=1500.0,
+    f = s.LinearField(base=285.0, gx=s.constant(5e-5), u=s.constant(2.0), v=s.constant(0.5), gamma=lapse, z_ref=1500.0,
                       source=lambda t: cooling(t) / 3600.0, horizon_s=4 * 86400.0)
     times = pd.date_range("2026-04-10 06:00", periods=48, freq="1h", tz="UTC")
     obs = s.sample(f, st, times, noise=0.2, wind_noise=0.5, seed=3, offset=0.1, missing=0.03)

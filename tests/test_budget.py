@@ -64,7 +64,7 @@ def test_known_time_varying_wind_and_source_every_cluster():
     from stationflow.scenarios import synthetic
 
     st = synthetic.network(12, radius_km=15, seed=4)
-    f = synthetic.LinearField(base=283.0, gx=synthetic._const(4e-5), gy=synthetic._const(-2e-5),
+    f = synthetic.LinearField(base=283.0, gx=synthetic.constant(4e-5), gy=synthetic.constant(-2e-5),
                               u=synthetic.ramp([(0, 2.0), (6, 8.0)]), v=synthetic.ramp([(0, -3.0), (6, 1.0)]),
                               source=synthetic.ramp([(0, -1.0 / 3600), (6, 0.5 / 3600)]))
     times = pd.date_range("2026-01-10", periods=6 * 6 + 1, freq="10min", tz="UTC")

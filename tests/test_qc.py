@@ -126,9 +126,9 @@ def _fault_network():
     st = synthetic.network(20, radius_km=12, seed=21, elevation=lambda x, y: 300 + 0.004 * x + 0.002 * y)
     hours = np.arange(0, 49)
     diurnal = lambda t: 6 * np.sin(2 * np.pi * (t / 3600 - 9) / 24) / 3600 * (2 * np.pi / 24)  # noqa: E731
-    f = synthetic.LinearField(base=283.0, gx=synthetic._const(3e-5), gy=synthetic._const(-2e-5),
+    f = synthetic.LinearField(base=283.0, gx=synthetic.constant(3e-5), gy=synthetic.constant(-2e-5),
                               u=synthetic.ramp([(0, 3.0), (48, 3.0)]), v=synthetic.ramp([(0, 1.0), (48, 1.0)]),
-                              source=diurnal, gamma=synthetic._const(-0.0065), z_ref=300.0)
+                              source=diurnal, gamma=synthetic.constant(-0.0065), z_ref=300.0)
     times = pd.date_range("2026-06-01", periods=48 * 6, freq="10min", tz="UTC")
     del hours
     obs = synthetic.sample(f, st, times, noise=0.1, wind_noise=0.3, seed=5)

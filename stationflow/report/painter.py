@@ -30,7 +30,7 @@ def warm_up() -> None:
 
     from . import plots
 
-    plt = plots._plt()
+    plt = plots.pyplot()
     fig, ax = plt.subplots(figsize=(2, 1))
     days = np.arange("2026-01-01", "2026-01-03", dtype="datetime64[h]")
     ax.plot(days, np.zeros(days.size), label="warm-up")

@@ -31,7 +31,8 @@ STATUS_COLOURS = {"ok": "#3a8f5c", "rejected": "#c9503c"}
 FLAG_COLOURS = ["#d8e8d0", "#f2b33d", "#c62f2f", "#ffffff"]  # good, suspect, bad, missing
 
 
-def _plt():
+def pyplot():
+    """matplotlib.pyplot on the Agg backend (files only, no display)."""
     import matplotlib
 
     matplotlib.use("Agg", force=True)
@@ -43,7 +44,7 @@ def _plt():
 def _save(fig, path: str | Path, *, tight: bool = True) -> Path:
     """Write the figure atomically; ``tight`` crops to the drawn extent (needed for legends outside the axes;
     it costs a second draw)."""
-    plt = _plt()
+    plt = pyplot()
 
     def writer(tmp: Path) -> None:
         # zlib level 3 instead of 6: a third less encoding time for 5 % more bytes
@@ -94,7 +95,7 @@ def qc_overview_image(observations: pd.DataFrame, flags: dict[str, np.ndarray], 
 
 def draw_qc_overview(image: dict, path: str | Path) -> Path:
     """Draw the QC overview from :func:`qc_overview_image` (runs in the figure process)."""
-    plt = _plt()
+    plt = pyplot()
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
 
@@ -154,7 +155,7 @@ def network_map(network, path: str | Path, *, colour_by: dict[str, str] | None =
 def draw_map(layers: dict, path: str | Path, *, colour_by: dict[str, str] | None = None, arrows: dict | None = None,
              title: str = "Network and clusters") -> Path:
     """Draw the map from :func:`map_layers` (runs in the figure process); arguments as :func:`network_map`."""
-    plt = _plt()
+    plt = pyplot()
     from matplotlib.collections import PolyCollection
     from matplotlib.colors import to_rgba
     from matplotlib.lines import Line2D
@@ -314,7 +315,7 @@ def timeseries_panels(summary, *, clusters: list[int] | None = None, max_panels:
 
 def draw_timeseries(panels: list[dict], path: str | Path, *, unit: str, tz: str | None = None) -> Path:
     """Draw the budget figure from :func:`timeseries_panels` (runs in the figure process)."""
-    plt = _plt()
+    plt = pyplot()
     from matplotlib.patches import Patch
     from matplotlib.ticker import MaxNLocator
 

@@ -28,7 +28,7 @@ import numpy as np
 import pandas as pd
 
 from . import synthetic
-from .synthetic import Array, Field, LinearField, Scenario, _const
+from .synthetic import Array, Field, LinearField, Scenario, constant
 
 #: the terms checked and the nominal coverage of +-1.96 se
 TERMS = ("tendency", "advection", "residual")
@@ -46,9 +46,9 @@ class PatternField(Field):
 
     pattern: Callable[[Array, Array], Array] = field(default=lambda x, y: 0.0 * x)
     base: float = 280.0
-    u: Callable = field(default_factory=lambda: _const(0.0))
-    v: Callable = field(default_factory=lambda: _const(0.0))
-    source: Callable = field(default_factory=lambda: _const(0.0))
+    u: Callable = field(default_factory=lambda: constant(0.0))
+    v: Callable = field(default_factory=lambda: constant(0.0))
+    source: Callable = field(default_factory=lambda: constant(0.0))
     gamma: float = 0.0
     z_ref: float = 0.0
     rate: Callable[[Array, Array], Array] | None = None
@@ -88,20 +88,20 @@ class Case:
 
 def cases(*, hours: float = 6.0) -> list[Case]:
     """The coverage cases (see the module docstring); ``hours`` sets their length."""
-    wind = dict(u=_const(3.0), v=_const(1.0))
+    wind = dict(u=constant(3.0), v=constant(1.0))
 
     def lin(**kw) -> LinearField:
-        return LinearField(base=283.0, gx=_const(1.5e-4), gy=_const(-0.8e-4), source=_const(-0.6 / 3600), **kw)
+        return LinearField(base=283.0, gx=constant(1.5e-4), gy=constant(-0.8e-4), source=constant(-0.6 / 3600), **kw)
 
     pool = PatternField(pattern=lambda x, y: -3.0 * np.exp(-((x + 6000.0) ** 2 + y ** 2) / (7000.0 ** 2)),
-                        base=281.0, source=_const(-0.8 / 3600), u=_const(1.5), v=_const(0.5))
+                        base=281.0, source=constant(-0.8 / 3600), u=constant(1.5), v=constant(0.5))
     front = PatternField(pattern=lambda x, y: -2.0 * np.tanh((x + 8000.0) / 1500.0), base=283.0,
-                         source=_const(-0.3 / 3600), u=_const(2.0), v=_const(0.0))
-    patchy = PatternField(pattern=lambda x, y: 0.0 * x, base=279.0, u=_const(0.3), v=_const(-0.2),
-                          source=_const(-1.2 / 3600),
+                         source=constant(-0.3 / 3600), u=constant(2.0), v=constant(0.0))
+    patchy = PatternField(pattern=lambda x, y: 0.0 * x, base=279.0, u=constant(0.3), v=constant(-0.2),
+                          source=constant(-1.2 / 3600),
                           rate=lambda x, y: (0.4 * np.sin(x / 3000.0) * np.cos(y / 4000.0)) / 3600.0)
-    inversion = LinearField(base=278.0, gamma=_const(0.010), z_ref=300.0, source=_const(-1.0 / 3600),
-                            u=_const(2.0), v=_const(0.0))
+    inversion = LinearField(base=278.0, gamma=constant(0.010), z_ref=300.0, source=constant(-1.0 / 3600),
+                            u=constant(2.0), v=constant(0.0))
     return [
         Case("linear", lin(**wind), hours=hours),
         Case("cold pool 7 km", pool, hours=hours),

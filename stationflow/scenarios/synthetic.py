@@ -33,7 +33,7 @@ Array = np.ndarray
 Profile = Callable[[Array], Array]  # a function of time [s since start]
 
 
-def _const(value: float) -> Profile:
+def constant(value: float) -> Profile:
     return lambda t: np.full(np.shape(t), float(value))
 
 
@@ -101,12 +101,12 @@ class LinearField(Field):
     """
 
     base: float = 280.0
-    gx: Profile = field(default_factory=lambda: _const(0.0))
-    gy: Profile = field(default_factory=lambda: _const(0.0))
-    u: Profile = field(default_factory=lambda: _const(0.0))
-    v: Profile = field(default_factory=lambda: _const(0.0))
-    source: Profile = field(default_factory=lambda: _const(0.0))
-    gamma: Profile = field(default_factory=lambda: _const(0.0))
+    gx: Profile = field(default_factory=lambda: constant(0.0))
+    gy: Profile = field(default_factory=lambda: constant(0.0))
+    u: Profile = field(default_factory=lambda: constant(0.0))
+    v: Profile = field(default_factory=lambda: constant(0.0))
+    source: Profile = field(default_factory=lambda: constant(0.0))
+    gamma: Profile = field(default_factory=lambda: constant(0.0))
     z_ref: float = 0.0
     cold_pool: Profile | None = None
     z_floor: float = 0.0
@@ -156,13 +156,13 @@ class PlumeField(Field):
     with the wind.  Units are those of the concentration (ug m-3).
     """
 
-    background: Profile = field(default_factory=lambda: _const(8.0))
+    background: Profile = field(default_factory=lambda: constant(8.0))
     peak: float = 60.0
     width_m: float = 8000.0
     axis_start: tuple[float, float] = (-30000.0, 0.0)
-    u: Profile = field(default_factory=lambda: _const(4.0))
-    v: Profile = field(default_factory=lambda: _const(0.0))
-    source: Profile = field(default_factory=lambda: _const(0.0))
+    u: Profile = field(default_factory=lambda: constant(4.0))
+    v: Profile = field(default_factory=lambda: constant(0.0))
+    source: Profile = field(default_factory=lambda: constant(0.0))
     blob_centre: tuple[float, float] = (0.0, 0.0)
     blob_width_m: float = 6000.0
     horizon_s: float = 2 * 86400.0
@@ -441,7 +441,7 @@ def frost_valley(seed: int = 7) -> Scenario:
     wdir = 315.0
     u = lambda t: -speed(t) * np.sin(np.deg2rad(wdir))  # noqa: E731
     v = lambda t: -speed(t) * np.cos(np.deg2rad(wdir))  # noqa: E731
-    g = _const(0.10e-3)  # K m-1 toward the south-east: the front stalls as the wind drops
+    g = constant(0.10e-3)  # K m-1 toward the south-east: the front stalls as the wind drops
     gx = lambda t: g(t) * np.sin(np.deg2rad(135))  # noqa: E731
     gy = lambda t: g(t) * np.cos(np.deg2rad(135))  # noqa: E731
     src = smooth([(0, -0.3), (3.5, -0.3), (4.5, -1.6), (6.0, -1.4), (10, -0.7), (13.3, -0.4), (13.8, 1.5), (15, 2.5)], 0.3)
@@ -509,7 +509,7 @@ def smoke_town(seed: int = 11) -> Scenario:
     u = lambda t: -speed(t) * np.sin(np.deg2rad(wdir(t)))  # noqa: E731
     v = lambda t: -speed(t) * np.cos(np.deg2rad(wdir(t)))  # noqa: E731
     src = smooth([(0, 0.0), (6.8, 0.0), (7.5, 14.0), (10.0, 14.0), (10.8, 0.0), (12, 0.0)], 0.25)
-    f = PlumeField(background=_const(8.0), peak=60.0, width_m=8000.0, axis_start=(-40000.0, 0.0),
+    f = PlumeField(background=constant(8.0), peak=60.0, width_m=8000.0, axis_start=(-40000.0, 0.0),
                    u=u, v=v, source=lambda t: src(t) / 3600.0, blob_centre=(500.0, -500.0), blob_width_m=7000.0)
     times = pd.date_range(start, periods=12 * 12 + 1, freq="5min")
     rng = np.random.default_rng(seed)
