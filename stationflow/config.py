@@ -35,6 +35,7 @@ FREE_TABLES = {
     "stations.columns",
     "observations.columns",
     "observations.units",
+    "observations.kinds",
     "uncertainty.sensor",
     "uncertainty.offset",
     "qc.range",
@@ -66,6 +67,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "missing_values": Key([], (list,), "strings that mean 'no value' (empty fields always do)"),
         "columns": Key({}, (dict,), "source column -> canonical name (or a user scalar's name)"),
         "units": Key({}, (dict,), "canonical name -> unit of the source values"),
+        "kinds": Key({}, (dict,), "variable -> what it is: temperature, concentration, humidity, pressure, speed, direction "
+                                  "or other; picks the QC tests and error-model defaults of a user scalar (default: the "
+                                  "canonical variable's own; names starting pm or mass_concentration are concentrations; "
+                                  "else other)"),
     },
     "uncertainty": {
         "sensor": Key({}, (dict,), "variable -> reading noise: the random error of one reading, independent from report to report, "
@@ -203,6 +208,11 @@ def _validate_values(cfg: Config, where0: str) -> None:
     for k, v in cfg["observations"]["units"].items():
         if not isinstance(v, str):
             raise ConfigError(f"{where0}observations.units.{k} must be a string, got {v!r}")
+    from .variables import KINDS
+
+    for k, v in cfg["observations"]["kinds"].items():
+        if v not in KINDS:
+            raise ConfigError(f"{where0}observations.kinds.{k} = {v!r} is not one of {', '.join(KINDS)}")
     for table in ("sensor", "offset"):
         for k, v in cfg["uncertainty"][table].items():
             if isinstance(v, bool) or not isinstance(v, (int, float)) or v < 0 or (table == "sensor" and v == 0):

@@ -50,6 +50,28 @@ CANONICAL: dict[str, Variable] = {
     )
 }
 
+#: what a variable is, for the defaults that depend on it (QC tests, error model, cautions); canonical
+#: variables have theirs, a user scalar takes ``observations.kinds`` (see :func:`kind_of`)
+KINDS = ("temperature", "concentration", "humidity", "pressure", "speed", "direction", "other")
+#: undeclared user scalars whose names start with one of these are concentrations (particulate matter)
+CONCENTRATION_PREFIXES = ("pm", "mass_concentration")
+
+
+def kind_of(name: str, declared: dict[str, str] | None = None) -> str:
+    """The kind of variable ``name``: ``declared`` (``observations.kinds``) first, then the canonical
+    variable's own, then a concentration for names like ``pm2_5`` or ``mass_concentration_of_...``,
+    else "other"."""
+    if declared and name in declared:
+        return declared[name]
+    if name in CANONICAL:
+        return CANONICAL[name].kind
+    if name == "potential_temperature":
+        return "temperature"
+    if any(name.lower().startswith(p) for p in CONCENTRATION_PREFIXES):
+        return "concentration"
+    return "other"
+
+
 #: columns that are not variables
 ID_COLUMNS = ("station_id", "time")
 STATION_COLUMNS = ("station_id", "latitude", "longitude", "elevation", "sensor_height")

@@ -100,3 +100,45 @@ def test_wrap_degrees_equals_the_remainder_bit_for_bit():
     out = wrap_degrees(a)
     assert np.array_equal(out, ref, equal_nan=True)
     assert np.array_equal(np.signbit(out), np.signbit(ref))
+
+
+def test_kind_of_follows_the_configuration_then_the_canonical_table_then_the_name():
+    from stationflow.variables import kind_of
+
+    assert kind_of("air_temperature") == "temperature"
+    assert kind_of("relative_humidity") == "humidity"
+    assert kind_of("pm2_5") == "concentration"  # the documented fallback for undeclared particulate names
+    assert kind_of("soot") == "other"
+    assert kind_of("soot", {"soot": "concentration"}) == "concentration"
+    assert kind_of("pm2_5", {"pm2_5": "other"}) == "other"  # a declared kind wins over the name
+
+
+def test_a_declared_kind_picks_the_qc_tests_and_the_error_model_defaults():
+    import numpy as np
+    import pandas as pd
+
+    from stationflow import config, qc
+    from stationflow.estimate import uncertainty
+
+    cfg = config.from_dict({"observations": {"kinds": {"soot": "concentration", "leaf_temp": "temperature"}}})
+    t = pd.date_range("2026-01-01", periods=6, freq="10min", tz="UTC")
+    obs = pd.DataFrame({"station_id": pd.Categorical(["A"] * 6), "time": t,
+                        "soot": [5.0, -3.0, 6.0, 5.5, 6.1, 5.8], "leaf_temp": 280.0 + np.arange(6) * 0.1})
+    st = pd.DataFrame({"station_id": ["A"], "latitude": [45.0], "longitude": [10.0], "elevation": [100.0],
+                       "sensor_height": [np.nan]})
+    res = qc.run_qc(obs, st, cfg)
+    assert res.tests["soot"][1] & qc.TEST_BITS["range"]  # a negative concentration fails the range test
+    plain = qc.run_qc(obs, st, config.from_dict({}))
+    assert not plain.tests["soot"][1] & qc.TEST_BITS["range"]  # undeclared, "soot" is another scalar
+    assert uncertainty.default_offset("leaf_temp", "temperature") == uncertainty.default_offset("air_temperature")
+    assert uncertainty.default_min_rate("leaf_temp", "temperature") == 0.25
+
+
+def test_an_unknown_kind_is_a_config_error():
+    import pytest
+
+    from stationflow import config
+    from stationflow.errors import ConfigError
+
+    with pytest.raises(ConfigError, match="observations.kinds.x = 'gas' is not one of"):
+        config.from_dict({"observations": {"kinds": {"x": "gas"}}})

@@ -69,10 +69,21 @@ DEFAULT_MIN_RATE_OTHER = 1.0
 MAX_AUTO_WINDOW_S = 3600.0
 
 
-def default_min_rate(variable: str) -> float:
-    """Smallest rate that counts for ``variable`` when ``budget.min_rate`` is not set [unit h-1] (common practice:
-    frost staff act on cooling of 0.5-2 K/h; a 0.25 K/h floor resolves them)."""
-    return DEFAULT_MIN_RATE.get(variable, DEFAULT_MIN_RATE_OTHER)
+#: the canonical variable whose defaults a user scalar of each kind takes (concentrations and others: the *_OTHER)
+KIND_DEFAULTS = {"temperature": "air_temperature", "humidity": "relative_humidity", "pressure": "air_pressure",
+                 "speed": "wind_speed"}
+
+
+def _as(variable: str, kind: str | None) -> str:
+    """The name the defaults are looked up by: the variable's own, else its kind's canonical variable."""
+    return variable if variable in DEFAULT_OFFSET or kind is None else KIND_DEFAULTS.get(kind, variable)
+
+
+def default_min_rate(variable: str, kind: str | None = None) -> float:
+    """Smallest rate that counts for ``variable`` (of ``kind``, see :func:`stationflow.variables.kind_of`) when
+    ``budget.min_rate`` is not set [unit h-1] (common practice: frost staff act on cooling of 0.5-2 K/h; a
+    0.25 K/h floor resolves them)."""
+    return DEFAULT_MIN_RATE.get(_as(variable, kind), DEFAULT_MIN_RATE_OTHER)
 
 
 def window_steps(value_noise_var: float, interval_s: float, target_se: float, *,
@@ -93,14 +104,14 @@ def window_steps(value_noise_var: float, interval_s: float, target_se: float, *,
     return int(min(max(need, 1), cap))
 
 
-def default_offset(variable: str) -> tuple[float, str]:
-    """(offset standard uncertainty [unit], source) for ``variable`` when none is declared."""
-    return DEFAULT_OFFSET.get(variable, DEFAULT_OFFSET_OTHER)
+def default_offset(variable: str, kind: str | None = None) -> tuple[float, str]:
+    """(offset standard uncertainty [unit], source) for ``variable`` (of ``kind``) when none is declared."""
+    return DEFAULT_OFFSET.get(_as(variable, kind), DEFAULT_OFFSET_OTHER)
 
 
-def noise_floor(variable: str) -> float:
-    """Smallest learned reading noise for ``variable`` [unit]."""
-    return NOISE_FLOOR.get(variable, NOISE_FLOOR_OTHER)
+def noise_floor(variable: str, kind: str | None = None) -> float:
+    """Smallest learned reading noise for ``variable`` (of ``kind``) [unit]."""
+    return NOISE_FLOOR.get(variable, NOISE_FLOOR.get(_as(variable, kind), NOISE_FLOOR_OTHER))
 
 
 #: reports the reading noise is learned from, at most (the first of the record)

@@ -31,7 +31,12 @@ from .flags import (
                     flagged_periods,
                     summary,
 )
-from .neighbours import BuddyRules, agrees_with_neighbours, row_nanmedian, solar_elevation
+from .neighbours import (
+                    BuddyRules,
+                    agrees_with_neighbours,
+                    row_nanmedian,
+                    solar_elevation,
+)
 from .persistence import not_persistent, regular_slots, rolling_range
 from .range import unit_slips, within_range
 from .runner import run_qc
@@ -42,13 +47,13 @@ from .thresholds import (
                     DEFAULT_SPATIAL_FLOOR,
                     DEFAULT_STEP,
                     SPATIAL_VARIABLES,
-                    is_pm,
+                    is_concentration,
                     thresholds,
 )
 
 __all__ = ["BAD", "BuddyRules", "DEFAULT_PERSISTENCE", "DEFAULT_RANGE", "DEFAULT_SPATIAL_FLOOR", "DEFAULT_STEP", "FLAG_NAMES", "GOOD",
            "MISSING", "SEVERITY", "SPATIAL_VARIABLES", "SUSPECT", "TESTS", "TEST_BITS", "QCResult",
            "agrees_with_neighbours", "dew_point_not_above_temperature", "direction_defined_when_moving", "flag_table",
-           "flagged_periods", "gust_not_below_mean", "is_pm", "not_persistent", "plausible_steps", "regular_slots",
+           "flagged_periods", "gust_not_below_mean", "is_concentration", "not_persistent", "plausible_steps", "regular_slots",
            "rolling_range", "row_nanmedian", "run_qc", "solar_elevation", "step_limit", "summary", "thresholds",
            "unit_slips", "within_range"]

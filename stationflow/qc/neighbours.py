@@ -13,7 +13,7 @@ import pandas as pd
 
 from ..config import Config
 from ..network.grid import station_columns
-from .thresholds import is_pm
+from .thresholds import is_concentration
 
 
 def row_nanmedian(a: np.ndarray) -> np.ndarray:
@@ -249,14 +249,14 @@ class SpatialTest:
         data = self.bin_means(v, usable)
         night = solar_elevation(self.times, self.lat0, self.lon0) < 0
         relaxed = night & (self.light if self.light is not None else True)
-        self.work[v] = (np.log(np.fmax(data, 0.5)) if is_pm(v) else data, relaxed, [None] * parts)
+        self.work[v] = (np.log(np.fmax(data, 0.5)) if is_concentration(v, self.cfg) else data, relaxed, [None] * parts)
 
     def test(self, v: str, part: int) -> None:
         """The buddy test of ``v`` at the times of ``part``: the test is independent per time."""
         qcfg = self.cfg["qc"]
         data, relaxed, results = self.work[v]
         a, b = (data.shape[0] * part) // len(results), (data.shape[0] * (part + 1)) // len(results)
-        floor = self.th["spatial_floor"].get(v, np.log(2.0) if is_pm(v) else 0.0)
+        floor = self.th["spatial_floor"].get(v, np.log(2.0) if is_concentration(v, self.cfg) else 0.0)
         sigma = self.cfg["uncertainty"]["sensor"]
         rules = BuddyRules(neighbours=qcfg["spatial_neighbours"], max_distance_m=qcfg["spatial_max_distance_km"] * 1000.0,
                            suspect_z=qcfg["spatial_suspect"], bad_z=qcfg["spatial_bad"], floor=floor,

@@ -40,7 +40,7 @@ from .neighbours import SpatialTest
 from .persistence import Slots, not_persistent, regular_slots
 from .range import within_range
 from .steps import plausible_steps
-from .thresholds import SPATIAL_VARIABLES, is_pm, thresholds
+from .thresholds import SPATIAL_VARIABLES, is_concentration, thresholds
 
 log = logging.getLogger(__name__)
 
@@ -87,7 +87,8 @@ def run_qc(observations: pd.DataFrame, stations: pd.DataFrame, config: Config | 
     qcfg = cfg["qc"]
     variables = [c for c in observations.columns if c not in ("station_id", "time")]
     rows = SortedRows.of(observations)
-    buddy = [v for v in variables if qcfg["enabled"] and qcfg["spatial"] and (v in SPATIAL_VARIABLES or is_pm(v))]
+    buddy = [v for v in variables if qcfg["enabled"] and qcfg["spatial"]
+             and (v in SPATIAL_VARIABLES or is_concentration(v, cfg))]
     run = _Run(observations, stations, cfg, thresholds(cfg), variables, buddy, rows)
     threaded = qcfg["enabled"] and len(observations) >= THREADED_ROWS and (len(variables) > 1 or bool(buddy))
     if qcfg["enabled"]:
@@ -185,7 +186,7 @@ class _Run:
         x, th = self.arr[v], self.th
         if v in th["range"]:
             self.fired[v]["range"] = ~within_range(x, *th["range"][v])
-        elif is_pm(v):
+        elif is_concentration(v, self.cfg):
             self.fired[v]["range"] = ~within_range(x, 0.0, 1000.0)
         if v in th["step"]:
             step_ok, spike_ok = plausible_steps(x, self.rows.time_ns, self.rows.codes, th["step"][v])
@@ -194,7 +195,7 @@ class _Run:
 
     def persistence_test(self, v: str) -> None:
         x, calm_speed = self.arr[v], self.cfg["qc"]["calm_speed"]
-        if v in self.th["persistence"] or is_pm(v):
+        if v in self.th["persistence"] or is_concentration(v, self.cfg):
             mr, win = self.th["persistence"].get(v, (1e-9, 60.0))
             exempt = None
             if v == "wind_speed":

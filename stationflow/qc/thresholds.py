@@ -39,8 +39,6 @@ DEFAULT_PERSISTENCE: dict[str, tuple[float, float, str]] = {
 #: smallest spatial residual that can be flagged [SI units]
 DEFAULT_SPATIAL_FLOOR = {"air_temperature": 1.5, "dew_point_temperature": 2.0}
 SPATIAL_VARIABLES = ("air_temperature", "dew_point_temperature")
-#: user scalars whose names look like particulate matter: non-negative
-PM_NAMES = ("pm", "mass_concentration")
 
 
 def thresholds(config: Config) -> dict[str, dict]:
@@ -57,5 +55,9 @@ def thresholds(config: Config) -> dict[str, dict]:
     return {"range": rng, "step": step, "persistence": pers, "spatial_floor": floor}
 
 
-def is_pm(name: str) -> bool:
-    return any(name.lower().startswith(p) for p in PM_NAMES)
+def is_concentration(name: str, config: Config) -> bool:
+    """True for a concentration (``observations.kinds``, see :func:`stationflow.variables.kind_of`): tested as
+    non-negative, for persistence, and by the spatial test on ln(C)."""
+    from ..variables import kind_of
+
+    return kind_of(name, config["observations"]["kinds"]) == "concentration"

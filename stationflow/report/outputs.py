@@ -247,13 +247,13 @@ def display_name(variable: str) -> str:
     return variable.replace("_", " ")
 
 
-def variable_kind(variable: str) -> str:
-    """temperature, concentration or other: which cautions a report on ``variable`` carries."""
-    if variable in ("air_temperature", "potential_temperature", "dew_point_temperature"):
-        return "temperature"
-    if display_name(variable).startswith("PM") or "concentration" in variable:
-        return "concentration"
-    return "other"
+def variable_kind(variable: str, kinds: dict[str, str] | None = None) -> str:
+    """temperature, concentration or other: which cautions a report on ``variable`` carries
+    (``kinds``: ``observations.kinds``; see :func:`stationflow.variables.kind_of`)."""
+    from ..variables import kind_of
+
+    kind = kind_of(variable, kinds)
+    return kind if kind in ("temperature", "concentration") else "other"
 
 
 #: what each elevation handling means, for the report
@@ -271,7 +271,7 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path) 
     return Page(title=f"stationflow budget: {display_name(run.variable)}", summary=_summary_rows(run, inputs),
                 periods=lines, quality=_quality_lines(run, flags), cluster_table=_cluster_rows(run),
                 method=_method_lines(run), columns=_column_rows(out / "budget.parquet", run.unit),
-                kind=variable_kind(run.variable))
+                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]))
 
 
 def _summary_rows(run, inputs: dict) -> list[tuple[str, str]]:

@@ -14,8 +14,7 @@ from typing import Callable
 
 import pandas as pd
 
-from .. import qc
-from .. import read
+from .. import qc, read
 from ..config import Config
 from ..errors import ConfigError, NoUsableRows
 

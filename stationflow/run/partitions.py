@@ -14,8 +14,7 @@ import pandas as pd
 from ..config import Config
 from ..estimate.budget import compute_budget, row_mean_var
 from ..estimate.planes import fit_planes
-from ..network import geometry
-from ..network import grid
+from ..network import geometry, grid
 from .check import Progress, no_progress
 from .plan import AUTO_CHUNK, BudgetPlan
 from .sinks import Partition, deliver

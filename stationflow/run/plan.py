@@ -21,9 +21,8 @@ from ..estimate import uncertainty
 from ..estimate.budget import BudgetSettings, model_network
 from ..estimate.planes import fit_planes
 from ..estimate.thermo import KAPPA, P_REF, standard_pressure
-from ..network import geometry
-from ..network import grid
-from ..variables import si_unit
+from ..network import geometry, grid
+from ..variables import kind_of, si_unit
 from .check import CheckResult, Progress, no_progress
 
 log = logging.getLogger(__name__)
@@ -59,7 +58,7 @@ def offset_uncertainty(variable: str, config: Config) -> tuple[float, str]:
         return float(table[variable]), "uncertainty.offset"
     if config["uncertainty"]["calibration"] > 0:
         return float(config["uncertainty"]["calibration"]), "uncertainty.calibration"
-    value, source = uncertainty.default_offset(variable)
+    value, source = uncertainty.default_offset(variable, kind_of(variable, config["observations"]["kinds"]))
     return value, f"default: {source}"
 
 
@@ -285,7 +284,8 @@ def _settings(config: Config, var: str, vertical: str, noise: np.ndarray, st: _S
     """The budget settings (error model, window, regime thresholds), the window and how it was chosen."""
     bc = config["budget"]
     offset, _ = offset_uncertainty(var, config)
-    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else uncertainty.default_min_rate(var)
+    kind = kind_of(var, config["observations"]["kinds"])
+    min_rate = float(bc["min_rate"]) if bc["min_rate"] is not None else uncertainty.default_min_rate(var, kind)
     total = np.sqrt(noise ** 2 + offset ** 2)
     typical = fit_planes(np.zeros((1, len(st.ids))), st.x, st.y, st.members, sigma=total, noise=noise,
                          residuals=False)
@@ -365,7 +365,8 @@ def _reading_noise(variable: str, quantity: str, config: Config, sample: _NoiseS
     declared = declared_noise(variable, config)
     if declared is not None:
         return np.full(sample.n_stations, declared), {"noise_source": "uncertainty.sensor"}
-    noise, resolution, count = sample.learn(values, floor=uncertainty.noise_floor(quantity))
+    noise, resolution, count = sample.learn(values, floor=uncertainty.noise_floor(
+        quantity, kind_of(variable, config["observations"]["kinds"])))
     return noise, {"noise_source": "learned from second differences of each station's series",
                    "noise_median": float(np.median(noise)), "noise_per_station": noise, "noise_differences": count,
                    "resolution_per_station": resolution}

@@ -54,8 +54,8 @@ import pickle
 import sys
 import threading
 from concurrent.futures import Future, wait
-from dataclasses import dataclass
 from concurrent.futures.process import BrokenProcessPool
+from dataclasses import dataclass
 from typing import Any, Callable, Iterator
 
 log = logging.getLogger(__name__)
