@@ -55,6 +55,7 @@ class BudgetRun:
     summary: BudgetSummary | None = None
     layout: Layout | None = None
     choices: dict = field(default_factory=dict)  # what the defaults resolved to (see BudgetPlan.choices)
+    regional: BudgetSummary | None = None  # the network-scale rows (budget.regional), summarised
 
 
 def run_network(stations: pd.DataFrame, config: Config) -> geometry.Network:
@@ -81,10 +82,10 @@ def budget_from_check(chk: CheckResult, config: Config, *, variable: str | None 
     from .report.dataset import to_dataset, to_table
 
     plan = plan_budget(chk, config, variable=variable, progress=progress)
-    summary, memory = BudgetSummary.allocate(plan.times, plan.clusters), MemorySink()
-    _compute(plan, [summary, memory], config, engine=engine, scheduler=scheduler, progress=progress)
+    summaries, memory = _summaries(plan), MemorySink()
+    _compute(plan, [*summaries, memory], config, engine=engine, scheduler=scheduler, progress=progress)
     memory.close()
-    run = _result(plan, chk, summary)
+    run = _result(plan, chk, *summaries)
     run.dataset = to_dataset(memory.terms, plan.layout)
     run.table = to_table(run.dataset)
     return run
@@ -105,10 +106,10 @@ def budget_to_files(chk: CheckResult, config: Config, out: str | Path, *, variab
     from .report.tables import budget_files
 
     plan = plan_budget(chk, config, variable=variable, progress=progress)
-    summary = BudgetSummary.allocate(plan.times, plan.clusters)
+    summaries = _summaries(plan)
     with budget_files(out, plan.layout, csv=csv) as writers:
-        _compute(plan, [summary, *writers], config, engine=engine, scheduler=scheduler, progress=progress)
-        run = _result(plan, chk, summary)
+        _compute(plan, [*summaries, *writers], config, engine=engine, scheduler=scheduler, progress=progress)
+        run = _result(plan, chk, *summaries)
         if on_summary is not None:
             on_summary(run)
     return run
@@ -132,12 +133,22 @@ def _compute(plan: BudgetPlan, sinks: list, config: Config, *, engine: str, sche
         run_partitions(plan, sinks, config, progress=progress)
 
 
-def _result(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary) -> BudgetRun:
+def _summaries(plan: BudgetPlan) -> list[BudgetSummary]:
+    """The report's summary sinks: the local clusters, and the regional row when there is one."""
+    local = BudgetSummary.allocate(plan.times, plan.clusters, columns=slice(0, plan.n_local))
+    if plan.regional is None:
+        return [local]
+    row = plan.layout.clusters.iloc[plan.n_local:]
+    return [local, BudgetSummary.allocate(plan.times, row, columns=slice(plan.n_local, plan.n_local + 1))]
+
+
+def _result(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, regional: BudgetSummary | None = None
+            ) -> BudgetRun:
     """The :class:`BudgetRun` of a finished computation (without the in-memory dataset)."""
     extras = {"inversion": summary.inversion.copy()} if summary.inversion is not None else {}
     periods = summary.periods(f"{plan.unit} h-1")
     return BudgetRun(chk, plan.network, None, None, periods, plan.variable, plan.quantity, plan.unit, plan.interval,
-                     plan.window, plan.settings, extras, summary, plan.layout, plan.choices)
+                     plan.window, plan.settings, extras, summary, plan.layout, plan.choices, regional)
 
 
 __all__ = ["BudgetRun", "budget_from_check", "budget_to_files", "run_budget", "run_check", "run_network"]

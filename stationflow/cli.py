@@ -412,7 +412,14 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
         from .report.text import display_zone
 
         tz = display_zone(run.check.config) or "UTC"
-        lines += ["  " + describe_period(p, variable=run.quantity, timezone=tz) for p in run.periods]
+        from .report.outputs import scale_lines
+        from .report.text import describe_scales
+
+        scales = scale_lines(run)
+        for i, p in enumerate(run.periods):
+            lines.append("  " + describe_period(p, variable=run.quantity, timezone=tz))
+            if scales:
+                lines.append("    " + describe_scales(scales[i], unit=f"{run.unit} h-1"))
     if run.choices.get("wind") == "none":
         lines.append("no wind observed: advection cannot be estimated, so every row is undetermined "
                      "(map the wind columns in [observations.columns])")

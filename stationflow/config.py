@@ -122,6 +122,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                         "station heights differ by more than 30 m, else none",
                         ("auto", "measured", "potential_temperature", "regression", "none")),
         "interval": Key("", (str,), "analysis time step, e.g. '10min' (default: inferred from the data)"),
+        "regional": Key(True, (bool,), "also fit one plane through every good station of the network per time (the regional "
+                                       "scale): its rows have scale = regional in the budget table; see docs/method.md"),
         "window": Key("", (str,), "centred window for tendencies and averaged terms (default: from the data, the shortest "
                                   "whose tendency error is at most budget.min_rate, capped at 60 min)"),
         "min_stations": Key(3, (int,), "fewest good stations a plane fit may use"),

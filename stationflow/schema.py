@@ -62,6 +62,8 @@ COLUMNS: tuple[Column, ...] = (
     Column("u", "float64", "m s-1", "eastward (grid) wind, cluster mean", contract=True, compress=False),
     Column("v", "float64", "m s-1", "northward (grid) wind, cluster mean", contract=True, compress=False),
     Column("regime", "label", "1", "advective, in_situ, mixed, steady or undetermined", contract=True),
+    Column("scale", "label", "", "local: the plane of a cluster of neighbouring stations; regional: one plane through "
+                                 "the whole network (cluster 'network')"),
     Column("value_se", "float64", "{u}", SE + "value"),
     Column("advection_instant", "float64", RATE, "horizontal advection at the analysis time", compress=False),
     Column("advection_instant_se", "float64", RATE, SE + "advection_instant", compress=False),
@@ -95,6 +97,8 @@ BY_NAME = {c.name: c for c in COLUMNS}
 TABLE_COLUMNS = [c.name for c in COLUMNS if c.contract]
 #: the columns that label a row (time and cluster coordinates) rather than carry a computed term
 COORDINATES = ("time", "cluster", "stations", "latitude", "longitude")
+#: per-cluster labels that become table columns when the layout has them (after the contract columns)
+CLUSTER_LABELS = ("scale",)
 #: Parquet columns written without compression: continuous terms whose low bits carry the sensor noise, on
 #: which snappy saved under 5 % of the bytes (measured on the 300-station benchmark) at a third of the writer's time
 UNCOMPRESSED = frozenset(c.name for c in COLUMNS if not c.compress)
@@ -137,6 +141,7 @@ COORD_ATTRS = {
     "stations": {"long_name": BY_NAME["stations"].long_name},
     "latitude": {"units": "degrees_north", "standard_name": "latitude", "long_name": BY_NAME["latitude"].long_name},
     "longitude": {"units": "degrees_east", "standard_name": "longitude", "long_name": BY_NAME["longitude"].long_name},
+    "scale": {"long_name": BY_NAME["scale"].long_name},
 }
 
 

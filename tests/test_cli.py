@@ -54,7 +54,9 @@ def test_budget_table_columns_units_and_regimes(frost_out):
     assert list(csv.columns[: len(TABLE_COLUMNS)]) == TABLE_COLUMNS
     assert csv["time"].str.match(r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\dZ$").all()
     assert set(csv["regime"]) <= set(REGIMES)
-    assert csv["stations"].str.count(r"\+").eq(2).all()
+    local = csv["scale"] == "local"
+    assert csv.loc[local, "stations"].str.count(r"\+").eq(2).all()
+    assert (csv.loc[~local, "cluster"] == "network").all() and (~local).sum() == csv["time"].nunique()
     pq = pd.read_parquet(frost_out / "budget.parquet")
     assert len(pq) == len(csv) and list(pq.columns) == list(csv.columns)
     np.testing.assert_allclose(pq["advection"].to_numpy(), csv["advection"].to_numpy(), rtol=1e-5, equal_nan=True)

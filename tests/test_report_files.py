@@ -70,13 +70,14 @@ def test_streamed_files_equal_the_in_memory_table(memory_run, tmp_path, chunk):
                 assert a.dtype == b.dtype and (a == b).all(), name
         assert ds["regime"].attrs["flag_meanings"].split() == list(REGIMES)
     # the summary the report uses equals what the full table says
-    counts = ref["regime"].astype(str).value_counts()
+    counts = ref.loc[ref["scale"] == "local", "regime"].astype(str).value_counts()
     assert run.summary.regime_counts() == {k: int(counts.get(k, 0)) for k in run.summary.regime_counts()}
     assert run.periods == memory_run.periods
 
 
 def test_summary_arrows_and_medians_match_the_table(memory_run):
     t, s = memory_run.table, memory_run.summary
+    t = t[t["scale"] == "local"]  # the summary of the local clusters (the regional row has its own)
     det = t[t["regime"].astype(str) != "undetermined"]
     mean = det.groupby("cluster", observed=True)["u"].mean()
     arrows = s.arrows()
@@ -90,6 +91,9 @@ def test_running_regime_tally_matches_the_table(memory_run):
     # the per-cluster regime counts kept partition by partition equal a count over the whole table
     t, s = memory_run.table, memory_run.summary
     assert s.steps_added == len(s.times)
+    reg = t[t["scale"] == "regional"]["regime"].astype(str).value_counts()
+    assert {k: v for k, v in memory_run.regional.regime_counts().items() if v} == reg.to_dict()
+    t = t[t["scale"] == "local"]
     want = pd.crosstab(t["cluster"].astype(str), t["regime"].astype(str)).reindex(columns=list(REGIMES), fill_value=0)
     got = s.cluster_counts()
     assert got.loc[want.index].to_numpy().tolist() == want.to_numpy().tolist()

@@ -9,10 +9,12 @@ import pandas as pd
 from ..estimate.budget import REGIMES
 from ..run.plan import Layout
 from ..schema import (
+    CLUSTER_LABELS,
     COORD_ATTRS,
-    TABLE_COLUMNS,
+    COORDINATES,
     TIME_ATTRS,
     global_attrs,
+    table_columns,
     variable_attrs,
 )
 
@@ -28,7 +30,7 @@ def to_dataset(terms: dict, layout: Layout):
         data_vars[name] = (("time", "cluster"), arr, variable_attrs(name, layout))
     coords = {"time": ("time", pd.DatetimeIndex(layout.times).tz_convert("UTC").tz_localize(None).to_numpy("datetime64[ns]"),
                        TIME_ATTRS)}
-    for name in ("cluster", "stations"):
+    for name in ("cluster", "stations") + tuple(c for c in CLUSTER_LABELS if c in clusters):
         coords[name] = ("cluster", clusters[name].astype(str).to_numpy(), COORD_ATTRS[name])
     for name in ("latitude", "longitude"):
         coords[name] = ("cluster", clusters[name].to_numpy(float), COORD_ATTRS[name])
@@ -46,11 +48,15 @@ def to_table(ds) -> pd.DataFrame:
         "latitude": np.tile(ds["latitude"].values, n_t),
         "longitude": np.tile(ds["longitude"].values, n_t),
     }
+    for name in CLUSTER_LABELS:
+        if name in ds.coords:
+            labels = ds[name].values.astype(str)
+            cats = sorted(set(labels))
+            cols[name] = pd.Categorical.from_codes(np.tile(pd.Index(cats).get_indexer(labels), n_t), categories=cats)
     for name in ds.data_vars:
         if name == "regime":
             cols[name] = pd.Categorical.from_codes(ds[name].values.reshape(-1), categories=list(REGIMES))
         else:
             cols[name] = ds[name].values.reshape(-1)
     t = pd.DataFrame(cols, copy=False)
-    extra = [c for c in t.columns if c not in TABLE_COLUMNS]
-    return t[TABLE_COLUMNS + extra]
+    return t[table_columns([c for c in t.columns if c not in COORDINATES])]

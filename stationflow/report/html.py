@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import base64
 import html
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -95,6 +95,8 @@ class Page:
     method: list[str]
     columns: list[tuple[str, str, str]]  # (name, unit, meaning) of the budget table's columns
     kind: str = "other"  # temperature, concentration or other: which cautions
+    scales: list[str] = field(default_factory=list)  # the regional scale, then each main period at both scales
+    sensors: list[str] = field(default_factory=list)  # sensors whose bias would fake advection, worst first
 
 
 def write_report(path: str | Path, page: Page, figures: list[tuple[str, Path]], files: list[str]) -> Path:
@@ -117,6 +119,16 @@ def write_report(path: str | Path, page: Page, figures: list[tuple[str, Path]], 
                      "in-situ periods) with its mean standard error; mixed periods give both terms.</p>")
     else:
         parts.append("<p>No period of three or more steps had a clear regime.</p>")
+    if page.scales:
+        parts.append("<h2>Transport at two scales</h2><p>" + esc(page.scales[0]) + "</p>")
+        if page.scales[1:]:
+            parts.append('<p class="muted">For each main period: was the change carried in by the wind across the '
+                         "whole network (regional), within the cluster (local), both or neither? A scale counts when its "
+                         "mean advection exceeds twice its standard error and the smallest rate that counts.</p><ul>"
+                         + "".join(f"<li>{esc(x)}</li>" for x in page.scales[1:]) + "</ul>")
+    if page.sensors:
+        parts.append("<h2>Sensors that disagree with their neighbours</h2><ul>"
+                     + "".join(f"<li>{esc(x)}</li>" for x in page.sensors) + "</ul>")
     parts.append("<h2>How good is it</h2><ul>" + "".join(f"<li>{esc(q)}</li>" for q in page.quality) + "</ul>")
     parts.append("<h2>Clusters</h2>" + _table(page.cluster_table))
     parts.append("<h2>Figures</h2>")

@@ -13,7 +13,13 @@ from pathlib import Path
 
 import numpy as np
 
-from ..schema import COORD_ATTRS, TIME_ATTRS, global_attrs, variable_attrs
+from ..schema import (
+    CLUSTER_LABELS,
+    COORD_ATTRS,
+    TIME_ATTRS,
+    global_attrs,
+    variable_attrs,
+)
 from .tables import FileSink
 
 #: above this many cells per variable the NetCDF file is not compressed (speed over size)
@@ -43,7 +49,7 @@ class NetCDFFile(FileSink):
         tv = nc.createVariable("time", "f8", ("time",))
         tv.setncatts({**TIME_ATTRS, "units": "seconds since 1970-01-01 00:00:00", "calendar": "standard"})
         tv[:] = self._time_ns / 1e9
-        for name in ("cluster", "stations"):
+        for name in ("cluster", "stations") + tuple(c for c in CLUSTER_LABELS if c in lay.clusters):
             v = nc.createVariable(name, str, ("cluster",))
             v.setncatts(COORD_ATTRS[name])
             v[:] = lay.clusters[name].astype(str).to_numpy(object)
@@ -73,7 +79,8 @@ class NetCDFFile(FileSink):
             kw["contiguous"] = True  # each partition is one contiguous slab (time-major)
         var = nc.createVariable(name, dtype, ("time", "cluster"), **kw)
         var.set_auto_maskandscale(False)
-        var.setncatts({**attrs, "coordinates": "latitude longitude stations"})
+        labels = " ".join(c for c in CLUSTER_LABELS if c in self.layout.clusters)
+        var.setncatts({**attrs, "coordinates": f"latitude longitude stations {labels}".strip()})
         return var
 
     def _write(self, first: int, block: dict[str, np.ndarray]) -> None:

@@ -17,7 +17,7 @@ from ..network.grid import format_duration
 from . import files, tables
 from .html import Page
 from .painter import Painter
-from .text import describe_period, display_zone, show_time
+from .text import describe_period, describe_scales, display_zone, show_time, two_scales
 
 PACKAGES = ("numpy", "pandas", "scipy", "pyproj", "xarray", "pyarrow", "matplotlib", "statsmodels", "typer", "netCDF4")
 
@@ -220,6 +220,9 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
         "main_periods": lines,
+        "regional": ({"regimes": run.regional.regime_counts(),
+                      "main_periods": [describe_scales(x, unit=f"{run.unit} h-1") for x in scale_lines(run)]}
+                     if getattr(run, "regional", None) is not None else "off"),
         "qc": {"flags": flags},
     })
     if report:
@@ -232,6 +235,24 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
     rec["outputs"] = sorted({p.name for p in written} | {"run.json"})
     written.append(files.write_json(rec, out / "run.json"))
     return written, notes
+
+
+def scale_lines(run) -> list[dict]:
+    """For each main period, the advection at the regional and the local scale (:func:`text.two_scales`);
+    empty without the regional rows."""
+    if getattr(run, "regional", None) is None:
+        return []
+    return [two_scales(p, run.summary, run.regional, min_rate=run.settings.min_rate) for p in run.periods]
+
+
+def regional_sentence(run) -> str:
+    """What the network-scale plane says over the whole record."""
+    counts = run.regional.regime_counts()
+    shown = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in counts.items() if v)
+    return (f"One plane through all {run.layout.clusters['stations'].iloc[-1].split()[1]} stations per time (the regional "
+            f"scale, cluster '{run.layout.clusters['cluster'].iloc[-1]}', scale = regional in the table): {shown} steps. "
+            "Its error bars include the plane's misfit over the whole network (chi-square above one), which grows "
+            "with the network's size (docs/method.md).")
 
 
 def display_name(variable: str) -> str:
@@ -268,10 +289,14 @@ VERTICAL_WORDS = {
 
 def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path) -> Page:
     """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`."""
+    scales = []
+    if getattr(run, "regional", None) is not None:
+        scales = [regional_sentence(run)] + [f"{line}; {describe_scales(x, unit=f'{run.unit} h-1')}"
+                                             for line, x in zip(lines, scale_lines(run))]
     return Page(title=f"stationflow budget: {display_name(run.variable)}", summary=_summary_rows(run, inputs),
                 periods=lines, quality=_quality_lines(run, flags), cluster_table=_cluster_rows(run),
                 method=_method_lines(run), columns=_column_rows(out / "budget.parquet", run.unit),
-                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]))
+                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]), scales=scales)
 
 
 def _summary_rows(run, inputs: dict) -> list[tuple[str, str]]:

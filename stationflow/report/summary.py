@@ -43,19 +43,23 @@ class BudgetSummary:
     not_planar: np.ndarray | None = None  # per cluster
     planar_rows: np.ndarray | None = None  # per cluster: rows with both errors known
     implausible_rows: int = 0  # rows whose parts were each far larger than the change (budget.implausible)
+    columns: slice | None = None  # the partition's columns this summary keeps (None: all)
 
     @classmethod
-    def allocate(cls, times: pd.DatetimeIndex, clusters: pd.DataFrame) -> "BudgetSummary":
-        """An empty summary for ``times`` x ``clusters`` (every value undetermined until added)."""
+    def allocate(cls, times: pd.DatetimeIndex, clusters: pd.DataFrame, columns: slice | None = None) -> "BudgetSummary":
+        """An empty summary for ``times`` x ``clusters`` (every value undetermined until added); ``columns``: which
+        columns of each partition are these clusters (the local ones, or the regional row)."""
         shape = (len(times), len(clusters))
         return cls(times, clusters.reset_index(drop=True), np.full(shape, UNDETERMINED, np.int8),
                    {k: np.full(shape, np.nan, np.float32) for k in KEPT},
                    {k: np.zeros(shape[1]) for k in ARROWS}, {k: np.zeros(shape[1], np.int64) for k in ARROWS},
-                   tally=np.zeros((shape[1], len(REGIMES)), np.int64))
+                   tally=np.zeros((shape[1], len(REGIMES)), np.int64), columns=columns)
 
     def write(self, part) -> None:
         """Take a :class:`~stationflow.run.sinks.Partition` (the summary is a sink)."""
         first, block = part.first, part.terms
+        if self.columns is not None:
+            block = {k: v[:, self.columns] for k, v in block.items()}
         reg = np.asarray(block["regime"])
         sl = slice(first, first + reg.shape[0])
         self.regime[sl] = reg

@@ -19,10 +19,11 @@ from pathlib import Path
 from typing import Iterator
 
 import numpy as np
+import pandas as pd
 
 from ..estimate.budget import REGIMES
 from ..run.workers import BackgroundWriter
-from ..schema import UNCOMPRESSED, table_columns
+from ..schema import CLUSTER_LABELS, UNCOMPRESSED, table_columns
 from . import files
 
 CSV_ROW_LIMIT = 1_000_000
@@ -140,7 +141,11 @@ class TableFiles(FileSink):
         self._lon = clusters["longitude"].to_numpy(float)
         self._regimes = pa.array(list(REGIMES), pa.string())
         self._names = list(block)
-        self._columns = table_columns(self._names)
+        self._labels = [c for c in CLUSTER_LABELS if c in clusters]  # per-cluster labels (scale)
+        self._label_values = {c: pa.array(sorted(set(clusters[c].astype(str))), pa.string()) for c in self._labels}
+        self._label_codes = {c: pd.Index(self._label_values[c].to_pylist()).get_indexer(clusters[c].astype(str))
+                             for c in self._labels}
+        self._columns = table_columns(self._labels + self._names)
         self._schema = None
         sample = self._arrow(0, {n: v[:0] for n, v in block.items()})
         # every column is REQUIRED (no nulls: a missing number is NaN): the Parquet writer then writes
@@ -151,7 +156,8 @@ class TableFiles(FileSink):
             # filters on (time range, cluster): for the float columns both cost time and gain nothing
             pq.ParquetWriter(self._tmp["budget.parquet"], self.schema,
                              compression={c: "none" if c in UNCOMPRESSED else "snappy" for c in self.schema.names},
-                             use_dictionary=["cluster", "stations", "regime"], write_statistics=["time", "cluster"]))
+                             use_dictionary=["cluster", "stations", "regime", *self._labels],
+                             write_statistics=["time", "cluster"]))
         if self.write_csv:
             self._csv = self._stack.enter_context(
                 pacsv.CSVWriter(self._tmp["budget.csv"], self._csv_table(sample).schema,
@@ -170,6 +176,9 @@ class TableFiles(FileSink):
             "latitude": pa.array(np.tile(self._lat, k)),
             "longitude": pa.array(np.tile(self._lon, k)),
         }
+        for name in self._labels:
+            cols[name] = pa.DictionaryArray.from_arrays(pa.array(np.tile(self._label_codes[name], k), pa.int8()),
+                                                        self._label_values[name])
         for name in self._names:
             a = np.asarray(block[name]).reshape(-1)
             if name == "regime":

@@ -4,6 +4,7 @@ unpartitioned run.
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import os
 from typing import Iterator
@@ -54,6 +55,12 @@ def compute_partition(plan: BudgetPlan, rows: pd.DataFrame, first: int, last: in
         values, lapse = remove_lapse(values, plan)
     terms = compute_budget(values, ug, vg, plan.x, plan.y, plan.members, plan.settings, z=plan.z, wind_speed=speed,
                            lapse=lapse)
+    if plan.regional is not None:  # the network-scale plane: one more column, last
+        # no neighbouring clusters to learn a model error from: the fit's own misfit (chi-square) stands for it
+        regional = compute_budget(values, ug, vg, plan.x, plan.y, [plan.regional],
+                                  dataclasses.replace(plan.settings, model_error=False, model_network=None), z=plan.z,
+                                  wind_speed=speed, lapse=lapse)
+        terms = {k: np.concatenate([v, regional[k]], axis=1) for k, v in terms.items()}
     if plan.masts is not None and "t_air" in cells.values:
         upper, partner = plan.masts
         t = cells.values["t_air"]

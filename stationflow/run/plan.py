@@ -28,6 +28,10 @@ from .check import CheckResult, Progress, no_progress
 log = logging.getLogger(__name__)
 
 
+#: the cluster id of the regional (network-scale) rows
+REGIONAL_ID = "network"
+
+
 @dataclass
 class Layout:
     """The shape and labels of a budget: analysis times, clusters and what was budgeted."""
@@ -144,13 +148,25 @@ class BudgetPlan:
     times: pd.DatetimeIndex
     frame: pd.DataFrame
     lapse_stations: np.ndarray | None = None  # with vertical = measured: stations of the network-wide vertical fit
+    regional: np.ndarray | None = None  # with budget.regional: the stations of the network-scale fit
     choices: dict = field(default_factory=dict)  # what the defaults resolved to (vertical, window, noise...): run.json
 
     @cached_property
     def layout(self) -> Layout:
-        """Times, clusters and labels of this budget (computed once)."""
-        conv = _convergence(self.clusters["latitude"].to_numpy(), self.clusters["longitude"].to_numpy(), self.network.crs)
-        return Layout(self.times, self.clusters, conv, self.unit, self.variable, self.quantity)
+        """Times, clusters and labels of this budget (computed once): the local clusters, then the regional row."""
+        clusters = self.clusters
+        if self.regional is not None:
+            net = self.network.stations
+            row = pd.DataFrame({"cluster": [REGIONAL_ID], "stations": [f"all {self.regional.size} stations"],
+                                "latitude": [float(net["latitude"].mean())], "longitude": [float(net["longitude"].mean())]})
+            clusters = pd.concat([clusters.assign(scale="local"), row.assign(scale="regional")], ignore_index=True)
+        conv = _convergence(clusters["latitude"].to_numpy(), clusters["longitude"].to_numpy(), self.network.crs)
+        return Layout(self.times, clusters, conv, self.unit, self.variable, self.quantity)
+
+    @property
+    def n_local(self) -> int:
+        """Local clusters (the first columns of every partition; the regional row, if any, is last)."""
+        return len(self.members)
 
     @property
     def halo(self) -> int:
@@ -206,9 +222,12 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     if not frame["time"].is_monotonic_increasing:  # ingest leaves the rows in time order: usually no sort
         frame = frame.sort_values("time", kind="stable").reset_index(drop=True)
     unit = si_unit(var, data.units.get(var))
+    regional = st.regional if bc["regional"] else None
+    choices["regional"] = (f"one plane through the {regional.size} stations of the network per time" if regional is not None
+                           else "off (budget.regional = false)")
     return BudgetPlan(var, quantity, unit, st.network, st.clusters, st.members, st.ids, st.x, st.y, z, st.convergence,
-                      masts, settings, interval, window, _analysis_times(frame, interval), frame, lapse_stations,
-                      choices)
+                      masts, settings, interval, window, _analysis_times(frame, interval), frame,
+                      lapse_stations=lapse_stations, regional=regional, choices=choices)
 
 
 @dataclass
@@ -223,6 +242,7 @@ class _Stations:
     network: geometry.Network
     clusters: pd.DataFrame  # the usable clusters
     members: list[np.ndarray]  # their member stations, as rows of ``table``
+    regional: np.ndarray  # every station of the network (with the variable), as rows of ``table``
 
 
 def _stations(chk: CheckResult, config: Config, var: str, vertical: str, has_var: np.ndarray,
@@ -246,7 +266,8 @@ def _stations(chk: CheckResult, config: Config, var: str, vertical: str, has_var
     ok_rows = np.flatnonzero((net.clusters["status"] == "ok").to_numpy())
     to_full = np.array([index[sid] for sid in net.stations["station_id"]])  # network row -> full station row
     members = [to_full[net.members[i]] for i in ok_rows]
-    return _Stations(st_all, ids, x_all, y_all, conv, net, net.clusters.iloc[ok_rows].reset_index(drop=True), members)
+    return _Stations(st_all, ids, x_all, y_all, conv, net, net.clusters.iloc[ok_rows].reset_index(drop=True), members,
+                     np.sort(to_full))
 
 
 @dataclass

@@ -323,8 +323,12 @@ class Scenario:
         For each cluster and time: the tendency as the centred difference of
         the member-station mean value over the window, the advection at the
         member centroid averaged over the window, and their difference.
-        Returns ``time, cluster, tendency_true, advection_true, residual_true``.
+        Returns ``time, cluster, tendency_true, advection_true, residual_true``
+        for the local clusters (the regional rows' plane through a curved
+        field has no truth of this kind).
         """
+        if "scale" in table:
+            table = table[table["scale"].astype(str) == "local"]
         st = self.stations.set_index("station_id")
         times = pd.DatetimeIndex(sorted(pd.DatetimeIndex(table["time"]).unique()))
         out = []
