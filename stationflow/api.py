@@ -56,6 +56,7 @@ class BudgetRun:
     layout: Layout | None = None
     choices: dict = field(default_factory=dict)  # what the defaults resolved to (see BudgetPlan.choices)
     regional: BudgetSummary | None = None  # the network-scale rows (budget.regional), summarised
+    sensors: pd.DataFrame | None = None  # sensor offsets and gains against the neighbours (sensor_offsets.csv)
 
 
 def run_network(stations: pd.DataFrame, config: Config) -> geometry.Network:
@@ -148,7 +149,7 @@ def _result(plan: BudgetPlan, chk: CheckResult, summary: BudgetSummary, regional
     extras = {"inversion": summary.inversion.copy()} if summary.inversion is not None else {}
     periods = summary.periods(f"{plan.unit} h-1")
     return BudgetRun(chk, plan.network, None, None, periods, plan.variable, plan.quantity, plan.unit, plan.interval,
-                     plan.window, plan.settings, extras, summary, plan.layout, plan.choices, regional)
+                     plan.window, plan.settings, extras, summary, plan.layout, plan.choices, regional, plan.sensors)
 
 
 __all__ = ["BudgetRun", "budget_from_check", "budget_to_files", "run_budget", "run_check", "run_network"]

@@ -425,6 +425,13 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
                      "(map the wind columns in [observations.columns])")
     if run.choices.get("qc_tests_off"):
         lines.append("QC switched off: " + ", ".join(run.choices["qc_tests_off"]))
+    if getattr(run, "sensors", None) is not None and not run.sensors.empty:
+        worst = run.sensors.head(3)  # ranked: beyond twice their error first, then by the advection they would fake
+        unit = run.unit
+        lines.append("sensors whose bias would fake the most advection: " + ", ".join(
+            f"{r.station_id} bias {r.bias_at_typical_level:.2g} {unit} ({r.fake_advection:.2g} {unit}/h)"
+            for r in worst.itertuples()) + ("; corrected" if run.choices.get("calibration", {}).get("applied")
+                                             else "; not corrected (calibration.apply)") + " - see sensor_offsets.csv")
     acc = run.check.data.accounting
     lines.append(f"rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, rejected {acc['rows_rejected']:,}")
     lines += notes

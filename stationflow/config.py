@@ -115,6 +115,19 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                         "one vertical gradient cannot describe a kilometre of mountainside (common practice)"),
         "max_noise_amplification": Key(0.0, (int, float), "reject clusters whose gradient error per unit sensor noise exceeds this (0 = no limit) [km-1]"),
     },
+    "calibration": {
+        "estimate": Key(True, (bool,), "estimate each sensor's offset (and, for concentrations, gain) against its neighbours "
+                                       "and write sensor_offsets.csv (see docs/method.md)"),
+        "apply": Key(False, (bool,), "correct the values with the estimated offsets and gains before the plane fits "
+                                     "(run.json records it)"),
+        "min_wind": Key(2.0, (int, float), "network-median wind [m s-1] at or above which a time counts as well mixed for "
+                                           "the estimate (common practice)"),
+        "min_sun": Key(10.0, (int, float), "sun elevation [degree] above which a time counts as daytime for the estimate"),
+        "humidity_correction": Key("none", (str,), "correction of low-cost light-scattering PM2.5 readings for humidity "
+                                                   "before anything else: barkjohn2021 = the US-wide equation of Barkjohn "
+                                                   "et al. (2021) with relative humidity from the same or the nearest "
+                                                   "station (see docs/method.md)", ("none", "barkjohn2021")),
+    },
     "budget": {
         "variable": Key("air_temperature", (str,), "the scalar to budget (air_temperature or a user scalar such as pm2_5)"),
         "vertical": Key("auto", (str,), "elevation handling for air temperature: measured = a vertical gradient fitted per time "

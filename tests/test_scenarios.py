@@ -87,6 +87,21 @@ def test_frost_faulty_sensors_named_and_cold_pool_left_alone(frost_run):
     assert not (flags == qc.BAD).any()
 
 
+def test_town_with_the_sensor_corrections_applied_is_closer_to_the_truth(town_run):
+    # calibration.apply corrects the gain-biased sensor before the fits: the plume's advection error shrinks
+    run, sc = town_run
+    folder = ROOT / "sample_data" / "town"
+    data = config.load(folder / "config.toml").to_dict()
+    data["calibration"]["apply"] = True
+    fixed = api.budget_from_check(run.check, config.from_dict(data))
+    errs = {}
+    for name, r in (("as read", run), ("corrected", fixed)):
+        d = _joined(r, sc)
+        p = pd.concat([_phase(d, ph) for ph in sc.phases[:2]])
+        errs[name] = np.median(np.abs(p["advection"] - p["advection_true"])) / np.median(np.abs(p["advection_true"]))
+    assert errs["corrected"] < errs["as read"] and errs["corrected"] < 0.25, errs
+
+
 def test_frost_mast_shows_the_inversion(frost_run):
     run, sc = frost_run
     inv = pd.Series(run.extras["inversion"], index=pd.DatetimeIndex(run.dataset["time"].values).tz_localize("UTC"))
@@ -106,7 +121,8 @@ def test_town_phases_and_truth(town_run):
         assert len(determined) > 0.5 * len(p), phase["name"]
         assert (determined["regime"] == "advective").mean() > 0.9, phase["name"]
         rel = np.median(np.abs(p["advection"] - p["advection_true"])) / np.median(np.abs(p["advection_true"]))
-        assert rel < 0.25, (phase["name"], rel)
+        # one sensor reads 25 % high (synthetic.TOWN_GAIN_SENSOR): its fake gradients cost a few percent here
+        assert rel < 0.3, (phase["name"], rel)
     assert _phase(d, arrive)["advection"].median() > 10 and _phase(d, leave)["advection"].median() < -10
     e = _phase(d, evening)
     # where the truth is made in place (in-situ part over 3x the advection), the determined labels say so; a few

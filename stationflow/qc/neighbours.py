@@ -124,6 +124,23 @@ def agrees_with_neighbours(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: 
     return _judge(vals, pred, leverage, rules, relaxed)
 
 
+def neighbour_predictions(values: np.ndarray, x: np.ndarray, y: np.ndarray, z: np.ndarray, *, neighbours: int = 6,
+                          sigma: float = 1.0) -> np.ndarray:
+    """Each station's value (n_times, n_stations) predicted from its ``neighbours`` nearest stations by a
+    leave-one-out plane fit at the station, heights adjusted with the network's vertical gradient of each
+    time: the predictor of :func:`agrees_with_neighbours`, for other uses (sensor offsets)."""
+    from scipy.spatial import cKDTree
+
+    vals = np.asarray(values, float)
+    n_s = vals.shape[1]
+    k = min(neighbours, n_s - 1)
+    if k < 3:
+        return np.full(vals.shape, np.nan)
+    _, idx = cKDTree(np.column_stack([x, y])).query(np.column_stack([x, y]), k=k + 1)
+    hood = _Neighbourhood(np.asarray(x), np.asarray(y), np.asarray(z, float), [idx[i, 1:] for i in range(n_s)], None)
+    return _buddy_predictions(vals, hood, sigma)[0]
+
+
 @dataclass
 class _Neighbourhood:
     """Station positions [m], each station's neighbours, and the stations whose neighbours are too far."""

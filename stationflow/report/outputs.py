@@ -201,6 +201,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
             written += sink.paths
             notes += getattr(sink, "notes", [])
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
+    if getattr(run, "sensors", None) is not None:
+        written.append(files.write_csv(run.sensors, out / "sensor_offsets.csv", time_columns=(), float_format="%.6g"))
     lines = [describe_period(p, variable=run.quantity, timezone=display_zone(run.check.config) or "UTC")
              for p in run.periods]
     # everything the report says is prepared while the figures are still being drawn
@@ -220,6 +222,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
         "main_periods": lines,
+        "calibration": run.choices.get("calibration", {}),
+        "humidity_correction": run.choices.get("humidity_correction") or "none",
         "regional": ({"regimes": run.regional.regime_counts(),
                       "main_periods": [describe_scales(x, unit=f"{run.unit} h-1") for x in scale_lines(run)]}
                      if getattr(run, "regional", None) is not None else "off"),
@@ -243,6 +247,28 @@ def scale_lines(run) -> list[dict]:
     if getattr(run, "regional", None) is None:
         return []
     return [two_scales(p, run.summary, run.regional, min_rate=run.settings.min_rate) for p in run.periods]
+
+
+def sensor_lines(run, *, top: int = 10) -> list[str]:
+    """The sensors ranked by the advection their bias would fake, worst first (the report's list)."""
+    t = getattr(run, "sensors", None)
+    if t is None or t.empty:
+        return []
+    cal = run.choices.get("calibration", {})
+    unit = run.unit
+    gains = bool((t["gain_se"] > 0).any())
+    head = (f"Each sensor against what its neighbours predict ({cal.get('method', '')}). "
+            f"{'Corrections were applied before the plane fits (calibration.apply).' if cal.get('applied') else 'Not applied (calibration.apply = false): the budget uses the values as read.'} "
+            "Ranked: biases beyond twice their error first, then by the advection the bias would fake in the median "
+            "wind; sensor_offsets.csv has every station.")
+    lines = [head]
+    for r in t.head(top).itertuples():  # ranked in the plan: beyond twice their error first, then by fake advection
+        sig = bool(r.beyond_two_se)
+        gain = f", gain {r.gain:.3f} +/- {r.gain_se:.3f}" if gains else ""
+        lines.append(f"{r.station_id}: offset {r.offset:+.3g} +/- {r.offset_se:.2g} {unit}{gain} ({r.n_periods} hours); "
+                     f"would fake up to {r.fake_advection:.2g} {unit}/h of advection"
+                     + (" - beyond twice its error: check this sensor" if sig else " - within twice its error"))
+    return lines
 
 
 def regional_sentence(run) -> str:
@@ -296,7 +322,8 @@ def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path) 
     return Page(title=f"stationflow budget: {display_name(run.variable)}", summary=_summary_rows(run, inputs),
                 periods=lines, quality=_quality_lines(run, flags), cluster_table=_cluster_rows(run),
                 method=_method_lines(run), columns=_column_rows(out / "budget.parquet", run.unit),
-                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]), scales=scales)
+                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]), scales=scales,
+                sensors=sensor_lines(run))
 
 
 def _summary_rows(run, inputs: dict) -> list[tuple[str, str]]:

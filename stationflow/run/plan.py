@@ -149,6 +149,7 @@ class BudgetPlan:
     frame: pd.DataFrame
     lapse_stations: np.ndarray | None = None  # with vertical = measured: stations of the network-wide vertical fit
     regional: np.ndarray | None = None  # with budget.regional: the stations of the network-scale fit
+    sensors: pd.DataFrame | None = None  # sensor_offsets.csv: offsets and gains against the neighbours
     choices: dict = field(default_factory=dict)  # what the defaults resolved to (vertical, window, noise...): run.json
 
     @cached_property
@@ -196,6 +197,10 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     interval = _interval(config, obs, chk.qc.interval)
     sample = _NoiseSample.of(obs, st.ids)
     values = np.where(mask_q, quantity_values, np.nan)
+    humidity = {}
+    if config["calibration"]["humidity_correction"] != "none":
+        values, humidity = _humidity_corrected(values, var, obs, usable, st, sample, config)
+    sensors, calibration_info, values = _sensor_biases(values, var, obs, usable, st, sample, interval, config)
     noise, noise_info = _reading_noise(var, quantity, config, sample, values)
     settings, window, window_source = _settings(config, var, vertical, noise, st, interval)
     z = st.table["elevation"].to_numpy(float)
@@ -208,7 +213,8 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
               if not on]
     choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
                "qc_tests_off": qc_off, "min_rate": settings.min_rate, "offset": settings.offset,
-               "offset_source": offset_uncertainty(var, config)[1], **noise_info}
+               "offset_source": offset_uncertainty(var, config)[1], "calibration": calibration_info,
+               "humidity_correction": humidity, **noise_info}
     # the rows and values the estimator may use
     frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
     frame["q"] = values
@@ -227,7 +233,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
                            else "off (budget.regional = false)")
     return BudgetPlan(var, quantity, unit, st.network, st.clusters, st.members, st.ids, st.x, st.y, z, st.convergence,
                       masts, settings, interval, window, _analysis_times(frame, interval), frame,
-                      lapse_stations=lapse_stations, regional=regional, choices=choices)
+                      lapse_stations=lapse_stations, regional=regional, choices=choices, sensors=sensors)
 
 
 @dataclass
@@ -350,6 +356,103 @@ def _add_wind(frame: pd.DataFrame, obs: pd.DataFrame, usable: dict, config: Conf
         choices["wind_noise_source"] = "learned from second differences of each station's wind components"
     else:
         choices["wind_noise_source"] = "uncertainty.wind_component"
+
+
+#: analysis times the sensor biases are estimated on, at most (evenly spaced over the record)
+MAX_CALIBRATION_TIMES = 1000
+
+
+def _sensor_biases(values: np.ndarray, var: str, obs: pd.DataFrame, usable: dict, st: _Stations,
+                   sample: _NoiseSample, interval: pd.Timedelta, config: Config
+                   ) -> tuple[pd.DataFrame | None, dict, np.ndarray]:
+    """(sensor_offsets table, what run.json records, the values, corrected when ``calibration.apply``)."""
+    from ..estimate import calibration
+    from ..network.geometry import to_lonlat
+
+    cc = config["calibration"]
+    if not cc["estimate"]:
+        return None, {"estimated": False, "applied": False}, values
+    times = _analysis_times(obs, interval)
+    stride = max(1, int(np.ceil(len(times) / MAX_CALIBRATION_TIMES)))
+    net = st.regional  # the network's stations, as rows of the station table
+    col = np.full(len(st.ids), -1)
+    col[net] = np.arange(net.size)
+    grid_v = _strided_grid(values, sample, col, net.size, times, interval, stride)
+    speed = None
+    if "wind_speed" in obs:
+        spd = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), obs["wind_speed"].to_numpy(float), np.nan)
+        # every station's wind (anemometers may stand apart from the sensors of the variable)
+        speed = _strided_grid(spd, sample, np.arange(len(st.ids)), len(st.ids), times, interval, stride)
+    cand = times[::stride]
+    lon0, lat0 = (float(a[0]) for a in to_lonlat(np.array([st.x[net].mean()]), np.array([st.y[net].mean()]),
+                                                  st.network.crs))
+    selection = calibration.select_times(cand, speed, lat0, lon0, min_wind=float(cc["min_wind"]),
+                                         min_sun=float(cc["min_sun"]))
+    concentration = kind_of(var, config["observations"]["kinds"]) == "concentration"
+    b = calibration.estimate_biases(grid_v, cand, (st.x[net], st.y[net], st.table["elevation"].to_numpy(float)[net]),
+                                    concentration=concentration, selection=selection)
+    table = pd.DataFrame({"station_id": [st.ids[i] for i in net], "variable": var, "offset": b.offset,
+                          "offset_se": b.offset_se, "gain": b.gain, "gain_se": b.gain_se, "n_periods": b.n_periods,
+                          "method": b.method})
+    with np.errstate(invalid="ignore"):
+        typical = np.nanmedian(grid_v, axis=0)
+        effect = np.abs(b.offset + (b.gain - 1.0) * typical)  # the bias at the station's typical level
+    table["bias_at_typical_level"] = effect
+    wind = float(np.nanmedian(speed)) if speed is not None and np.isfinite(speed).any() else np.nan
+    table["fake_advection"] = calibration.fake_advection(effect, st.x[net], st.y[net], _local_members(st), wind)
+    with np.errstate(invalid="ignore"):
+        table["beyond_two_se"] = (np.abs(b.offset) > 2 * b.offset_se) | (concentration & (np.abs(b.gain - 1) > 2 * b.gain_se))
+    # ranked: biases beyond twice their error first, then by the advection they would fake
+    table = table.sort_values(["beyond_two_se", "fake_advection"], ascending=False, kind="stable", na_position="last")
+    table = table.reset_index(drop=True)
+    info = {"estimated": True, "applied": bool(cc["apply"]), "method": b.method,
+            "stations_beyond_two_se": table.loc[table["beyond_two_se"], "station_id"].tolist()}
+    if cc["apply"]:
+        full = calibration.Biases(np.zeros(len(st.ids)), None, np.ones(len(st.ids)), None, None, b.method)
+        full.offset[net], full.gain[net] = np.nan_to_num(b.offset), b.gain
+        values = full.correct(values, sample.codes)
+    return table, info, values
+
+
+def _local_members(st: _Stations) -> list[np.ndarray]:
+    """The local clusters' members as positions in ``st.regional`` (the network's own order)."""
+    pos = np.full(len(st.ids), -1)
+    pos[st.regional] = np.arange(st.regional.size)
+    return [pos[m] for m in st.members]
+
+
+def _strided_grid(values: np.ndarray, sample: _NoiseSample, col: np.ndarray, n_cols: int, times: pd.DatetimeIndex,
+                  interval: pd.Timedelta, stride: int) -> np.ndarray:
+    """Bin means (every ``stride``-th analysis time, network stations) of per-row ``values``."""
+    b = np.ceil((sample.time_ns - times[0].value) / interval.value).astype(np.int64)
+    c = col[np.maximum(sample.codes, 0)]
+    keep = (b >= 0) & (b < len(times)) & (b % stride == 0) & (sample.codes >= 0) & (c >= 0) & np.isfinite(values)
+    n_rows = (len(times) + stride - 1) // stride
+    flat = (b[keep] // stride) * n_cols + c[keep]
+    sums = np.bincount(flat, weights=values[keep], minlength=n_rows * n_cols)
+    counts = np.bincount(flat, minlength=n_rows * n_cols)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (sums / counts).reshape(n_rows, n_cols)
+
+
+def _humidity_corrected(values: np.ndarray, var: str, obs: pd.DataFrame, usable: dict, st: _Stations,
+                        sample: _NoiseSample, config: Config) -> tuple[np.ndarray, dict]:
+    """Low-cost PM2.5 readings corrected for humidity (:func:`stationflow.estimate.calibration.barkjohn2021`), the
+    relative humidity from the same station, else the nearest station that reports it at that time."""
+    from ..estimate import calibration
+
+    if kind_of(var, config["observations"]["kinds"]) != "concentration":
+        raise ConfigError(f"calibration.humidity_correction is for concentrations (PM2.5); {var} is not one "
+                          f"(declare its kind in [observations.kinds] if it is)")
+    if "relative_humidity" not in obs:
+        raise ConfigError("calibration.humidity_correction needs relative_humidity in the observations")
+    rh = np.where(usable.get("relative_humidity", np.ones(len(obs), bool)), obs["relative_humidity"].to_numpy(float),
+                  np.nan)
+    filled, source = calibration.nearest_humidity(rh, sample.codes, sample.time_ns, st.x, st.y)
+    corrected = calibration.barkjohn2021(values, filled)
+    lost = int(np.sum(np.isfinite(values) & ~np.isfinite(corrected)))
+    return corrected, {"equation": "Barkjohn et al. (2021): PM2.5 = 0.524 PA - 0.0862 RH + 5.75",
+                       "from_nearest_station": int(np.sum(source == 1)), "without_humidity": lost}
 
 
 def _analysis_times(frame: pd.DataFrame, interval: pd.Timedelta) -> pd.DatetimeIndex:

@@ -485,6 +485,10 @@ def frost_valley(seed: int = 7) -> Scenario:
     return Scenario("frost", st, obs, f, start, lat0, lon0, "air_temperature", fault_table, phases, config)
 
 
+#: the town sensor with a gain error, and its gain
+TOWN_GAIN_SENSOR, TOWN_GAIN = "BW12", 1.25
+
+
 def smoke_town(seed: int = 11) -> Scenario:
     """An afternoon and evening in Brackwater, an invented town with 20 low-cost PM2.5 sensors.
 
@@ -494,7 +498,8 @@ def smoke_town(seed: int = 11) -> Scenario:
     under a shallow boundary layer and a local source (wood stoves, traffic)
     raises PM2.5 in place, most in the old town centre.  Three weather
     stations (BW-M1..M3) measure wind.  Sensor noise about 2 ug/m3,
-    dropouts of a few percent, one sensor offline for two hours.
+    dropouts of a few percent, one sensor offline for two hours, and one
+    (:data:`TOWN_GAIN_SENSOR`) reading :data:`TOWN_GAIN` times the truth (a gain error).
     """
     lat0, lon0 = 41.65, -4.72
     st = network(20, radius_km=6.0, seed=seed, lat0=lat0, lon0=lon0, prefix="BW", jitter=0.3)
@@ -519,7 +524,9 @@ def smoke_town(seed: int = 11) -> Scenario:
     rng = np.random.default_rng(seed)
     pm = sample(f, st, times, variable="pm2_5", noise=0.0, seed=seed, start=start, wind=False, offset=1.0)
     noise_sd = 1.5 + 0.05 * pm["pm2_5"].to_numpy()
-    pm["pm2_5"] = np.round(np.maximum(pm["pm2_5"].to_numpy() + rng.normal(0, 1, len(pm)) * noise_sd, 0.0), 1)
+    reading = pm["pm2_5"].to_numpy() + rng.normal(0, 1, len(pm)) * noise_sd
+    reading = np.where(pm["station_id"] == TOWN_GAIN_SENSOR, reading * TOWN_GAIN, reading)  # a sensor reading high
+    pm["pm2_5"] = np.round(np.maximum(reading, 0.0), 1)
     w = sample(f, met.assign(elevation=700.0), times, variable="air_temperature", noise=0.0, wind_noise=0.3,
                seed=seed + 1, start=start)
     w = w.drop(columns=["air_temperature"])
@@ -536,7 +543,7 @@ def smoke_town(seed: int = 11) -> Scenario:
     config = {
         "observations": {"columns": {"sensor": "station_id", "timestamp_utc": "time", "pm25_ugm3": "pm2_5",
                                      "wind_ms": "wind_speed", "wind_dir": "wind_from_direction"},
-                         "units": {"pm2_5": "ug/m3"}},
+                         "units": {"pm2_5": "ug/m3"}, "kinds": {"pm2_5": "concentration"}},
         "budget": {"variable": "pm2_5"},
     }
     return Scenario("town", stations, obs, f, start, lat0, lon0, "pm2_5", pd.DataFrame(columns=["station_id", "time", "variable", "kind"]),
