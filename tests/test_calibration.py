@@ -171,3 +171,33 @@ def test_the_town_demo_finds_its_gain_biased_sensor():
     s = run.sensors.set_index("station_id").loc[synthetic.TOWN_GAIN_SENSOR]
     assert s["gain"] - 1 > 2 * s["gain_se"]  # reads high, beyond twice its error
     assert run.sensors["station_id"].iloc[0] == synthetic.TOWN_GAIN_SENSOR
+
+
+def test_the_humidity_correction_runs_before_the_budget_with_humidity_from_the_nearest_station():
+    from stationflow import config
+    from stationflow.read.canonical import IngestResult
+    from stationflow.run.check import CheckResult
+    from stationflow.run.plan import plan_budget
+
+    st = synthetic.network(12, radius_km=5.0, seed=1)
+    times = pd.date_range("2026-08-20 10:00", periods=30, freq="10min", tz="UTC")
+    rows = pd.MultiIndex.from_product([times, st["station_id"]], names=["time", "station_id"]).to_frame(index=False)
+    rng = np.random.default_rng(0)
+    rows["pm2_5"] = 20 + rng.normal(0, 1, len(rows))
+    rh_t = 60 + 5 * np.sin(np.arange(len(times)) / 4.0)  # the same at every station at a time
+    rh = np.repeat(rh_t, len(st))
+    rows["relative_humidity"] = np.where(rows["station_id"].isin(st["station_id"].iloc[:4]), rh, np.nan)
+    rows["station_id"] = pd.Categorical(rows["station_id"])
+    obs = rows[["station_id", "time", "pm2_5", "relative_humidity"]]
+    cfg = config.from_dict({"calibration": {"humidity_correction": "barkjohn2021"}, "budget": {"variable": "pm2_5"},
+                            "observations": {"kinds": {"pm2_5": "concentration"}}})
+    from stationflow import qc
+
+    data = IngestResult(obs, st.drop(columns=["x", "y"]), pd.DataFrame(columns=["file", "line", "reason"]), {},
+                        {"pm2_5": "ug m-3"}, ["generated"])
+    res = qc.run_qc(obs, data.stations, cfg)
+    plan = plan_budget(CheckResult(data, res, None, None, None, None, cfg), cfg)
+    want = 0.524 * obs["pm2_5"].to_numpy() - 0.0862 * rh + 5.75  # humidity at the time, from whichever station
+    good = res.usable()["pm2_5"]
+    np.testing.assert_allclose(plan.frame["q"].to_numpy()[good], want[good], rtol=1e-12)
+    assert plan.choices["humidity_correction"]["from_nearest_station"] == int((~rows["relative_humidity"].notna()).sum())
