@@ -181,7 +181,6 @@ def solve_offsets(P, m: np.ndarray, m_se: np.ndarray) -> tuple[np.ndarray, np.nd
     field and is left out), and their standard errors from ``m_se`` (exactly up to
     :data:`EXACT_ERRORS_UP_TO` stations, else each station's own)."""
     from scipy.sparse import identity
-    from scipy.sparse.linalg import lsqr
 
     n = len(m)
     ok = np.isfinite(m) & np.isfinite(m_se)
@@ -195,6 +194,8 @@ def solve_offsets(P, m: np.ndarray, m_se: np.ndarray) -> tuple[np.ndarray, np.nd
         a[ok] = pinv @ m[ok]
         se[ok] = np.sqrt((pinv ** 2) @ (m_se[ok] ** 2))
     else:
+        from scipy.sparse.linalg import lsqr
+
         a[ok] = lsqr(M, m[ok], damp=1e-6, atol=1e-10, btol=1e-10, iter_lim=10 * n)[0]
         se[ok] = m_se[ok]
     return a, se
