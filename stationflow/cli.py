@@ -374,19 +374,17 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
     the QC overview as soon as QC is done, the budget figures as soon as the
     last partition is (while the files are closed).
     """
-    from concurrent.futures import ThreadPoolExecutor
-
     from .api import budget_to_files
     from .report.outputs import submit_budget_figures, submit_qc_figure, write_budget
     from .report.painter import Painter
-    from .run.workers import import_ahead
+    from .run.workers import import_ahead, side_task
 
     import_ahead()
-    with Painter() as painter, ThreadPoolExecutor(1, thread_name_prefix="stationflow-qc-figure") as side:
+    with Painter() as painter:
         chk = _checked(obs, stations, cfg, out, report, command="budget")
         # the QC overview's image is binned on a thread beside the budget's set-up (both only read the
         # checked observations), then drawn by the figure worker
-        qc_job = side.submit(submit_qc_figure, painter, out, chk)
+        qc_job = side_task(submit_qc_figure, painter, out, chk, name="qc-figure")
         figs: dict = {}
         run = budget_to_files(chk, cfg, out, variable=variable, csv=csv, progress=report, engine=engine,
                               scheduler=scheduler,

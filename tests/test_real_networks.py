@@ -7,6 +7,7 @@ import json
 import tomllib
 from pathlib import Path
 
+import pandas as pd
 import pytest
 
 from stationflow.cli import app
@@ -39,3 +40,13 @@ def test_real_network_runs_with_its_facts(runner, tmp_path, folder):
     check = json.loads((tmp_path / "check" / "run.json").read_text())
     assert check["stations"] == expect["stations_read"]
     assert run["clusters"]["usable"] >= expect["clusters_usable_min"]
+    table = pd.read_parquet(tmp_path / "budget" / "budget.parquet")
+    regional = table[table["scale"] == "regional"]
+    assert len(regional) == table["time"].nunique()  # one network-scale row per analysis time
+    if "regional_bearing" in expect:
+        lo, hi = expect["regional_bearing"]
+        bearing = regional["gradient_bearing"].dropna()
+        assert len(bearing) and ((bearing > lo) & (bearing < hi)).all(), bearing.tolist()
+    if "sensor_rows" in expect:
+        sensors = pd.read_csv(tmp_path / "budget" / "sensor_offsets.csv")
+        assert len(sensors) == expect["sensor_rows"] and sensors["offset_se"].notna().all()

@@ -82,9 +82,9 @@ def _remove(path: Path) -> None:
     if path.stat().st_size < (64 << 20):
         path.unlink()
         return
-    import threading
+    from ..run.workers import in_background
 
-    threading.Thread(target=path.unlink, kwargs={"missing_ok": True}, name="stationflow-remove").start()
+    in_background(path.unlink, True, name="remove")  # missing_ok=True
 
 
 def write_with(path: str | Path, writer: Callable[[Path], None]) -> Path:

@@ -249,6 +249,20 @@ def scale_lines(run) -> list[dict]:
     return [two_scales(p, run.summary, run.regional, min_rate=run.settings.min_rate) for p in run.periods]
 
 
+def corrections_sentence(run) -> str:
+    """What was done to the values before the fits: the humidity correction, the sensor corrections."""
+    parts = []
+    hum = run.choices.get("humidity_correction") or {}
+    if hum:
+        parts.append(f"humidity correction of the PM2.5 readings, {hum['equation']} (relative humidity from the nearest "
+                     f"station for {hum['from_nearest_station']:,} readings; {hum['without_humidity']:,} readings "
+                     "without humidity nearby left out)")
+    cal = run.choices.get("calibration") or {}
+    if cal.get("applied"):
+        parts.append("each sensor's estimated offset (and gain) removed (calibration.apply; sensor_offsets.csv)")
+    return "; ".join(parts) if parts else "none (values as read, after quality control)"
+
+
 def sensor_lines(run, *, top: int = 10) -> list[str]:
     """The sensors ranked by the advection their bias would fake, worst first (the report's list)."""
     t = getattr(run, "sensors", None)
@@ -344,6 +358,7 @@ def _summary_rows(run, inputs: dict) -> list[tuple[str, str]]:
         ("How the window was chosen", run.choices.get("window_source", "")),
         ("Station heights", VERTICAL_WORDS.get(run.choices.get("vertical", ""), str(run.choices.get("vertical", "")))),
         ("Sensor errors", noise_sentence(run)),
+        ("Corrections before the fits", corrections_sentence(run)),
     ]
 
 

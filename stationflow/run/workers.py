@@ -144,6 +144,33 @@ def ordered_map(job: Callable[[Any], Any], items: list, threads: int) -> Iterato
                 fut.cancel()
 
 
+def in_background(fn: Callable[..., Any], *args: Any, name: str = "background") -> None:
+    """Run ``fn(*args)`` on a thread of its own and do not wait for it (the thread is not a daemon: the
+    interpreter waits for it before it exits).  In-process: run it here."""
+    if in_process():
+        fn(*args)
+        return
+    threading.Thread(target=fn, args=args, name=f"stationflow-{name}").start()
+
+
+def side_task(fn: Callable[..., Any], *args: Any, name: str = "side") -> Future:
+    """Start ``fn(*args)`` on a thread beside the caller's work; its result (or error) in the returned
+    future.  In-process: run it here and return a finished future."""
+    if in_process():
+        return inline(fn, args, {})
+    fut: Future = Future()
+
+    def run() -> None:
+        ok, value = outcome(fn, args, {})
+        if ok:
+            fut.set_result(value)
+        else:
+            fut.set_exception(value)
+
+    threading.Thread(target=run, name=f"stationflow-{name}", daemon=True).start()
+    return fut
+
+
 class BackgroundWriter:
     """Calls made on one background thread, in order, with at most one waiting (memory stays bounded).
 
