@@ -197,10 +197,11 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     interval = _interval(config, obs, chk.qc.interval)
     sample = _NoiseSample.of(obs, st.ids)
     values = np.where(mask_q, quantity_values, np.nan)
+    inputs = _Inputs(var, obs, usable, st, sample, config)
     humidity = {}
     if config["calibration"]["humidity_correction"] != "none":
-        values, humidity = _humidity_corrected(values, var, obs, usable, st, sample, config)
-    sensors, calibration_info, values = _sensor_biases(values, var, obs, usable, st, sample, interval, config)
+        values, humidity = _humidity_corrected(values, inputs)
+    sensors, calibration_info, values = _sensor_biases(values, inputs, interval)
     noise, noise_info = _reading_noise(var, quantity, config, sample, values)
     settings, window, window_source = _settings(config, var, vertical, noise, st, interval)
     z = st.table["elevation"].to_numpy(float)
@@ -218,7 +219,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     # the rows and values the estimator may use
     frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
     frame["q"] = values
-    _add_wind(frame, obs, usable, config, settings, sample, choices)
+    _add_wind(frame, inputs, settings, choices)
     masts = _masts(st.table, st.x, st.y)
     if masts is not None and "air_temperature" in obs:
         frame["t_air"] = np.where(usable.get("air_temperature", np.ones(len(obs), bool)),
@@ -330,10 +331,10 @@ def _settings(config: Config, var: str, vertical: str, noise: np.ndarray, st: _S
     return settings, window, window_source
 
 
-def _add_wind(frame: pd.DataFrame, obs: pd.DataFrame, usable: dict, config: Config, settings: BudgetSettings,
-              sample: _NoiseSample, choices: dict) -> None:
+def _add_wind(frame: pd.DataFrame, inputs: "_Inputs", settings: BudgetSettings, choices: dict) -> None:
     """The wind components (true axes, calm as zero) and speed the estimator may use; the wind noise learned
     from them unless declared."""
+    obs, usable, config, sample = inputs.obs, inputs.usable, inputs.config, inputs.sample
     if "wind_speed" not in obs or "wind_from_direction" not in obs:
         log.warning("no wind observations: advection cannot be estimated, so every row is undetermined")
         choices["wind"] = "none"
@@ -358,14 +359,31 @@ def _add_wind(frame: pd.DataFrame, obs: pd.DataFrame, usable: dict, config: Conf
         choices["wind_noise_source"] = "uncertainty.wind_component"
 
 
+@dataclass
+class _Inputs:
+    """What the plan's steps read: the variable, the observations and their QC masks, the stations and the
+    network, each row's station and time, and the configuration."""
+
+    var: str
+    obs: pd.DataFrame
+    usable: dict
+    st: _Stations
+    sample: _NoiseSample
+    config: Config
+
+    def good(self, name: str) -> np.ndarray:
+        """The values of ``name`` QC let through, NaN elsewhere."""
+        return np.where(self.usable.get(name, np.ones(len(self.obs), bool)), self.obs[name].to_numpy(float), np.nan)
+
+
 #: analysis times the sensor biases are estimated on, at most (evenly spaced over the record)
 MAX_CALIBRATION_TIMES = 1000
 
 
-def _sensor_biases(values: np.ndarray, var: str, obs: pd.DataFrame, usable: dict, st: _Stations,
-                   sample: _NoiseSample, interval: pd.Timedelta, config: Config
+def _sensor_biases(values: np.ndarray, inputs: _Inputs, interval: pd.Timedelta
                    ) -> tuple[pd.DataFrame | None, dict, np.ndarray]:
     """(sensor_offsets table, what run.json records, the values, corrected when ``calibration.apply``)."""
+    var, obs, st, sample, config = inputs.var, inputs.obs, inputs.st, inputs.sample, inputs.config
     from ..estimate import calibration
     from ..network.geometry import to_lonlat
 
@@ -377,12 +395,12 @@ def _sensor_biases(values: np.ndarray, var: str, obs: pd.DataFrame, usable: dict
     net = st.regional  # the network's stations, as rows of the station table
     col = np.full(len(st.ids), -1)
     col[net] = np.arange(net.size)
-    grid_v = _strided_grid(values, sample, col, net.size, times, interval, stride)
+    grid = _StridedGrid(sample, times, interval, stride)
+    grid_v = grid.of(values, col, net.size)
     speed = None
     if "wind_speed" in obs:
-        spd = np.where(usable.get("wind_speed", np.ones(len(obs), bool)), obs["wind_speed"].to_numpy(float), np.nan)
         # every station's wind (anemometers may stand apart from the sensors of the variable)
-        speed = _strided_grid(spd, sample, np.arange(len(st.ids)), len(st.ids), times, interval, stride)
+        speed = grid.of(inputs.good("wind_speed"), np.arange(len(st.ids)), len(st.ids))
     cand = times[::stride]
     lon0, lat0 = (float(a[0]) for a in to_lonlat(np.array([st.x[net].mean()]), np.array([st.y[net].mean()]),
                                                   st.network.crs))
@@ -421,9 +439,23 @@ def _local_members(st: _Stations) -> list[np.ndarray]:
     return [pos[m] for m in st.members]
 
 
-def _strided_grid(values: np.ndarray, sample: _NoiseSample, col: np.ndarray, n_cols: int, times: pd.DatetimeIndex,
-                  interval: pd.Timedelta, stride: int) -> np.ndarray:
-    """Bin means (every ``stride``-th analysis time, network stations) of per-row ``values``."""
+@dataclass
+class _StridedGrid:
+    """Every ``stride``-th analysis time of ``times``: bin means of per-row values there."""
+
+    sample: _NoiseSample
+    times: pd.DatetimeIndex
+    interval: pd.Timedelta
+    stride: int
+
+    def of(self, values: np.ndarray, col: np.ndarray, n_cols: int) -> np.ndarray:
+        """(times, ``n_cols``) bin means of ``values`` (one per row); ``col``: each station's column (-1: none)."""
+        return _strided_means(values, self, col, n_cols)
+
+
+def _strided_means(values: np.ndarray, g: _StridedGrid, col: np.ndarray, n_cols: int) -> np.ndarray:
+    """Bin means (every ``stride``-th analysis time, the stations of ``col``) of per-row ``values``."""
+    sample, times, interval, stride = g.sample, g.times, g.interval, g.stride
     b = np.ceil((sample.time_ns - times[0].value) / interval.value).astype(np.int64)
     c = col[np.maximum(sample.codes, 0)]
     keep = (b >= 0) & (b < len(times)) & (b % stride == 0) & (sample.codes >= 0) & (c >= 0) & np.isfinite(values)
@@ -435,19 +467,18 @@ def _strided_grid(values: np.ndarray, sample: _NoiseSample, col: np.ndarray, n_c
         return (sums / counts).reshape(n_rows, n_cols)
 
 
-def _humidity_corrected(values: np.ndarray, var: str, obs: pd.DataFrame, usable: dict, st: _Stations,
-                        sample: _NoiseSample, config: Config) -> tuple[np.ndarray, dict]:
+def _humidity_corrected(values: np.ndarray, inputs: _Inputs) -> tuple[np.ndarray, dict]:
     """Low-cost PM2.5 readings corrected for humidity (:func:`stationflow.estimate.calibration.barkjohn2021`), the
     relative humidity from the same station, else the nearest station that reports it at that time."""
     from ..estimate import calibration
 
+    var, obs, st, sample, config = inputs.var, inputs.obs, inputs.st, inputs.sample, inputs.config
     if kind_of(var, config["observations"]["kinds"]) != "concentration":
         raise ConfigError(f"calibration.humidity_correction is for concentrations (PM2.5); {var} is not one "
                           f"(declare its kind in [observations.kinds] if it is)")
     if "relative_humidity" not in obs:
         raise ConfigError("calibration.humidity_correction needs relative_humidity in the observations")
-    rh = np.where(usable.get("relative_humidity", np.ones(len(obs), bool)), obs["relative_humidity"].to_numpy(float),
-                  np.nan)
+    rh = inputs.good("relative_humidity")
     filled, source = calibration.nearest_humidity(rh, sample.codes, sample.time_ns, st.x, st.y)
     corrected = calibration.barkjohn2021(values, filled)
     lost = int(np.sum(np.isfinite(values) & ~np.isfinite(corrected)))
