@@ -61,13 +61,18 @@ class Biases:
     method: str
 
     def correct(self, values: np.ndarray, station: np.ndarray) -> np.ndarray:
-        """``values`` (one per row, of the station ``station``) with the bias removed: ``(y - offset) / gain``;
-        rows of unknown stations (-1) are left as they are."""
-        ok = station >= 0
-        a = np.where(ok, self.offset[np.where(ok, station, 0)], 0.0)
-        b = np.where(ok, self.gain[np.where(ok, station, 0)], 1.0)
-        a, b = np.nan_to_num(a, nan=0.0), np.where(np.isfinite(b) & (b > 0), b, 1.0)
-        return (values - a) / b
+        """``values`` with these biases removed (:func:`remove_biases`)."""
+        return remove_biases(values, station, self.offset, self.gain)
+
+
+def remove_biases(values: np.ndarray, station: np.ndarray, offset: np.ndarray, gain: np.ndarray) -> np.ndarray:
+    """``values`` (one per row, of the station ``station``) as ``(y - offset) / gain``; rows of unknown
+    stations (-1), and stations without an estimate (NaN), are left as they are."""
+    ok = station >= 0
+    a = np.where(ok, offset[np.where(ok, station, 0)], 0.0)
+    b = np.where(ok, gain[np.where(ok, station, 0)], 1.0)
+    a, b = np.nan_to_num(a, nan=0.0), np.where(np.isfinite(b) & (b > 0), b, 1.0)
+    return (values - a) / b
 
 
 def select_times(times: pd.DatetimeIndex, wind_speed: np.ndarray | None, lat0: float, lon0: float, *,
@@ -92,42 +97,29 @@ def select_times(times: pd.DatetimeIndex, wind_speed: np.ndarray | None, lat0: f
     return choices[-1]
 
 
-def huber_line(x: np.ndarray, y: np.ndarray, *, slope: bool, iterations: int = 30,
-               prior: np.ndarray | None = None) -> dict[str, np.ndarray]:
-    """Robust straight line ``y = a + b x`` (or ``y = a + x`` without ``slope``) for every column at once.
+def huber_location(y: np.ndarray, *, prior: np.ndarray | None = None, iterations: int = 30) -> dict[str, np.ndarray]:
+    """Huber's M-estimate of the location of every column of ``y`` (n, m) at once (NaN where missing).
 
-    ``x``, ``y``: (n, m) with NaN where missing.  Iteratively reweighted
-    least squares with Huber's weights (:data:`HUBER_C`) and the MAD of the
-    residuals about zero as the scale, re-estimated every iteration (the
-    scheme of ``statsmodels.robust.RLM(..., M=HuberT())``).  Returns ``a``,
-    ``b``, ``scale`` (robust residual spread), ``n`` (points used) and the
-    residuals ``r`` (n, m), one entry per column.  ``prior``: weights of the
-    rows (n,) that multiply the robust ones (default 1).
+    Iteratively reweighted means with Huber's weights (:data:`HUBER_C`) and
+    the MAD of the residuals about zero as the scale, re-estimated every
+    iteration (the scheme of ``statsmodels.robust.RLM(y, ones, M=HuberT())``).
+    ``prior``: weights of the rows (n,) that multiply the robust ones
+    (default 1).  Returns ``a`` (the location), ``scale`` (the robust
+    residual spread), ``n`` (points used), the final weights ``w`` and
+    ``ok`` (finite points), one entry per column.
     """
-    ok = np.isfinite(x) & np.isfinite(y)
-    x0, y0 = np.where(ok, x, 0.0), np.where(ok, y, 0.0)
+    ok = np.isfinite(y)
+    y0 = np.where(ok, y, 0.0)
     base = ok.astype(float) if prior is None else ok * np.asarray(prior, float)[:, None]
     w = base.copy()
-    m = x.shape[1]
-    a, b = np.zeros(m), np.ones(m)
     for _ in range(iterations):
-        sw = w.sum(axis=0)
         with np.errstate(invalid="ignore", divide="ignore"):
-            if slope:
-                sx, sy = (w * x0).sum(axis=0), (w * y0).sum(axis=0)
-                sxx, sxy = (w * x0 * x0).sum(axis=0), (w * x0 * y0).sum(axis=0)
-                det = sw * sxx - sx * sx
-                b = np.where(det > 0, (sw * sxy - sx * sy) / det, np.nan)
-                a = (sy - b * sx) / sw
-            else:
-                a = (w * (y0 - x0)).sum(axis=0) / sw
-        r = np.where(ok, y0 - a - b * x0, np.nan)
-        scale = _mad(r)
-        with np.errstate(invalid="ignore", divide="ignore"):
+            a = (w * y0).sum(axis=0) / w.sum(axis=0)
+            r = np.where(ok, y0 - a, np.nan)
+            scale = _mad(r)
             u = np.abs(r) / (HUBER_C * scale)
-            w = np.where(ok, np.where(u <= 1.0, 1.0, 1.0 / u), 0.0) * base
-        w = np.nan_to_num(w)
-    return {"a": a, "b": b, "scale": scale, "n": ok.sum(axis=0), "r": r, "w": w, "x": x0, "ok": ok}
+            w = np.nan_to_num(np.where(ok, np.where(u <= 1.0, 1.0, 1.0 / u), 0.0) * base)
+    return {"a": a, "scale": scale, "n": ok.sum(axis=0), "w": w, "ok": ok}
 
 
 def _mad(r: np.ndarray) -> np.ndarray:
@@ -138,20 +130,13 @@ def _mad(r: np.ndarray) -> np.ndarray:
         return row_nanmedian(np.abs(r).T) / 0.6744897501960817
 
 
-def standard_errors(fit: dict, periods: np.ndarray, *, slope: bool) -> tuple[np.ndarray, np.ndarray]:
-    """(se of a, se of b): the weighted least-squares errors with the robust scale, the number of points
-    replaced by the number of independent ``periods`` (serially correlated residuals)."""
-    w, x = fit["w"], fit["x"]
+def standard_error(fit: dict, periods: np.ndarray) -> np.ndarray:
+    """Standard error of a :func:`huber_location`: the weighted mean's error with the robust scale, the
+    number of points replaced by the number of independent ``periods`` (serially correlated residuals)."""
     n = np.maximum(fit["n"], 1)
-    scale2 = fit["scale"] ** 2
     inflate = n / np.maximum(periods, 1)  # n correlated points carry the information of `periods` ones
-    sw = w.sum(axis=0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        if not slope:
-            return np.sqrt(scale2 / sw * inflate), np.zeros(len(n))
-        sx, sxx = (w * x).sum(axis=0), (w * x * x).sum(axis=0)
-        det = sw * sxx - sx * sx
-        return np.sqrt(scale2 * sxx / det * inflate), np.sqrt(scale2 * sw / det * inflate)
+        return np.sqrt(fit["scale"] ** 2 / fit["w"].sum(axis=0) * inflate)
 
 
 def loo_operator(x: np.ndarray, y: np.ndarray, neighbours: int = 6):
@@ -248,14 +233,14 @@ def _residual_level(v: np.ndarray, pred: np.ndarray, hours: pd.Series) -> tuple[
         spread = 1.4826 * row_nanmedian(np.abs(r - row_nanmedian(r)[:, None]))
         typical = np.nanmedian(spread) if np.isfinite(spread).any() else 1.0
         prior = np.where(np.isfinite(spread), 1.0 / np.fmax(spread, 0.1 * typical) ** 2, 0.0) * typical ** 2
-    fit = huber_line(np.zeros_like(r), r, slope=False, prior=prior)
+    fit = huber_location(r, prior=prior)
     n_s = r.shape[1]
     used = fit["ok"]
     hour_code = pd.factorize(hours)[0].astype(np.int64)
     t_i, s_i = np.nonzero(used)
     pairs = np.unique(hour_code[t_i] * n_s + s_i)  # distinct (hour, station) pairs
     periods = np.bincount(pairs % n_s, minlength=n_s)
-    se, _ = standard_errors(fit, periods, slope=False)
+    se = standard_error(fit, periods)
     level = np.where(fit["n"] >= 3, fit["a"], np.nan)
     return level, np.where(fit["n"] >= 3, se, np.nan), periods
 

@@ -197,11 +197,12 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     interval = _interval(config, obs, chk.qc.interval)
     sample = _NoiseSample.of(obs, st.ids)
     values = np.where(mask_q, quantity_values, np.nan)
-    inputs = _Inputs(var, obs, usable, st, sample, config)
+    inputs = _Inputs(var, obs, usable, st, sample, config, interval)
     humidity = {}
     if config["calibration"]["humidity_correction"] != "none":
         values, humidity = _humidity_corrected(values, inputs)
-    sensors, calibration_info, values = _sensor_biases(values, inputs, interval)
+    times = _analysis_times(obs, interval)
+    sensors, calibration_info, values = _sensor_biases(values, inputs, times)
     noise, noise_info = _reading_noise(var, quantity, config, sample, values)
     settings, window, window_source = _settings(config, var, vertical, noise, st, interval)
     z = st.table["elevation"].to_numpy(float)
@@ -233,7 +234,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     choices["regional"] = (f"one plane through the {regional.size} stations of the network per time" if regional is not None
                            else "off (budget.regional = false)")
     return BudgetPlan(var, quantity, unit, st.network, st.clusters, st.members, st.ids, st.x, st.y, z, st.convergence,
-                      masts, settings, interval, window, _analysis_times(frame, interval), frame,
+                      masts, settings, interval, window, times, frame,
                       lapse_stations=lapse_stations, regional=regional, choices=choices, sensors=sensors)
 
 
@@ -370,6 +371,7 @@ class _Inputs:
     st: _Stations
     sample: _NoiseSample
     config: Config
+    interval: pd.Timedelta
 
     def good(self, name: str) -> np.ndarray:
         """The values of ``name`` QC let through, NaN elsewhere."""
@@ -380,9 +382,10 @@ class _Inputs:
 MAX_CALIBRATION_TIMES = 1000
 
 
-def _sensor_biases(values: np.ndarray, inputs: _Inputs, interval: pd.Timedelta
+def _sensor_biases(values: np.ndarray, inputs: _Inputs, times: pd.DatetimeIndex
                    ) -> tuple[pd.DataFrame | None, dict, np.ndarray]:
-    """(sensor_offsets table, what run.json records, the values, corrected when ``calibration.apply``)."""
+    """(sensor_offsets table, what run.json records, the values, corrected when ``calibration.apply``);
+    ``times``: the analysis times."""
     var, obs, st, sample, config = inputs.var, inputs.obs, inputs.st, inputs.sample, inputs.config
     from ..estimate import calibration
     from ..network.geometry import to_lonlat
@@ -390,17 +393,16 @@ def _sensor_biases(values: np.ndarray, inputs: _Inputs, interval: pd.Timedelta
     cc = config["calibration"]
     if not cc["estimate"]:
         return None, {"estimated": False, "applied": False}, values
-    times = _analysis_times(obs, interval)
     stride = max(1, int(np.ceil(len(times) / MAX_CALIBRATION_TIMES)))
     net = st.regional  # the network's stations, as rows of the station table
     col = np.full(len(st.ids), -1)
     col[net] = np.arange(net.size)
-    grid = _StridedGrid(sample, times, interval, stride)
-    grid_v = grid.of(values, col, net.size)
+    cells = _StridedCells.of(sample, times, inputs.interval, stride)
+    grid_v = cells.means(values, col, net.size)
     speed = None
     if "wind_speed" in obs:
         # every station's wind (anemometers may stand apart from the sensors of the variable)
-        speed = grid.of(inputs.good("wind_speed"), np.arange(len(st.ids)), len(st.ids))
+        speed = cells.means(inputs.good("wind_speed"), np.arange(len(st.ids)), len(st.ids))
     cand = times[::stride]
     lon0, lat0 = (float(a[0]) for a in to_lonlat(np.array([st.x[net].mean()]), np.array([st.y[net].mean()]),
                                                   st.network.crs))
@@ -425,10 +427,9 @@ def _sensor_biases(values: np.ndarray, inputs: _Inputs, interval: pd.Timedelta
     table = table.reset_index(drop=True)
     info = {"estimated": True, "applied": bool(cc["apply"]), "method": b.method,
             "stations_beyond_two_se": table.loc[table["beyond_two_se"], "station_id"].tolist()}
-    if cc["apply"]:
-        full = calibration.Biases(np.zeros(len(st.ids)), None, np.ones(len(st.ids)), None, None, b.method)
-        full.offset[net], full.gain[net] = np.nan_to_num(b.offset), b.gain
-        values = full.correct(values, sample.codes)
+    if cc["apply"]:  # the estimates are by network station; the rows' codes are rows of the station table
+        station = np.where(sample.codes >= 0, col[np.maximum(sample.codes, 0)], -1)
+        values = calibration.remove_biases(values, station, b.offset, b.gain)
     return table, info, values
 
 
@@ -440,31 +441,25 @@ def _local_members(st: _Stations) -> list[np.ndarray]:
 
 
 @dataclass
-class _StridedGrid:
-    """Every ``stride``-th analysis time of ``times``: bin means of per-row values there."""
+class _StridedCells:
+    """Every ``stride``-th analysis time: each row's cell there (-1 for the rows in between)."""
 
-    sample: _NoiseSample
-    times: pd.DatetimeIndex
-    interval: pd.Timedelta
-    stride: int
+    row: np.ndarray  # per row: the strided time of its bin, or -1
+    n_times: int
+    codes: np.ndarray  # per row: its station, as a row of the station table (-1 unknown)
 
-    def of(self, values: np.ndarray, col: np.ndarray, n_cols: int) -> np.ndarray:
-        """(times, ``n_cols``) bin means of ``values`` (one per row); ``col``: each station's column (-1: none)."""
-        return _strided_means(values, self, col, n_cols)
+    @classmethod
+    def of(cls, sample: _NoiseSample, times: pd.DatetimeIndex, interval: pd.Timedelta, stride: int) -> "_StridedCells":
+        b = grid.bin_index(sample.time_ns, times[0], interval)
+        on = (b >= 0) & (b < len(times)) & (b % stride == 0)
+        return cls(np.where(on, b // stride, -1), (len(times) + stride - 1) // stride, sample.codes)
 
-
-def _strided_means(values: np.ndarray, g: _StridedGrid, col: np.ndarray, n_cols: int) -> np.ndarray:
-    """Bin means (every ``stride``-th analysis time, the stations of ``col``) of per-row ``values``."""
-    sample, times, interval, stride = g.sample, g.times, g.interval, g.stride
-    b = np.ceil((sample.time_ns - times[0].value) / interval.value).astype(np.int64)
-    c = col[np.maximum(sample.codes, 0)]
-    keep = (b >= 0) & (b < len(times)) & (b % stride == 0) & (sample.codes >= 0) & (c >= 0) & np.isfinite(values)
-    n_rows = (len(times) + stride - 1) // stride
-    flat = (b[keep] // stride) * n_cols + c[keep]
-    sums = np.bincount(flat, weights=values[keep], minlength=n_rows * n_cols)
-    counts = np.bincount(flat, minlength=n_rows * n_cols)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (sums / counts).reshape(n_rows, n_cols)
+    def means(self, values: np.ndarray, col: np.ndarray, n_cols: int) -> np.ndarray:
+        """(strided times, ``n_cols``) bin means of ``values`` (one per row); ``col``: each station's column
+        (-1: none)."""
+        c = col[np.maximum(self.codes, 0)]
+        ok = (self.row >= 0) & (self.codes >= 0) & (c >= 0)
+        return grid.cell_means(values, ok, np.where(ok, self.row * n_cols + c, 0), (self.n_times, n_cols))[0]
 
 
 def _humidity_corrected(values: np.ndarray, inputs: _Inputs) -> tuple[np.ndarray, dict]:
@@ -489,9 +484,7 @@ def _humidity_corrected(values: np.ndarray, inputs: _Inputs) -> tuple[np.ndarray
 def _analysis_times(frame: pd.DataFrame, interval: pd.Timedelta) -> pd.DatetimeIndex:
     """Every analysis time from the first to the last row, on the ``interval`` grid."""
     t = frame["time"]
-    first = pd.Timestamp(t.min()).ceil(interval)
-    n_t = int(np.ceil((pd.Timestamp(t.max()).value - first.value) / interval.value)) + 1
-    return pd.date_range(first, periods=max(n_t, 1), freq=interval)
+    return grid.grid_times(pd.Timestamp(t.min()).ceil(interval), pd.Timestamp(t.max()), interval)
 
 
 #: height range above which ``vertical = "auto"`` measures the vertical gradient [m] (the QC spatial test's own limit)
