@@ -336,7 +336,8 @@ def budget(
     """The main job: split each observed change into advection and an in-situ part, per cluster and time.
 
     Runs ingest, QC, the network, the plane fits and the budget; writes run.json, rejected_rows.csv,
-    qc_flags.csv, budget.parquet, budget.csv, budget.nc, figures and report.html, and prints the main periods.
+    qc_flags.csv, budget.parquet, budget.csv, budget.nc, sensor_offsets.csv, figures and report.html, and prints
+    the main periods, each with the advection at the network (regional) and the cluster (local) scale.
 
     CAUTION: a decision aid only. It supports, and does not replace, frost and air-quality alarms and
     warnings; local codes, extension services and licensed practice prevail. Check sensors and cold-pool
@@ -423,7 +424,7 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
                      "(map the wind columns in [observations.columns])")
     if run.choices.get("qc_tests_off"):
         lines.append("QC switched off: " + ", ".join(run.choices["qc_tests_off"]))
-    if getattr(run, "sensors", None) is not None and not run.sensors.empty:
+    if run.sensors is not None and not run.sensors.empty:
         worst = run.sensors.head(3)  # ranked: beyond twice their error first, then by the advection they would fake
         unit = run.unit
         lines.append("sensors whose bias would fake the most advection: " + ", ".join(

@@ -201,13 +201,14 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
             written += sink.paths
             notes += getattr(sink, "notes", [])
     written.append(files.write_csv(cluster_table(run.network), out / "clusters.csv", time_columns=()))
-    if getattr(run, "sensors", None) is not None:
-        written.append(files.write_csv(run.sensors, out / "sensor_offsets.csv", time_columns=(), float_format="%.6g"))
+    if run.sensors is not None:
+        written.append(files.write_csv(run.sensors, out / "sensor_offsets.csv", time_columns=()))
     lines = [describe_period(p, variable=run.quantity, timezone=display_zone(run.check.config) or "UTC")
              for p in run.periods]
     # everything the report says is prepared while the figures are still being drawn
     flags = _flag_counts(run.check)
-    pieces = _report_pieces(run, lines, inputs, flags, out) if report else None
+    scales = scale_lines(run)
+    pieces = _report_pieces(run, lines, inputs, flags, out, scales) if report else None
     rec = run_record("budget", inputs, run.check.config, run.check.data.accounting, {
         "variable": run.variable, "quantity": run.quantity, "unit": run.unit, "reading": run.check.data.reading,
         "interval": format_duration(run.interval), "window": format_duration(run.window),
@@ -225,8 +226,8 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "calibration": run.choices.get("calibration", {}),
         "humidity_correction": run.choices.get("humidity_correction") or "none",
         "regional": ({"regimes": run.regional.regime_counts(),
-                      "main_periods": [describe_scales(x, unit=f"{run.unit} h-1") for x in scale_lines(run)]}
-                     if getattr(run, "regional", None) is not None else "off"),
+                      "main_periods": [describe_scales(x, unit=f"{run.unit} h-1") for x in scales]}
+                     if run.regional is not None else "off"),
         "qc": {"flags": flags},
     })
     if report:
@@ -244,7 +245,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
 def scale_lines(run) -> list[dict]:
     """For each main period, the advection at the regional and the local scale (:func:`text.two_scales`);
     empty without the regional rows."""
-    if getattr(run, "regional", None) is None:
+    if run.regional is None:
         return []
     return [two_scales(p, run.summary, run.regional, min_rate=run.settings.min_rate) for p in run.periods]
 
@@ -265,7 +266,7 @@ def corrections_sentence(run) -> str:
 
 def sensor_lines(run, *, top: int = 10) -> list[str]:
     """The sensors ranked by the advection their bias would fake, worst first (the report's list)."""
-    t = getattr(run, "sensors", None)
+    t = run.sensors
     if t is None or t.empty:
         return []
     cal = run.choices.get("calibration", {})
@@ -289,7 +290,7 @@ def regional_sentence(run) -> str:
     """What the network-scale plane says over the whole record."""
     counts = run.regional.regime_counts()
     shown = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in counts.items() if v)
-    return (f"One plane through all {run.layout.clusters['stations'].iloc[-1].split()[1]} stations per time (the regional "
+    return (f"One plane through all {run.choices['regional_stations']} stations per time (the regional "
             f"scale, cluster '{run.layout.clusters['cluster'].iloc[-1]}', scale = regional in the table): {shown} steps. "
             "Its error bars include the plane's misfit over the whole network (chi-square above one), which grows "
             "with the network's size (docs/method.md).")
@@ -327,16 +328,17 @@ VERTICAL_WORDS = {
 }
 
 
-def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path) -> Page:
-    """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`."""
-    scales = []
-    if getattr(run, "regional", None) is not None:
-        scales = [regional_sentence(run)] + [f"{line}; {describe_scales(x, unit=f'{run.unit} h-1')}"
-                                             for line, x in zip(lines, scale_lines(run))]
+def _report_pieces(run, lines: list[str], inputs: dict, flags: dict, out: Path, scales: list[dict]) -> Page:
+    """The text and tables of report.html (all but the figures and the file list); ``flags``: :func:`_flag_counts`;
+    ``scales``: :func:`scale_lines`."""
+    two = []
+    if run.regional is not None:
+        two = [regional_sentence(run)] + [f"{line}; {describe_scales(x, unit=f'{run.unit} h-1')}"
+                                          for line, x in zip(lines, scales)]
     return Page(title=f"stationflow budget: {display_name(run.variable)}", summary=_summary_rows(run, inputs),
                 periods=lines, quality=_quality_lines(run, flags), cluster_table=_cluster_rows(run),
                 method=_method_lines(run), columns=_column_rows(out / "budget.parquet", run.unit),
-                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]), scales=scales,
+                kind=variable_kind(run.variable, run.check.config["observations"]["kinds"]), scales=two,
                 sensors=sensor_lines(run))
 
 

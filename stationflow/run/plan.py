@@ -233,6 +233,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     regional = st.regional if bc["regional"] else None
     choices["regional"] = (f"one plane through the {regional.size} stations of the network per time" if regional is not None
                            else "off (budget.regional = false)")
+    choices["regional_stations"] = int(regional.size) if regional is not None else 0
     return BudgetPlan(var, quantity, unit, st.network, st.clusters, st.members, st.ids, st.x, st.y, z, st.convergence,
                       masts, settings, interval, window, times, frame,
                       lapse_stations=lapse_stations, regional=regional, choices=choices, sensors=sensors)
