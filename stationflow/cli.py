@@ -429,8 +429,8 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
         unit = run.unit
         lines.append("sensors whose bias would fake the most advection: " + ", ".join(
             f"{r.station_id} bias {r.bias_at_typical_level:.2g} {unit} ({r.fake_advection:.2g} {unit}/h)"
-            for r in worst.itertuples()) + ("; corrected" if run.choices.get("calibration", {}).get("applied")
-                                             else "; not corrected (calibration.apply)") + " - see sensor_offsets.csv")
+            for r in worst.itertuples()) + ("; corrected" if run.choices.get("sensors", {}).get("applied")
+                                             else "; not corrected (sensors.apply)") + " - see sensor_offsets.csv")
     acc = run.check.data.accounting
     lines.append(f"rows read {acc['rows_read']:,}, accepted {acc['rows_accepted']:,}, rejected {acc['rows_rejected']:,}")
     lines += notes

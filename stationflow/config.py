@@ -115,7 +115,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                         "one vertical gradient cannot describe a kilometre of mountainside (common practice)"),
         "max_noise_amplification": Key(0.0, (int, float), "reject clusters whose gradient error per unit sensor noise exceeds this (0 = no limit) [km-1]"),
     },
-    "calibration": {
+    "sensors": {
         "estimate": Key(True, (bool,), "estimate each sensor's offset (and, for concentrations, gain) against its neighbours "
                                        "and write sensor_offsets.csv (see docs/method.md)"),
         "apply": Key(False, (bool,), "correct the values with the estimated offsets and gains before the plane fits "

@@ -113,7 +113,7 @@ def _biased_export(tmp_path, *, apply: bool):
     obs.loc[obs["station_id"] == warm, "air_temperature"] += 1.0  # one sensor 1 K warm
     paths = write_export(tmp_path / ("on" if apply else "off"), st, obs)
     data = config.load(paths["config"]).to_dict()
-    data["calibration"]["apply"] = apply
+    data["sensors"]["apply"] = apply
     data["budget"]["regional"] = False
     return paths, config.from_dict(data), warm
 
@@ -131,7 +131,7 @@ def test_applying_the_estimated_offsets_removes_the_advection_they_fake(tmp_path
         near = t["stations"].astype(str).str.split("+").map(lambda m: warm in m)
         errors[apply] = float(np.nanmedian(np.abs(t.loc[near, "advection"] - TRUE_ADV)))
         sensors = run.sensors.set_index("station_id")
-        assert run.choices["calibration"]["applied"] is apply
+        assert run.choices["sensors"]["applied"] is apply
         assert abs(sensors.loc[warm, "offset"] - 1.0) < 2 * sensors.loc[warm, "offset_se"] + 0.05
     assert errors[False] > 0.3  # a 1 K offset at ~5 km fakes tenths of a K/h in a 3 m/s wind
     assert errors[True] < 0.25 * errors[False]
@@ -155,7 +155,7 @@ def test_the_cli_writes_sensor_offsets_and_records_the_switch(tmp_path):
     assert (table["gain"] == 1).all()  # temperature: offsets only
     assert table["station_id"].iloc[0] == warm and table["beyond_two_se"].iloc[0]  # ranked first
     rec = json.loads((tmp_path / "out" / "run.json").read_text())
-    assert rec["calibration"]["estimated"] is True and rec["calibration"]["applied"] is False
+    assert rec["sensors"]["estimated"] is True and rec["sensors"]["applied"] is False
     assert "sensor_offsets.csv" in rec["outputs"]
     assert "Sensors that disagree" in (tmp_path / "out" / "report.html").read_text()
 
@@ -188,7 +188,7 @@ def test_the_humidity_correction_runs_before_the_budget_with_humidity_from_the_n
     rows["relative_humidity"] = np.where(rows["station_id"].isin(st["station_id"].iloc[:4]), rh, np.nan)
     rows["station_id"] = pd.Categorical(rows["station_id"])
     obs = rows[["station_id", "time", "pm2_5", "relative_humidity"]]
-    cfg = config.from_dict({"calibration": {"humidity_correction": "barkjohn2021"}, "budget": {"variable": "pm2_5"},
+    cfg = config.from_dict({"sensors": {"humidity_correction": "barkjohn2021"}, "budget": {"variable": "pm2_5"},
                             "observations": {"kinds": {"pm2_5": "concentration"}}})
     from stationflow import qc
 

@@ -88,11 +88,11 @@ def test_frost_faulty_sensors_named_and_cold_pool_left_alone(frost_run):
 
 
 def test_town_with_the_sensor_corrections_applied_is_closer_to_the_truth(town_run):
-    # calibration.apply corrects the gain-biased sensor before the fits: the plume's advection error shrinks
+    # sensors.apply corrects the gain-biased sensor before the fits: the plume's advection error shrinks
     run, sc = town_run
     folder = ROOT / "sample_data" / "town"
     data = config.load(folder / "config.toml").to_dict()
-    data["calibration"]["apply"] = True
+    data["sensors"]["apply"] = True
     fixed = api.budget_from_check(run.check, config.from_dict(data))
     errs = {}
     for name, r in (("as read", run), ("corrected", fixed)):

@@ -223,7 +223,7 @@ def write_budget(out: Path, run, *, inputs: dict, csv: bool = False, report: boo
         "clusters": {"total": int(len(run.network.clusters)), "usable": int(len(run.network.usable))},
         "regimes": summary.regime_counts(),
         "main_periods": lines,
-        "calibration": run.choices.get("calibration", {}),
+        "sensors": run.choices.get("sensors", {}),
         "humidity_correction": run.choices.get("humidity_correction") or "none",
         "regional": ({"regimes": run.regional.regime_counts(),
                       "main_periods": [describe_scales(x, unit=f"{run.unit} h-1") for x in scales]}
@@ -258,9 +258,9 @@ def corrections_sentence(run) -> str:
         parts.append(f"humidity correction of the PM2.5 readings, {hum['equation']} (relative humidity from the nearest "
                      f"station for {hum['from_nearest_station']:,} readings; {hum['without_humidity']:,} readings "
                      "without humidity nearby left out)")
-    cal = run.choices.get("calibration") or {}
+    cal = run.choices.get("sensors") or {}
     if cal.get("applied"):
-        parts.append("each sensor's estimated offset (and gain) removed (calibration.apply; sensor_offsets.csv)")
+        parts.append("each sensor's estimated offset (and gain) removed (sensors.apply; sensor_offsets.csv)")
     return "; ".join(parts) if parts else "none (values as read, after quality control)"
 
 
@@ -269,11 +269,11 @@ def sensor_lines(run, *, top: int = 10) -> list[str]:
     t = run.sensors
     if t is None or t.empty:
         return []
-    cal = run.choices.get("calibration", {})
+    cal = run.choices.get("sensors", {})
     unit = run.unit
     gains = bool((t["gain_se"] > 0).any())
     head = (f"Each sensor against what its neighbours predict ({cal.get('method', '')}). "
-            f"{'Corrections were applied before the plane fits (calibration.apply).' if cal.get('applied') else 'Not applied (calibration.apply = false): the budget uses the values as read.'} "
+            f"{'Corrections were applied before the plane fits (sensors.apply).' if cal.get('applied') else 'Not applied (sensors.apply = false): the budget uses the values as read.'} "
             "Ranked: biases beyond twice their error first, then by the advection the bias would fake in the median "
             "wind; sensor_offsets.csv has every station.")
     lines = [head]

@@ -199,7 +199,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     values = np.where(mask_q, quantity_values, np.nan)
     inputs = _Inputs(var, obs, usable, st, sample, config, interval)
     humidity = {}
-    if config["calibration"]["humidity_correction"] != "none":
+    if config["sensors"]["humidity_correction"] != "none":
         values, humidity = _humidity_corrected(values, inputs)
     times = _analysis_times(obs, interval)
     sensors, calibration_info, values = _sensor_biases(values, inputs, times)
@@ -215,7 +215,7 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
               if not on]
     choices = {"vertical": vertical, "vertical_setting": bc["vertical"], "window_source": window_source,
                "qc_tests_off": qc_off, "min_rate": settings.min_rate, "offset": settings.offset,
-               "offset_source": offset_uncertainty(var, config)[1], "calibration": calibration_info,
+               "offset_source": offset_uncertainty(var, config)[1], "sensors": calibration_info,
                "humidity_correction": humidity, **noise_info}
     # the rows and values the estimator may use
     frame = pd.DataFrame({"station_id": obs["station_id"].array, "time": obs["time"].array})  # typed, no object copies
@@ -385,13 +385,13 @@ MAX_CALIBRATION_TIMES = 1000
 
 def _sensor_biases(values: np.ndarray, inputs: _Inputs, times: pd.DatetimeIndex
                    ) -> tuple[pd.DataFrame | None, dict, np.ndarray]:
-    """(sensor_offsets table, what run.json records, the values, corrected when ``calibration.apply``);
+    """(sensor_offsets table, what run.json records, the values, corrected when ``sensors.apply``);
     ``times``: the analysis times."""
     var, obs, st, sample, config = inputs.var, inputs.obs, inputs.st, inputs.sample, inputs.config
     from ..estimate import calibration
     from ..network.geometry import to_lonlat
 
-    cc = config["calibration"]
+    cc = config["sensors"]
     if not cc["estimate"]:
         return None, {"estimated": False, "applied": False}, values
     stride = max(1, int(np.ceil(len(times) / MAX_CALIBRATION_TIMES)))
@@ -470,10 +470,10 @@ def _humidity_corrected(values: np.ndarray, inputs: _Inputs) -> tuple[np.ndarray
 
     var, obs, st, sample, config = inputs.var, inputs.obs, inputs.st, inputs.sample, inputs.config
     if kind_of(var, config["observations"]["kinds"]) != "concentration":
-        raise ConfigError(f"calibration.humidity_correction is for concentrations (PM2.5); {var} is not one "
+        raise ConfigError(f"sensors.humidity_correction is for concentrations (PM2.5); {var} is not one "
                           f"(declare its kind in [observations.kinds] if it is)")
     if "relative_humidity" not in obs:
-        raise ConfigError("calibration.humidity_correction needs relative_humidity in the observations")
+        raise ConfigError("sensors.humidity_correction needs relative_humidity in the observations")
     rh = inputs.good("relative_humidity")
     filled, source = calibration.nearest_humidity(rh, sample.codes, sample.time_ns, st.x, st.y)
     corrected = calibration.barkjohn2021(values, filled)
