@@ -399,7 +399,8 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
 
 def _budget_summary(run, out: Path, notes: list[str]) -> str:
     from .network.grid import format_duration
-    from .report.text import describe_period
+    from .report.outputs import scale_lines
+    from .report.text import describe_period, describe_scales, display_zone
 
     counts = run.summary.regime_counts()
     fitted = f" (fitted as {run.quantity})" if run.quantity != run.variable else ""
@@ -408,12 +409,7 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
              "regimes: " + ", ".join(f"{k} {v}" for k, v in counts.items())]
     if run.periods:
         lines.append("main periods:")
-        from .report.text import display_zone
-
         tz = display_zone(run.check.config) or "UTC"
-        from .report.outputs import scale_lines
-        from .report.text import describe_scales
-
         scales = scale_lines(run)
         for i, p in enumerate(run.periods):
             lines.append("  " + describe_period(p, variable=run.quantity, timezone=tz))
@@ -427,7 +423,7 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
     if run.sensors is not None and not run.sensors.empty:
         worst = run.sensors.head(3)  # ranked: beyond twice their error first, then by the advection they would fake
         unit = run.unit
-        lines.append("sensors whose bias would fake the most advection: " + ", ".join(
+        lines.append("sensors to check first (bias at their usual level, the advection it would fake): " + ", ".join(
             f"{r.station_id} bias {r.bias_at_typical_level:.2g} {unit} ({r.fake_advection:.2g} {unit}/h)"
             for r in worst.itertuples()) + ("; corrected" if run.choices.get("sensors", {}).get("applied")
                                              else "; not corrected (sensors.apply)") + " - see sensor_offsets.csv")
