@@ -10,6 +10,7 @@ so in their description; the rest are marked "common practice".
 from __future__ import annotations
 
 import copy
+import json
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -41,6 +42,7 @@ FREE_TABLES = {
     "qc.range",
     "qc.step",
     "qc.persistence",
+    "follow.critical",
 }
 
 SCHEMA: dict[str, dict[str, Key]] = {
@@ -80,6 +82,9 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "wind_component": Key(None, (int, float), "reading noise of the wind components u and v [m s-1] (default: learned from "
                                                   "the data, at least 0.1; WMO-No. 8 Annex 1.E gives 0.5 m/s as achievable, from memory)",
                               unset="learned from the data"),
+        "noise_file": Key("", (str,), "CSV with columns station_id, variable, reading_noise: each station's reading noise "
+                                      "(the unit as uncertainty.sensor), e.g. the reading_noise.csv a follow run writes; "
+                                      "stations it does not list take the median of those it does (default: learned)"),
         "calibration": Key(0.0, (int, float), "older spelling of uncertainty.offset for the budgeted variable (0 = not set) [variable unit]"),
         "gradient_error": Key("larger", (str,), "prior: from sensor uncertainty; posterior: from fit residuals where dof > 0; larger: the larger of the two",
                               ("prior", "posterior", "larger")),
@@ -113,6 +118,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "max_side_km": Key(0.0, (int, float), "reject clusters with a longer side (0 = no limit) [km]"),
         "max_height_range_m": Key(1000.0, (int, float), "reject clusters whose stations span more height than this (0 = no limit) [m]: "
                                                         "one vertical gradient cannot describe a kilometre of mountainside (common practice)"),
+        "exclude": Key([], (list,), "station ids left out of the budget (their values are still read and checked)"),
         "max_noise_amplification": Key(0.0, (int, float), "reject clusters whose gradient error per unit sensor noise exceeds this (0 = no limit) [km-1]"),
     },
     "sensors": {
@@ -146,6 +152,29 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                             "window aims at [variable unit per hour] (default per variable: 0.25 K/h for "
                                             "temperatures, 1 %/h humidity, 20 Pa/h pressure, 1 unit/h concentrations; common practice)"),
         "chunk": Key("", (str,), "process this much time at once, e.g. '7D' (default: automatic, about half a million cluster-steps per partition; results are identical)"),
+    },
+    "follow": {
+        "learn": Key("1h", (str,), "budget --follow: data needed before the settings learned from the data (reading noise, "
+                                   "interval, window, network) are pinned for the night; written to settings.toml"),
+        "critical": Key({}, (dict, int, float, str), "the critical value whose crossing now.html projects: a number in the "
+                                                       "variable's unit, a string with a unit ('-2.2 degC', '28 degF', "
+                                                       "'35 ug m-3'), or a table with 'default' and cluster or station ids "
+                                                       "(a cluster takes the most demanding value of its own and its "
+                                                       "stations'); empty: no projection. Temperatures are crossed "
+                                                       "downward, concentrations upward"),
+        "page_hours": Key(3.0, (int, float), "hours of history in the sparklines of now.html"),
+    },
+    "alerts": {
+        "below_critical": Key(True, (bool,), "alert when a cluster's latest value is past follow.critical (below it for "
+                                             "temperatures, above for concentrations)"),
+        "crossing_within": Key("60min", (str,), "alert when the projected crossing of follow.critical is this close "
+                                                "('' = off)"),
+        "advective_rate": Key(1.0, (int, float), "alert when the regime turns advective with a change faster than this "
+                                                 "[variable unit per hour]: cooling for temperatures, rising for "
+                                                 "concentrations (0 = off) (common practice)"),
+        "silent_after": Key("30min", (str,), "alert when a station has sent nothing for this long ('' = off)"),
+        "command": Key("", (str,), "a command run for every alert with the alert (one JSON line) on its standard input; "
+                                   "no shell is involved (arguments split as a POSIX shell would)"),
     },
 }
 
@@ -257,6 +286,16 @@ def _validate_values(cfg: Config, where0: str) -> None:
         raise ConfigError(f"{where0}budget.dominance must be in [0.5, 1)")
     from .network.grid import parse_duration
 
+    for section, name in (("follow", "learn"), ("alerts", "crossing_within"), ("alerts", "silent_after")):
+        text = cfg[section][name]
+        if text:
+            try:
+                parse_duration(text)
+            except ValueError:
+                raise ConfigError(f"{where0}{section}.{name} = {text!r} is not a duration like '30min' or '1h'") from None
+    for name in ("exclude",):
+        if not all(isinstance(v, str) for v in cfg["network"][name]):
+            raise ConfigError(f"{where0}network.{name} must be a list of station ids (strings)")
     for name in ("interval", "window", "chunk"):
         text = cfg["budget"][name]
         if text:
@@ -283,7 +322,35 @@ def load(path: str | Path | None) -> Config:
         raise ConfigError(f"{p}: not valid TOML ({exc})") from None
     cfg = from_dict(raw, source=str(p))
     base = p.parent
-    cf = cfg["network"]["cluster_file"]
-    if cf and not Path(cf).is_absolute():
-        cfg.data["network"]["cluster_file"] = str((base / cf))
+    for section, key in (("network", "cluster_file"), ("uncertainty", "noise_file")):
+        f = cfg[section][key]
+        if f and not Path(f).is_absolute():
+            cfg.data[section][key] = str(base / f)
     return cfg
+
+
+def to_toml(d: dict, prefix: str = "") -> str:
+    """A nested dict of strings, numbers, booleans and lists as TOML text (``None`` values are left out: unset)."""
+    lines: list[str] = []
+    scalars = {k: v for k, v in d.items() if not isinstance(v, dict) and v is not None}
+    tables = {k: v for k, v in d.items() if isinstance(v, dict)}
+    if prefix and scalars:
+        lines.append(f"[{prefix}]")
+    for k, v in scalars.items():
+        lines.append(f"{_toml_key(k)} = {json.dumps(v)}")
+    for k, v in tables.items():
+        sub = f"{prefix}.{_toml_key(k)}" if prefix else _toml_key(k)
+        if not any(isinstance(x, dict) for x in v.values()):
+            lines.append("")
+            lines.append(f"[{sub}]")
+            for kk, vv in v.items():
+                if vv is not None:
+                    lines.append(f"{_toml_key(kk)} = {json.dumps(vv)}")
+        else:
+            lines.append("")
+            lines.append(to_toml(v, sub))
+    return "\n".join(lines).strip() + "\n"
+
+
+def _toml_key(k: str) -> str:
+    return k if k.replace("_", "").replace("-", "").isalnum() else json.dumps(k)

@@ -50,6 +50,31 @@ def declared_noise(variable: str, config: Config) -> float | None:
     return float(table[variable]) if variable in table else None
 
 
+def noise_from_file(variable: str, config: Config, ids: list[str]) -> np.ndarray | None:
+    """Each station's reading noise from ``uncertainty.noise_file`` (stations it does not list: the median of those
+    it does), or None when no file is set or it lists nothing for ``variable``."""
+    path = config["uncertainty"]["noise_file"]
+    if not path:
+        return None
+    try:
+        table = pd.read_csv(path, dtype={"station_id": str, "variable": str})
+    except (OSError, ValueError) as exc:
+        raise ConfigError(f"uncertainty.noise_file = {path!r}: cannot read it ({exc})") from None
+    need = {"station_id", "variable", "reading_noise"}
+    if not need <= set(table.columns):
+        raise ConfigError(f"uncertainty.noise_file = {path!r} needs the columns station_id, variable, reading_noise; "
+                          f"it has {', '.join(map(str, table.columns))}")
+    rows = table[table["variable"] == variable]
+    noise = pd.to_numeric(rows["reading_noise"], errors="coerce").to_numpy(float)
+    if rows.empty:
+        return None
+    if not (np.isfinite(noise) & (noise > 0)).all():
+        raise ConfigError(f"uncertainty.noise_file = {path!r}: every reading_noise of {variable} must be a positive number")
+    by_id = dict(zip(rows["station_id"].astype(str), noise))
+    fill = float(np.median(noise))
+    return np.array([by_id.get(s, fill) for s in ids], float)
+
+
 def offset_uncertainty(variable: str, config: Config) -> tuple[float, str]:
     """(standard uncertainty of each sensor's persistent offset [unit], where it comes from).
 
@@ -177,8 +202,13 @@ class BudgetPlan:
 
 
 def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None,
-                progress: Progress = no_progress) -> BudgetPlan:
-    """Choose the variable and quantity, build the network and the settings, mask unusable values."""
+                progress: Progress = no_progress, network_stations: list[str] | None = None) -> BudgetPlan:
+    """Choose the variable and quantity, build the network and the settings, mask unusable values.
+
+    ``network_stations``: the stations the network is built from (a follow
+    run pins them for the night); by default those with good values of the
+    variable, less ``network.exclude``.
+    """
     bc = config["budget"]
     var = variable or bc["variable"]
     data = chk.data
@@ -192,8 +222,13 @@ def plan_budget(chk: CheckResult, config: Config, *, variable: str | None = None
     vertical = _vertical_mode(bc["vertical"], var, data.stations)
     quantity_values, quantity = _quantity(obs, data.stations, var, vertical, usable)
     mask_q = usable.get(var, np.ones(len(obs), bool))
-    st = _stations(chk, config, var, vertical, obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique(),
-                   progress)
+    excluded = config["network"]["exclude"]
+    if excluded:  # left out of the budget altogether: the network, the vertical fit, the regional plane
+        mask_q = mask_q & ~obs["station_id"].astype(str).isin(excluded).to_numpy()
+    has_var = obs.loc[np.isfinite(quantity_values) & mask_q, "station_id"].unique()
+    if network_stations is not None:
+        has_var = np.asarray(network_stations, dtype=object)
+    st = _stations(chk, config, var, vertical, has_var, progress)
     interval = _interval(config, obs, chk.qc.interval)
     sample = _NoiseSample.of(obs, st.ids)
     values = np.where(mask_q, quantity_values, np.nan)
@@ -290,6 +325,7 @@ class _NoiseSample:
     first: np.ndarray  # the rows of the sample
     order: np.ndarray  # the sample's rows in (station, time) order
     n_stations: int
+    ids: list[str]
 
     @classmethod
     def of(cls, obs: pd.DataFrame, ids: list[str]) -> "_NoiseSample":
@@ -301,7 +337,7 @@ class _NoiseSample:
             codes = pd.Index(ids).get_indexer(sid.astype(str)).astype(np.int64)
         time_ns = obs["time"].to_numpy("datetime64[ns]").astype(np.int64)
         first = uncertainty.noise_sample_rows(time_ns)
-        return cls(codes, time_ns, first, uncertainty.station_order(codes[first], time_ns[first]), len(ids))
+        return cls(codes, time_ns, first, uncertainty.station_order(codes[first], time_ns[first]), len(ids), list(ids))
 
     def learn(self, values: np.ndarray, **kw) -> tuple:
         """:func:`stationflow.estimate.uncertainty.reading_noise` of ``values`` (one per row) on the sample."""
@@ -514,6 +550,10 @@ def _reading_noise(variable: str, quantity: str, config: Config, sample: _NoiseS
     declared = declared_noise(variable, config)
     if declared is not None:
         return np.full(sample.n_stations, declared), {"noise_source": "uncertainty.sensor"}
+    listed = noise_from_file(variable, config, sample.ids)
+    if listed is not None:
+        return listed, {"noise_source": f"uncertainty.noise_file ({config['uncertainty']['noise_file']})",
+                        "noise_median": float(np.median(listed)), "noise_per_station": listed}
     noise, resolution, count = sample.learn(values, floor=uncertainty.noise_floor(
         quantity, kind_of(variable, config["observations"]["kinds"])))
     return noise, {"noise_source": "learned from second differences of each station's series",

@@ -16,7 +16,6 @@ gradient and optional non-planar terms.  :func:`frost_valley` and
 
 from __future__ import annotations
 
-import json
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -27,6 +26,7 @@ import pandas as pd
 
 from stationflow.variables import wind_direction
 
+from ..config import to_toml
 from ..estimate.thermo import KAPPA, P_REF, standard_pressure
 
 Array = np.ndarray
@@ -554,31 +554,6 @@ def smoke_town(seed: int = 11) -> Scenario:
 # writing the sample data as a logger would export it
 # ---------------------------------------------------------------------------
 
-def _toml(d: dict, prefix: str = "") -> str:
-    lines: list[str] = []
-    scalars = {k: v for k, v in d.items() if not isinstance(v, dict)}
-    tables = {k: v for k, v in d.items() if isinstance(v, dict)}
-    if prefix and scalars:
-        lines.append(f"[{prefix}]")
-    for k, v in scalars.items():
-        lines.append(f"{_key(k)} = {json.dumps(v)}")
-    for k, v in tables.items():
-        sub = f"{prefix}.{_key(k)}" if prefix else _key(k)
-        if not any(isinstance(x, dict) for x in v.values()):
-            lines.append("")
-            lines.append(f"[{sub}]")
-            for kk, vv in v.items():
-                lines.append(f"{_key(kk)} = {json.dumps(vv)}")
-        else:
-            lines.append("")
-            lines.append(_toml(v, sub))
-    return "\n".join(lines).strip() + "\n"
-
-
-def _key(k: str) -> str:
-    return k if k.replace("_", "").replace("-", "").isalnum() else json.dumps(k)
-
-
 def write_frost(sc: Scenario, folder: Path) -> list[Path]:
     """Write the frost scenario as a logger export: local time, degF, mph, a units row."""
     folder.mkdir(parents=True, exist_ok=True)
@@ -604,7 +579,7 @@ def write_frost(sc: Scenario, folder: Path) -> list[Path]:
         fh.write("id,local,degF,mph,deg\n")
         out.to_csv(fh, index=False, header=False, lineterminator="\n")
     (folder / "config.toml").write_text(
-        "# Hollin Valley frost night: configuration for the logger export in this folder.\n" + _toml(sc.config),
+        "# Hollin Valley frost night: configuration for the logger export in this folder.\n" + to_toml(sc.config),
         encoding="utf-8")
     return [folder / "stations.csv", p, folder / "config.toml"]
 
@@ -624,7 +599,7 @@ def write_town(sc: Scenario, folder: Path) -> list[Path]:
     })
     out.to_csv(folder / "observations.csv", index=False, lineterminator="\n")
     (folder / "config.toml").write_text(
-        "# Brackwater PM2.5 sensors: configuration for the export in this folder.\n" + _toml(sc.config),
+        "# Brackwater PM2.5 sensors: configuration for the export in this folder.\n" + to_toml(sc.config),
         encoding="utf-8")
     return [folder / "stations.csv", folder / "observations.csv", folder / "config.toml"]
 
