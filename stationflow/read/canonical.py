@@ -33,6 +33,9 @@ class IngestResult:
     sources: list[str]
     ignored_columns: list[str] = field(default_factory=list)
     reading: dict[str, str] = field(default_factory=dict)  # how the file was read (time layout, zone): for run.json
+    #: with ``canonicalise(..., keep_lines=True)``: each kept row's source file and line (a follow run names them
+    #: when a later row conflicts)
+    row_sources: tuple[np.ndarray, np.ndarray] | None = None
 
     @property
     def variables(self) -> list[str]:
@@ -101,9 +104,10 @@ def melt_wide(frame: pd.DataFrame, lines: np.ndarray, cfg: Config, path: str
     return long.astype({c: "string" for c in long.columns}), np.repeat(lines, k), np.repeat(np.arange(n), k)
 
 
-def canonicalise(raw: RawTable, cfg: Config, stations: pd.DataFrame | None) -> IngestResult:
+def canonicalise(raw: RawTable, cfg: Config, stations: pd.DataFrame | None, *, keep_lines: bool = False) -> IngestResult:
     """Canonical names, SI units and UTC times of a :class:`RawTable`; rows that cannot be used are rejected
-    with their reason, identical repeats collapsed and conflicting ones rejected."""
+    with their reason, identical repeats collapsed and conflicting ones rejected.  ``keep_lines``: keep each
+    row's file and line (``row_sources``)."""
     oc = cfg["observations"]
     src_name = raw.sources[0] if len(raw.sources) == 1 else str(Path(raw.sources[0]).parent)
     skipped = list(raw.frame.attrs.get("ignored_columns", []))
@@ -142,10 +146,14 @@ def canonicalise(raw: RawTable, cfg: Config, stations: pd.DataFrame | None) -> I
         raise IngestError(f"{src_name}: column {sid!r} is not a station in the stations file; add it there or drop the column")
     for i in np.flatnonzero(unknown):
         reasons.add(i, f"station {clip(out['station_id'].iloc[i])!r} is not in the stations file (add it there or correct the id)")
-    good, rej, accounting = _accept(raw, out, reasons, var_cols)
+    good, rej, accounting, kept = _accept(raw, out, reasons, var_cols, keep_lines)
     units = {name: V.si_unit(name, units_cfg.get(name)) for name in var_cols}
+    sources = None
+    if keep_lines:
+        files = np.full(len(kept), raw.files, object) if isinstance(raw.files, str) else np.asarray(raw.files, object)[kept]
+        sources = (files, np.asarray(raw.lines)[kept])
     return IngestResult(good, stations.reset_index(drop=True), rej, accounting, units, list(raw.sources), ignored,
-                        reading={"time_layout": layout, "timezone": oc["timezone"]})
+                        reading={"time_layout": layout, "timezone": oc["timezone"]}, row_sources=sources)
 
 
 def _check_columns(frame: pd.DataFrame, oc, src_name: str, *, empty_ok: bool) -> None:
@@ -226,10 +234,10 @@ def _calm_directions(out_cols: dict, calm_codes: np.ndarray, calm_speed: float) 
     out_cols["wind_from_direction"] = d
 
 
-def _accept(raw: RawTable, out: pd.DataFrame, reasons: "_Reasons", var_cols: list[str]
-            ) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, int]]:
+def _accept(raw: RawTable, out: pd.DataFrame, reasons: "_Reasons", var_cols: list[str], keep_lines: bool = False
+            ) -> tuple[pd.DataFrame, pd.DataFrame, dict[str, int], np.ndarray | None]:
     """(the rows kept, in (time, station) order with duplicates collapsed; every rejected row with its file,
-    line and reason; the row accounting)."""
+    line and reason; the row accounting; each kept row's position in ``raw``)."""
     lines, files, wide_rows = raw.lines, raw.files, raw.wide_rows
     bad_row = reasons.mask(len(out))
     if wide_rows is not None:
@@ -262,8 +270,9 @@ def _accept(raw: RawTable, out: pd.DataFrame, reasons: "_Reasons", var_cols: lis
     accounting = {"rows_read": int(raw.n_rows), "rows_accepted": int(raw.n_rows - n_rej), "rows_rejected": int(n_rej),
                   "duplicates_collapsed": int(collapsed)}
     if not ordered:
-        good = good.sort_values(["time", "station_id"], kind="stable").reset_index(drop=True)
-    elif good is not out:
+        good = good.sort_values(["time", "station_id"], kind="stable")
+    kept = good.index.to_numpy() if keep_lines else None
+    if not ordered or good is not out:
         good = good.reset_index(drop=True)
     codes = good["station_id"].cat.codes.to_numpy()
     used = np.bincount(codes[codes >= 0], minlength=len(good["station_id"].cat.categories)) > 0
@@ -271,7 +280,7 @@ def _accept(raw: RawTable, out: pd.DataFrame, reasons: "_Reasons", var_cols: lis
         good["station_id"] = good["station_id"].cat.remove_categories(good["station_id"].cat.categories[~used])
     if pd.DatetimeIndex(good["time"]).unit != "ns":
         good["time"] = pd.DatetimeIndex(good["time"]).as_unit("ns")
-    return good, rej, accounting
+    return good, rej, accounting, kept
 
 
 class _Reasons(dict):

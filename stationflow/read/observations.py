@@ -35,6 +35,8 @@ def _detect_format(path: Path, configured: str) -> str:
     if path.is_dir():
         if any(path.glob("*.parquet")) or any(path.glob("**/*.parquet")):
             return "parquet"
+        if any(path.glob("*.csv")) and not any(path.glob("*.nc")):
+            return "csv"
         return "netcdf"
     suffix = path.suffix.lower()
     if suffix in (".parquet", ".pq"):
@@ -66,9 +68,90 @@ def read_observations(
         raw = load_netcdf(p, cfg)
     elif fmt == "parquet":
         raw = load_parquet(p, cfg)
+    elif p.is_dir():
+        raw = _read_csv_folder(p, cfg, stations)
     else:
         raw = _read_csv(p, cfg, stations)
     return canonicalise(raw, cfg, stations)
+
+
+def csv_files(folder: Path) -> list[Path]:
+    """The CSV files of a folder of exports, in name order (loggers name them by time)."""
+    return sorted(q for q in folder.glob("*.csv") if q.is_file())
+
+
+def _read_csv_folder(folder: Path, cfg: Config, stations: pd.DataFrame | None) -> RawTable:
+    """Every CSV file of ``folder`` (in name order, each with its header), as one table."""
+    paths = csv_files(folder)
+    if not paths:
+        raise IngestError(f"{folder}: no .csv files in this folder")
+    return join_raw([_read_csv(q, cfg, stations) for q in paths])
+
+
+def join_raw(parts: list[RawTable]) -> RawTable:
+    """Raw tables of several files as one (each row keeps its file and line)."""
+    if len(parts) == 1:
+        return parts[0]
+    first = list(parts[0].frame.columns)
+    for part in parts[1:]:
+        if list(part.frame.columns) != first:
+            raise IngestError(f"{part.sources[0]}: its columns ({', '.join(map(str, part.frame.columns))}) differ from "
+                              f"those of {parts[0].sources[0]} ({', '.join(map(str, first))})")
+    frame = pd.concat([q.frame for q in parts], ignore_index=True)
+    files = np.concatenate([np.full(len(q.frame), q.files, object) if isinstance(q.files, str) else np.asarray(q.files, object)
+                            for q in parts])
+    wide = None
+    if any(q.wide_rows is not None for q in parts):
+        wide = np.concatenate([q.wide_rows if q.wide_rows is not None else q.lines for q in parts])
+    units = {}
+    for q in parts:
+        units.update(q.units)
+    return RawTable(frame, np.concatenate([np.asarray(q.lines) for q in parts]), files,
+                    [r for q in parts for r in q.rejected], sum(q.n_rows for q in parts),
+                    [s for q in parts for s in q.sources], units, wide)
+
+
+def read_csv_lines(source: str, header: bytes, body: bytes, first_line: int, cfg: Config,
+                   stations: pd.DataFrame | None, scratch: Path) -> RawTable:
+    """New lines of a growing CSV file: ``body`` (whole lines) that start at line ``first_line`` of ``source``,
+    read like the whole file would be (``header``: its first line).  Lines and messages name ``source``.
+
+    The lines are copied with the header to a scratch file in ``scratch``, read by the same readers as a
+    file, and renumbered.
+    """
+    import copy
+    import tempfile
+
+    from ..config import from_dict
+
+    n_body = body.count(b"\n") + (0 if body.endswith(b"\n") or not body else 1)
+    oc = cfg["observations"]
+    # skip_lines count in the source file; in the scratch file the body starts at line 2
+    skip = [n - first_line + 2 for n in oc["skip_lines"] if first_line <= n < first_line + n_body]
+    data = copy.deepcopy(cfg.to_dict())
+    data["observations"]["skip_lines"] = skip
+    local = from_dict(data, source=cfg.source)
+    scratch.mkdir(parents=True, exist_ok=True)
+    with tempfile.NamedTemporaryFile("wb", dir=scratch, suffix=".csv", delete=False) as fh:
+        fh.write(header if header.endswith(b"\n") else header + b"\n")
+        fh.write(body)
+        tmp = Path(fh.name)
+    try:
+        raw = _read_csv(tmp, local, stations)
+    finally:
+        tmp.unlink(missing_ok=True)
+    shift = first_line - 2
+
+    def moved(line):
+        return line + shift if line and line > 1 else line
+
+    raw.lines = np.asarray(raw.lines) + shift
+    if raw.wide_rows is not None:
+        raw.wide_rows = np.asarray(raw.wide_rows) + shift
+    raw.rejected = [(source, moved(int(line)) if line is not None else line, reason) for _, line, reason in raw.rejected]
+    raw.files = source
+    raw.sources = [source]
+    return raw
 
 
 def _read_csv(p: Path, cfg: Config, stations: pd.DataFrame | None) -> RawTable:
