@@ -331,6 +331,9 @@ def budget(
     engine: Annotated[Engine, typer.Option("--engine", help="local: this process; dask: dask.distributed, partitioned in time.")] = Engine.local,
     scheduler: Annotated[Optional[str], typer.Option("--scheduler", help="Dask scheduler address (default: a local cluster on loopback).")] = None,
     csv: Annotated[bool, typer.Option("--csv", help="Write budget.csv even above 1,000,000 rows.")] = False,
+    follow: Annotated[bool, typer.Option("--follow", help="Follow a growing CSV export (a file a logger appends to, or a folder new files arrive in): poll it every --every seconds and keep the budget, now.html and alerts.jsonl current until Ctrl-C. The state lives in --out.")] = False,
+    every: Annotated[float, typer.Option("--every", min=1.0, help="With --follow: seconds between polls.")] = 60.0,
+    once: Annotated[bool, typer.Option("--once", help="Follow mode, one call: process what is new since the last call and exit (for cron or a systemd timer).")] = False,
     quiet: QuietOpt = False,
 ) -> None:
     """The main job: split each observed change into advection and an in-situ part, per cluster and time.
@@ -343,16 +346,28 @@ def budget(
     warnings; local codes, extension services and licensed practice prevail. Check sensors and cold-pool
     stations by hand before acting on a flag.
 
+    With --follow (or --once) it follows a live export through the night: the newest rows are answered at
+    once with one-sided tendencies marked provisional and revised as data arrive; rows that can no longer
+    change are final and equal a batch run with the settings.toml it writes. now.html shows each cluster's
+    newest value and parts, and when it reaches follow.critical if the present in-situ rate goes on;
+    alerts.jsonl collects the [alerts] rules as they fire.
+
     Example:
 
     \b
         stationflow budget --stations sample_data/frost/stations.csv \\
             --obs sample_data/frost/observations.csv \\
             --config sample_data/frost/config.toml --out frost_out
+        stationflow budget --stations stations.csv --obs /data/logger/export.csv \\
+            --config orchard.toml --out tonight --follow --every 60
     """
     def job(report):
         _check_paths(obs=obs, stations=stations, config=config)
         cfg = _config(config)
+        if follow or once:
+            _follow_job(obs, stations, cfg, out, report, every=every, once=once, quiet=quiet,
+                        variable=variable, engine=engine)
+            return
         if scheduler and engine != Engine.dask:
             from .errors import ConfigError
 
@@ -395,6 +410,53 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
         _, notes = write_budget(out, run, inputs={"observations": obs, "stations": stations}, csv=csv,
                                 tables_written=True, qc_figure=qc_fig, figures=figs)
     return run, notes
+
+
+def _follow_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, every: float, once: bool, quiet: bool,
+                variable: str | None = None, engine=None) -> None:
+    """budget --follow / --once: one call, or calls every ``every`` seconds until Ctrl-C (which ends cleanly)."""
+    import time
+
+    from .errors import ConfigError
+    from .follow import Follow, follow_step
+
+    if stations is None:
+        raise ConfigError("--follow needs --stations (the network must be known before the rows arrive)")
+    if engine is not None and engine != Engine.local:
+        raise ConfigError("--follow runs on the local engine (each call is small)")
+    if variable:
+        from .config import from_dict
+
+        data = cfg.to_dict()
+        data["budget"]["variable"] = variable
+        cfg = from_dict(data, source=cfg.source)
+    ctx = Follow(obs, stations, cfg, out, every)
+    try:
+        while True:
+            res = follow_step(ctx, progress=report)
+            if not quiet:
+                typer.echo(_follow_line(res, cfg, out))
+            if once:
+                return
+            time.sleep(every)
+    except KeyboardInterrupt:
+        if not quiet:
+            typer.echo(f"stopped; the state is kept in {out} (run the same command again to resume)")
+        return
+
+
+def _follow_line(res, cfg, out: Path) -> str:
+    from .report.text import display_zone, show_time
+
+    zone = display_zone(cfg)
+    if res.waiting:
+        return f"{res.waiting}; page: {out / 'now.html'}"
+    if res.newest is None:
+        return "no observations yet"
+    head = (f"{show_time(res.newest, zone)}: {res.new_rows:,} new rows; final through "
+            f"{show_time(res.final_through, zone) if res.final_through is not None else 'none yet'}; page: {out / 'now.html'}")
+    lines = [head] + [f"  ALERT {a['rule']}: {a['message']}" for a in res.new_alerts]
+    return "\n".join(lines)
 
 
 def _budget_summary(run, out: Path, notes: list[str]) -> str:

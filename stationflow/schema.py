@@ -91,6 +91,10 @@ COLUMNS: tuple[Column, ...] = (
     Column("wind_from_direction", "float64", "degree", "direction the cluster-mean wind blows from (true north)",
            compress=False),
     Column("gradient_bearing", "float64", "degree", "bearing toward higher values (true north)", compress=False),
+    Column("provisional", "bool", "1", "budget --follow only: the row may still change as data arrive (final rows equal a "
+                                       "batch run with settings.toml)"),
+    Column("one_sided", "bool", "1", "budget --follow only: tendency, advection and in-situ part are those of the last "
+                                     "complete window, ending at this time, with its drift added to their errors"),
 )
 BY_NAME = {c.name: c for c in COLUMNS}
 #: the fixed first columns of the budget table, in order

@@ -1,0 +1,199 @@
+"""Critical values and alert rules of a followed night.
+
+``follow.critical`` gives each cluster its critical value: one value for
+all, or a table with ``default`` and cluster or station ids (a cluster takes
+the most demanding value of its own id and its stations': the highest
+critical temperature, the lowest concentration limit).  Values are numbers
+in the variable's unit or strings with a unit (``"-2.2 degC"``,
+``"28 degF"``, ``"35 ug m-3"``).
+
+The rules (``[alerts]``), checked on the newest row of every cluster after
+each call; an alert is written when a condition *starts* to hold (it is not
+repeated while it holds, and may fire again once it has cleared):
+
+- ``below_critical``: the value is past the critical value (below it for a
+  temperature, above for a concentration); it clears once the value is back
+  by more than twice its standard error;
+- ``crossing_within``: the projected crossing (the present in-situ rate
+  continued, :mod:`stationflow.estimate.projection`) is nearer than this;
+- ``advective_rate``: the regime is advective and the change is faster than
+  this (cooling for temperatures, rising for concentrations);
+- ``silent_after``: a station has sent nothing for this long (measured
+  against the newest report of any station, so a replay behaves as live).
+
+Each alert is one JSON object: ``time`` (UTC) and ``local_time``, ``rule``,
+``cluster`` or ``station``, a sentence, and the ``evidence`` (the numbers
+the rule looked at, with their unit).
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import re
+import shlex
+import subprocess
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from ..config import Config
+from ..errors import ConfigError
+from ..network.grid import parse_duration
+from ..variables import convert, kind_of
+
+log = logging.getLogger(__name__)
+
+
+def parse_value(text, variable: str) -> float:
+    """A critical value in the variable's (SI) unit from a number or a string with a unit."""
+    if isinstance(text, bool):
+        raise ConfigError(f"follow.critical: {text!r} is not a value")
+    if isinstance(text, (int, float)):
+        value = float(text)
+        if kind_of(variable) == "temperature" and value < 150.0:
+            raise ConfigError(f"follow.critical = {text}: give temperatures with their unit, e.g. '{text} degC' "
+                              f"or '{text} degF' (a bare number is read as kelvin)")
+        return value
+    m = re.fullmatch(r"\s*([-+]?\d+(?:\.\d*)?(?:[eE][-+]?\d+)?)\s*(.*?)\s*", str(text))
+    if not m:
+        raise ConfigError(f"follow.critical = {text!r} is not a number with a unit, like '-2.2 degC'")
+    number, unit = float(m.group(1)), m.group(2)
+    if not unit:
+        return parse_value(number, variable)
+    try:
+        return float(convert(np.array([number]), variable, unit)[0])
+    except (ValueError, KeyError, ConfigError) as exc:
+        raise ConfigError(f"follow.critical = {text!r}: unknown unit {unit!r} for {variable} ({exc})") from None
+
+
+def downward(variable: str, cfg: Config) -> bool:
+    """True when the critical value is crossed going down (temperatures), False going up (concentrations)."""
+    return kind_of(variable, cfg["observations"]["kinds"]) != "concentration"
+
+
+def critical_values(cfg: Config, variable: str, clusters: pd.DataFrame) -> np.ndarray:
+    """Each cluster's critical value (NaN where none is set)."""
+    setting = cfg["follow"]["critical"]
+    n = len(clusters)
+    if setting in ({}, "", None):
+        return np.full(n, np.nan)
+    if not isinstance(setting, dict):
+        return np.full(n, parse_value(setting, variable))
+    table = {str(k): parse_value(v, variable) for k, v in setting.items()}
+    pick = max if downward(variable, cfg) else min
+    out = np.full(n, np.nan)
+    for i, row in enumerate(clusters.itertuples()):
+        ids = [str(row.cluster)] + str(row.stations).split("+")
+        own = [table[k] for k in ids if k in table]
+        if own:
+            out[i] = pick(own)
+        elif "default" in table:
+            out[i] = table["default"]
+    unknown = set(table) - {"default"} - set(clusters["cluster"].astype(str)) - {
+        s for st in clusters["stations"].astype(str) for s in st.split("+")}
+    if unknown:
+        log.warning("follow.critical names %s, which is neither a cluster nor a station of the network",
+                    ", ".join(sorted(unknown)))
+    return out
+
+
+@dataclass
+class Latest:
+    """The newest row of every cluster, with the projection (arrays by cluster)."""
+
+    time: pd.Timestamp
+    clusters: list[str]
+    value: np.ndarray
+    value_se: np.ndarray
+    tendency: np.ndarray
+    advection: np.ndarray
+    residual: np.ndarray
+    residual_se: np.ndarray
+    regime: list[str]
+    critical: np.ndarray
+    hours: np.ndarray
+    hours_se: np.ndarray
+
+
+def _fmt(x: float) -> float | None:
+    return None if not np.isfinite(x) else float(round(x, 4))
+
+
+def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool], cfg: Config, *, variable: str,
+             unit: str, zone) -> list[dict]:
+    """The alerts that start now (``firing`` is updated in place)."""
+    ac = cfg["alerts"]
+    down = downward(variable, cfg)
+    rate_unit = f"{unit} h-1"
+    now = latest.time
+    out: list[dict] = []
+
+    def fire(rule: str, subject: str, holds: bool, clears: bool, message: str, evidence: dict,
+             kind: str = "cluster") -> None:
+        key = f"{rule}|{subject}"
+        if holds and not firing.get(key):
+            firing[key] = True
+            out.append({"time": now.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"),
+                        "local_time": now.tz_convert(zone).isoformat(), "rule": rule, kind: subject,
+                        "message": message, "evidence": evidence})
+        elif firing.get(key) and clears:
+            firing[key] = False
+
+    within = parse_duration(ac["crossing_within"]).total_seconds() / 3600.0 if ac["crossing_within"] else None
+    for i, c in enumerate(latest.clusters):
+        v, vse, crit = latest.value[i], latest.value_se[i], latest.critical[i]
+        ev = {"value": _fmt(v), "value_se": _fmt(vse), "unit": unit}
+        if ac["below_critical"] and np.isfinite(crit) and np.isfinite(v):
+            past = v < crit if down else v > crit
+            back = (v > crit + 2 * vse) if down else (v < crit - 2 * vse)
+            fire("below_critical", c, bool(past), bool(back),
+                 f"{c}: {'below' if down else 'above'} the critical value",
+                 {**ev, "critical": _fmt(crit)})
+        if within is not None and np.isfinite(crit):
+            hrs = latest.hours[i]
+            soon = bool(np.isfinite(hrs) and 0 < hrs <= within)
+            fire("crossing_within", c, soon, not (np.isfinite(hrs) and hrs <= within),
+                 f"{c}: projected to reach the critical value in {hrs * 60:.0f} min if the present in-situ rate goes on"
+                 if np.isfinite(hrs) else f"{c}: projected to reach the critical value soon",
+                 {**ev, "critical": _fmt(crit), "minutes": _fmt(hrs * 60), "minutes_se": _fmt(latest.hours_se[i] * 60),
+                  "in_situ_rate": _fmt(latest.residual[i]), "in_situ_rate_se": _fmt(latest.residual_se[i]),
+                  "advection": _fmt(latest.advection[i]), "rate_unit": rate_unit,
+                  "assumption": "the present in-situ rate continues; advection is left out"})
+        rate = float(ac["advective_rate"])
+        if rate > 0:
+            t = latest.tendency[i]
+            fast = np.isfinite(t) and ((t < -rate) if down else (t > rate))
+            fire("advective_rate", c, bool(latest.regime[i] == "advective" and fast), not fast or latest.regime[i] != "advective",
+                 f"{c}: {'cold air carried in' if down else 'a plume carried in'}, "
+                 f"{'cooling' if down else 'rising'} {abs(t):.2g} {rate_unit}",
+                 {**ev, "tendency": _fmt(t), "advection": _fmt(latest.advection[i]), "residual": _fmt(latest.residual[i]),
+                  "rate_unit": rate_unit, "regime": latest.regime[i]})
+    if ac["silent_after"] and last_seen:
+        limit = parse_duration(ac["silent_after"])
+        newest = max(pd.Timestamp(t) for t in last_seen.values())
+        for sid, t in sorted(last_seen.items()):
+            gap = newest - pd.Timestamp(t)
+            fire("silent_after", sid, gap > limit, gap <= limit, f"station {sid} has sent nothing for {gap}",
+                 {"last_report": t, "newest_report": newest.strftime("%Y-%m-%dT%H:%M:%SZ"),
+                  "silent_minutes": gap.total_seconds() / 60.0}, kind="station")
+    return out
+
+
+def run_command(command: str, alerts: list[dict]) -> int:
+    """Run ``alerts.command`` once per alert with the alert on its standard input; returns how many were
+    handed over (a failing command is logged and counted as handed over: alerts are not retried forever)."""
+    if not command or not alerts:
+        return len(alerts)
+    args = shlex.split(command)
+    for a in alerts:
+        try:
+            res = subprocess.run(args, input=json.dumps(a) + "\n", text=True, capture_output=True, timeout=60,
+                                 check=False)
+            if res.returncode != 0:
+                log.warning("alerts.command exited with %d for a %s alert: %s", res.returncode, a["rule"],
+                            (res.stderr or "").strip()[:200])
+        except (OSError, subprocess.TimeoutExpired) as exc:
+            log.warning("alerts.command could not be run: %s", exc)
+    return len(alerts)

@@ -1,0 +1,101 @@
+"""The state of a followed night, on disk in ``OUT/.follow/``, safe against a kill at any moment.
+
+``state.json`` is the one commit point.  Everything else in the folder is
+written first under a new name (``obs-000012.parquet``, ``final-000012.npz``
+...) and only becomes part of the state when a new ``state.json`` that names
+it is renamed into place.  A run killed before that rename (SIGKILL
+included) leaves the previous state whole: the next call reads the same new
+lines again and nothing is counted twice; files no state names are removed
+when the next call starts.  The outputs (the budget files, now.html,
+alerts.jsonl) are rendered from the committed state, each written to a
+temporary name and renamed, so none is ever half-written.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from ..report.atomic import atomic_write
+
+STATE_DIR = ".follow"
+STATE_FILE = "state.json"
+VERSION = 1
+
+COUNTS = ("rows_read", "rows_accepted", "rows_rejected", "duplicates", "conflicts", "late_after_final", "restarts",
+          "polls")
+
+
+@dataclass
+class FollowState:
+    """Everything a follow call needs from the calls before it."""
+
+    version: int = VERSION
+    source: str = ""
+    marks: dict = field(default_factory=dict)  # file -> source.Mark as a dict
+    time_format: str = ""  # the time layout found in the first lines ("" = none yet)
+    pinned: dict | None = None  # settings.Pinned as a dict, once pinned
+    final_through: str | None = None  # the newest final analysis time (UTC ISO 8601)
+    chunks: list = field(default_factory=list)  # final rows, in time order: [file, first time, last time]
+    revisions: list = field(default_factory=list)  # files of one-sided estimates as issued
+    obs: str | None = None  # the retained observations
+    rejected: str | None = None  # every rejected row so far
+    counts: dict = field(default_factory=lambda: {k: 0 for k in COUNTS})
+    alerts: list = field(default_factory=list)  # every alert so far
+    firing: dict = field(default_factory=dict)  # "rule|subject" -> True while the condition holds
+    delivered: int = 0  # alerts handed to alerts.command
+    last_seen: dict = field(default_factory=dict)  # station -> its newest report time (UTC ISO 8601)
+    minimum: dict = field(default_factory=dict)  # cluster -> [lowest value, its time]
+    newest: str | None = None  # the newest analysis time computed
+    units: dict = field(default_factory=dict)  # the variables' units (as ingest gives them)
+    generation: int = 0
+    rendered: int = 0  # the generation the outputs were last rendered from
+
+    def files(self) -> set[str]:
+        """The data files this state names."""
+        names = {c[0] for c in self.chunks} | set(self.revisions)
+        names |= {n for n in (self.obs, self.rejected) if n}
+        return names
+
+
+class Store:
+    """The state folder: load, commit, and the removal of files no state names."""
+
+    def __init__(self, out: str | Path) -> None:
+        self.dir = Path(out) / STATE_DIR
+        self.path = self.dir / STATE_FILE
+
+    def load(self) -> FollowState:
+        if not self.path.exists():
+            return FollowState()
+        raw = json.loads(self.path.read_text(encoding="utf-8"))
+        if raw.get("version") != VERSION:
+            from ..errors import ConfigError
+
+            raise ConfigError(f"{self.path}: follow state of another version; use a new --out folder")
+        st = FollowState(**{k: v for k, v in raw.items() if k in FollowState.__dataclass_fields__})
+        for k in COUNTS:
+            st.counts.setdefault(k, 0)
+        return st
+
+    def name(self, kind: str, generation: int, ext: str) -> str:
+        return f"{kind}-{generation:06d}.{ext}"
+
+    def file(self, name: str) -> Path:
+        return self.dir / name
+
+    def commit(self, state: FollowState) -> None:
+        """Make ``state`` the state (one atomic rename)."""
+        self.dir.mkdir(parents=True, exist_ok=True)
+        with atomic_write(self.path) as tmp:
+            tmp.write_text(json.dumps(asdict(state), indent=1) + "\n", encoding="utf-8")
+
+    def tidy(self, state: FollowState) -> None:
+        """Remove the files of calls that never committed, and those the state no longer names."""
+        if not self.dir.exists():
+            return
+        keep = state.files() | {STATE_FILE}
+        for p in self.dir.iterdir():
+            if p.is_file() and p.name not in keep:
+                p.unlink(missing_ok=True)

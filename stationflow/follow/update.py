@@ -1,0 +1,327 @@
+"""The budget part of a follow call: pin, compute the open rows, store the final ones, render the outputs.
+
+See :mod:`stationflow.follow.engine` for the whole call.
+"""
+
+from __future__ import annotations
+
+import logging
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..estimate.budget import REGIMES
+from ..estimate.projection import crossing
+from ..estimate.provisional import drift_per_hour, one_sided
+from ..network.grid import grid_times, parse_duration
+from ..report import files
+from ..run.partitions import compute_partition, derive, partition_rows
+from ..run.plan import Layout, plan_budget
+from ..run.sinks import Partition
+from . import alerts as al
+from .engine import REVISION_COLUMNS, Follow, StepResult, _checked, _iso, _ts
+from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
+from .state import FollowState, Store
+
+log = logging.getLogger(__name__)
+
+
+def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, gen: int, n_new: int,
+            progress) -> StepResult:
+    """Bring the budget up to date with ``obs`` (the retained rows, new ones merged) and commit."""
+    cfg = ctx.cfg
+    newest = pd.Timestamp(obs["time"].max()) if len(obs) else None
+    if state.pinned is None:
+        need = parse_duration(cfg["follow"]["learn"])
+        span = (newest - pd.Timestamp(obs["time"].min())) if newest is not None else pd.Timedelta(0)
+        if newest is None or span < need:
+            _save_obs(state, store, obs, gen)
+            state.generation = gen
+            store.commit(state)
+            waiting = (f"learning the network's settings: {span} of the {need} of data needed so far"
+                       if newest is not None else "waiting for the first observations")
+            _render_waiting(ctx, state, store, waiting)
+            return StepResult(n_new, newest, None, [], waiting=waiting)
+        progress("learning the settings (pinned for the night: settings.toml)")
+        chk = _checked(obs, ctx.stations, cfg, state.units)
+        plan = plan_budget(chk, cfg)
+        p = pin(plan, cfg, time_format=state.time_format, units=state.units, newest=newest)
+        state.pinned = p.to_json()
+        write_pinned(cfg, p, ctx.out)
+        if plan.sensors is not None:
+            files.write_csv(plan.sensors, ctx.out / "sensor_offsets.csv", time_columns=())
+    elif n_new == 0 and state.rendered == state.generation and (ctx.out / "now.html").exists():
+        state.generation = gen
+        state.rendered = gen
+        store.commit(state)  # only the poll count changed
+        return StepResult(0, newest, _ts(state.final_through), [])
+    p = Pinned.from_json(state.pinned)
+    step_cfg = pinned_config(cfg, p, ctx.out, for_steps=True)
+    progress("quality control and plane fits of the open rows")
+    block = _compute(ctx, state, obs, p, step_cfg)
+    _store_final(state, store, block, gen)
+    _store_revisions(state, store, block, gen)
+    latest = _latest(block, step_cfg, p)
+    _update_minimum(state, block)
+    new_alerts = al.evaluate(latest, state.last_seen, state.firing, step_cfg, variable=p.variable,
+                             unit=block.plan.unit, zone=_zone(cfg))
+    state.alerts.extend(new_alerts)
+    state.newest = _iso(block.times[-1])
+    _save_obs(state, store, _trim(obs, block), gen)
+    state.generation = gen
+    store.commit(state)  # the commit point: everything above is now the state
+    progress("writing the outputs")
+    render(ctx, state, store, block, latest)
+    state.delivered += al.run_command(cfg["alerts"]["command"], state.alerts[state.delivered:])
+    state.rendered = gen
+    store.commit(state)
+    return StepResult(n_new, block.times[-1], _ts(state.final_through), new_alerts, latest=_latest_table(latest, block))
+
+
+class Block:
+    """The rows computed by one call: ``terms`` from the first open analysis time to the newest."""
+
+    def __init__(self, plan, times: pd.DatetimeIndex, terms: dict, n_final: int, reach: int, qc_doubts: pd.DataFrame,
+                 drift: np.ndarray) -> None:
+        self.plan = plan
+        self.times = times  # the analysis times of ``terms``
+        self.terms = terms
+        self.n_final = n_final  # the first rows that are now final
+        self.reach = reach
+        self.qc_doubts = qc_doubts
+        self.drift = drift
+
+    @property
+    def clusters(self) -> pd.DataFrame:
+        return self.plan.layout.clusters
+
+
+def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, p: Pinned, step_cfg) -> Block:
+    """QC, fits and budget of the retained rows; the rows from the first open time on, the one-sided newest."""
+    interval = p.interval_td
+    variables = [c for c in obs.columns if c not in ("station_id", "time")]
+    reach = qc_reach(step_cfg, variables, interval)
+    chk = _checked(obs, ctx.stations, step_cfg, state.units)
+    plan = plan_budget(chk, step_cfg, network_stations=p.network_stations)
+    times = plan.times
+    n = len(times)
+    final = _ts(state.final_through)
+    f = 0 if final is None else int(times.searchsorted(final + interval))
+    a = max(0, f - plan.halo)
+    terms = compute_partition(plan, partition_rows(plan, a, n - 1), a, n - 1)
+    terms = derive(terms, plan.layout.convergence)
+    h = plan.settings.half_window
+    drift = drift_per_hour(terms, "residual", h, interval.total_seconds())
+    one = one_sided(terms, h, plan.settings)
+    core = slice(f - a, None)
+    terms = {k: np.ascontiguousarray(v[core]) for k, v in terms.items()}
+    lag = plan.halo + reach  # steps after which nothing that can still arrive changes a row
+    n_final = max(0, (n - 1 - lag) - f + 1)
+    k, n_c = terms["regime"].shape
+    provisional = np.ones((k, n_c), bool)
+    provisional[:n_final] = False
+    terms["provisional"] = provisional
+    terms["one_sided"] = np.broadcast_to(one[core][:, None], (k, n_c)).copy()
+    return Block(plan, times[f:], terms, n_final, reach, _doubts(chk, plan), drift)
+
+
+def _doubts(chk, plan) -> pd.DataFrame:
+    """The stations whose newest value of the variable or the wind QC doubts: station, variable, flag, tests."""
+    from ..qc import flag_table
+
+    obs = chk.data.observations
+    table = flag_table(obs, chk.qc)
+    if table.empty:
+        return table
+    last = obs.groupby("station_id", observed=True)["time"].max()
+    newest = table["station_id"].astype(str).map({str(k): v for k, v in last.items()})
+    keep = (table["time"] == newest) & table["variable"].isin([plan.variable, "wind_speed", "wind_from_direction"])
+    return table[keep.to_numpy()].reset_index(drop=True)
+
+
+def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> None:
+    """The rows that became final, once, for good (a new file the state names)."""
+    k = block.n_final
+    if k <= 0:
+        return
+    name = store.name("final", gen, "npz")
+    np.savez(store.file(name), **{n: v[:k] for n, v in block.terms.items()})
+    state.chunks.append([name, _iso(block.times[0]), _iso(block.times[k - 1])])
+    state.final_through = _iso(block.times[k - 1])
+
+
+def _store_revisions(state: FollowState, store: Store, block: Block, gen: int) -> None:
+    """The one-sided estimates as issued now (the revision history of the newest rows)."""
+    rows = np.flatnonzero(block.terms["one_sided"][:, 0])
+    if rows.size == 0:
+        return
+    n_c = len(block.clusters)
+    t = block.terms
+    table = pd.DataFrame({
+        "issued": np.repeat(block.times[-1], rows.size * n_c),
+        "time": np.repeat(block.times[rows], n_c),
+        "cluster": np.tile(block.clusters["cluster"].astype(str).to_numpy(), rows.size),
+        **{c: t[c][rows].reshape(-1) for c in REVISION_COLUMNS},
+        "regime": np.asarray(REGIMES, object)[t["regime"][rows].reshape(-1)],
+    })
+    name = store.name("revisions", gen, "parquet")
+    table.to_parquet(store.file(name), index=False)
+    state.revisions.append(name)
+
+
+def _zone(cfg):
+    from ..read.times import tzinfo_for
+    from ..report.text import display_zone
+
+    return tzinfo_for(display_zone(cfg) or "UTC")
+
+
+def _latest(block: Block, cfg, p: Pinned) -> al.Latest:
+    """The newest row of every cluster with its projection to the critical value."""
+    t = block.terms
+    clusters = block.clusters
+    critical = al.critical_values(cfg, p.variable, clusters)
+    i = -1
+    cross = crossing(t["value"][i], t["value_se"][i], t["residual"][i], t["residual_se"][i], critical,
+                     downward=al.downward(p.variable, cfg), drift=block.drift)
+    return al.Latest(block.times[-1], clusters["cluster"].astype(str).tolist(), t["value"][i], t["value_se"][i],
+                     t["tendency"][i], t["advection"][i], t["residual"][i], t["residual_se"][i],
+                     [REGIMES[c] for c in t["regime"][i]], critical, cross.hours, cross.hours_se)
+
+
+def _latest_table(latest: al.Latest, block: Block) -> pd.DataFrame:
+    t = block.terms
+    return pd.DataFrame({"time": latest.time, "cluster": latest.clusters, "value": latest.value,
+                         "value_se": latest.value_se, "tendency": latest.tendency,
+                         "tendency_se": t["tendency_se"][-1], "advection": latest.advection,
+                         "advection_se": t["advection_se"][-1], "residual": latest.residual,
+                         "residual_se": latest.residual_se, "regime": latest.regime, "critical": latest.critical,
+                         "hours": latest.hours, "hours_se": latest.hours_se})
+
+
+def _update_minimum(state: FollowState, block: Block) -> None:
+    v = block.terms["value"]
+    names = block.clusters["cluster"].astype(str).tolist()
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(v).any(axis=0)
+        idx = np.argmin(np.where(np.isfinite(v), v, np.inf), axis=0)
+    for j, c in enumerate(names):
+        if not ok[j]:
+            continue
+        val = float(v[idx[j], j])
+        old = state.minimum.get(c)
+        if old is None or val < old[0]:
+            state.minimum[c] = [val, _iso(block.times[idx[j]])]
+
+
+def _trim(obs: pd.DataFrame, block: Block) -> pd.DataFrame:
+    """The rows the next call can still need: the QC reach and the budget halo before the first open time."""
+    interval = block.plan.interval
+    first_open = block.times[block.n_final] if block.n_final < len(block.times) else block.times[-1]
+    keep_from = first_open - (block.plan.halo + block.reach + 2) * interval
+    return obs[obs["time"] > keep_from].reset_index(drop=True)
+
+
+def _save_obs(state: FollowState, store: Store, obs: pd.DataFrame, gen: int) -> None:
+    name = store.name("obs", gen, "parquet")
+    store.dir.mkdir(parents=True, exist_ok=True)
+    obs.to_parquet(store.file(name), index=False)
+    state.obs = name
+
+
+# --------------------------------------------------------------------------
+# the outputs
+# --------------------------------------------------------------------------
+
+def _night_layout(state: FollowState, block: Block) -> Layout:
+    """The whole night so far: from the first final row (or the first open one) to the newest."""
+    plan = block.plan
+    t0 = _ts(state.chunks[0][1]) if state.chunks else block.times[0]
+    times = grid_times(t0, block.times[-1], plan.interval)
+    lay = plan.layout
+    return Layout(times, lay.clusters, lay.convergence, lay.unit, lay.variable, lay.quantity)
+
+
+def _parts(state: FollowState, store: Store, block: Block):
+    """Every row of the night in time order: the stored final chunks, then this call's open rows."""
+    first = 0
+    for name, _, _ in state.chunks:
+        with np.load(store.file(name)) as z:
+            terms = {k: z[k] for k in z.files}
+        yield Partition(first, terms)
+        first += terms["regime"].shape[0]
+    k = block.n_final
+    yield Partition(first, {n: v[k:] for n, v in block.terms.items()})
+
+
+def render(ctx: Follow, state: FollowState, store: Store, block: Block, latest: al.Latest) -> None:
+    """Every output from the committed state and this call's open rows (each file written atomically)."""
+    from ..report.now import write_page
+    from ..report.tables import budget_files
+    from .history import History
+
+    out = ctx.out
+    layout = _night_layout(state, block)
+    history = History(layout.times, float(ctx.cfg["follow"]["page_hours"]))
+    with budget_files(out, layout) as sinks:
+        for part in _parts(state, store, block):
+            for s in sinks:
+                s.write(part)
+            history.write(part)
+    _write_records(ctx, state, store, block, layout)
+    write_page(out / "now.html", ctx=ctx, state=state, block=block, latest=latest, history=history)
+    _write_alerts(out, state)
+
+
+def _write_alerts(out: Path, state: FollowState) -> None:
+    import json
+
+    from ..report.atomic import atomic_write
+
+    with atomic_write(out / "alerts.jsonl") as tmp:
+        tmp.write_text("".join(json.dumps(a) + "\n" for a in state.alerts), encoding="utf-8")
+
+
+def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
+    """rejected_rows.csv, clusters.csv, revisions.parquet and run.json."""
+    from ..network.geometry import cluster_table
+    from ..report.outputs import run_record
+
+    out = ctx.out
+    rej = (pd.read_parquet(store.file(state.rejected)) if state.rejected
+           else pd.DataFrame(columns=["file", "line", "reason"]))
+    files.write_rejected(rej, out / "rejected_rows.csv")
+    files.write_csv(cluster_table(block.plan.network), out / "clusters.csv", time_columns=())
+    if state.revisions:
+        rev = pd.concat([pd.read_parquet(store.file(n)) for n in state.revisions], ignore_index=True)
+        from ..report.atomic import write_with
+
+        write_with(out / "revisions.parquet", lambda tmp: rev.to_parquet(tmp, index=False))
+    accounting = {k: v for k, v in state.counts.items()}
+    rec = run_record("budget --follow", {"observations": ctx.obs, "stations": ctx.stations_path}, ctx.cfg, accounting, {
+        "status": "following",
+        "variable": block.plan.variable, "quantity": block.plan.quantity, "unit": block.plan.unit,
+        "pinned": {k: v for k, v in state.pinned.items() if k != "noise"},
+        "settings_file": "settings.toml",
+        "newest_time": state.newest, "final_through": state.final_through,
+        "rows": {"final_steps": int(sum(1 for _ in layout.times[:_final_steps(state, layout)])),
+                 "steps": int(len(layout.times)), "clusters": int(len(layout.clusters))},
+        "final_lag_steps": int(block.plan.halo + block.reach),
+        "alerts": len(state.alerts),
+    })
+    files.write_json(rec, out / "run.json")
+
+
+def _final_steps(state: FollowState, layout: Layout) -> int:
+    if state.final_through is None:
+        return 0
+    return int(layout.times.searchsorted(_ts(state.final_through), side="right"))
+
+
+def _render_waiting(ctx: Follow, state: FollowState, store: Store, message: str) -> None:
+    from ..report.now import write_waiting
+
+    write_waiting(ctx.out / "now.html", ctx=ctx, state=state, message=message)
+    state.rendered = state.generation
+    store.commit(state)
