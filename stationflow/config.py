@@ -160,8 +160,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                                        "variable's unit, a string with a unit ('-2.2 degC', '28 degF', "
                                                        "'35 ug m-3'), or a table with 'default' and cluster or station ids "
                                                        "(a cluster takes the most demanding value of its own and its "
-                                                       "stations'); empty: no projection. Temperatures are crossed "
-                                                       "downward, concentrations upward"),
+                                                       "stations'). Temperatures are crossed downward, concentrations "
+                                                       "upward (default: 0 degC for temperatures, the freezing point: "
+                                                       "set the critical temperature of your crop and bud stage; none "
+                                                       "for other variables)"),
         "page_hours": Key(3.0, (int, float), "hours of history in the sparklines of now.html"),
     },
     "alerts": {

@@ -46,6 +46,10 @@ from ..variables import convert, kind_of
 log = logging.getLogger(__name__)
 
 
+#: the critical temperature when none is set: the freezing point (set the crop's own; common practice)
+DEFAULT_CRITICAL_K = 273.15
+
+
 def parse_value(text, variable: str) -> float:
     """A critical value in the variable's (SI) unit from a number or a string with a unit."""
     if isinstance(text, bool):
@@ -78,6 +82,8 @@ def critical_values(cfg: Config, variable: str, clusters: pd.DataFrame) -> np.nd
     setting = cfg["follow"]["critical"]
     n = len(clusters)
     if setting in ({}, "", None):
+        if kind_of(variable, cfg["observations"]["kinds"]) == "temperature":
+            return np.full(n, DEFAULT_CRITICAL_K)
         return np.full(n, np.nan)
     if not isinstance(setting, dict):
         return np.full(n, parse_value(setting, variable))
@@ -122,8 +128,9 @@ def _fmt(x: float) -> float | None:
 
 
 def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool], cfg: Config, *, variable: str,
-             unit: str, zone) -> list[dict]:
-    """The alerts that start now (``firing`` is updated in place)."""
+             unit: str, zone, display) -> list[dict]:
+    """The alerts that start now (``firing`` is updated in place); ``display``: how messages show values and
+    rates (:class:`stationflow.report.now.Display`); the evidence is in ``unit``."""
     ac = cfg["alerts"]
     down = downward(variable, cfg)
     rate_unit = f"{unit} h-1"
@@ -149,14 +156,18 @@ def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool],
             past = v < crit if down else v > crit
             back = (v > crit + 2 * vse) if down else (v < crit - 2 * vse)
             fire("below_critical", c, bool(past), bool(back),
-                 f"{c}: {'below' if down else 'above'} the critical value",
+                 f"{c}: {display.value(v)} {display.unit}, {'below' if down else 'above'} the critical value "
+                 f"{display.value(crit)} {display.unit}",
                  {**ev, "critical": _fmt(crit)})
         if within is not None and np.isfinite(crit):
             hrs = latest.hours[i]
             soon = bool(np.isfinite(hrs) and 0 < hrs <= within)
-            fire("crossing_within", c, soon, not (np.isfinite(hrs) and hrs <= within),
-                 f"{c}: projected to reach the critical value in {hrs * 60:.0f} min if the present in-situ rate goes on"
-                 if np.isfinite(hrs) else f"{c}: projected to reach the critical value soon",
+            # cleared only once the projection is clearly off (twice as far, or no approach), not on a flicker
+            off = not (np.isfinite(hrs) and hrs <= 2 * within)
+            fire("crossing_within", c, soon, off,
+                 f"{c}: {display.value(v)} {display.unit}, projected to reach {display.value(crit)} {display.unit} in "
+                 f"{hrs * 60:.0f} ± {latest.hours_se[i] * 60:.0f} min if the present in-situ rate "
+                 f"({display.rate(latest.residual[i])} {display.rate_unit}) goes on",
                  {**ev, "critical": _fmt(crit), "minutes": _fmt(hrs * 60), "minutes_se": _fmt(latest.hours_se[i] * 60),
                   "in_situ_rate": _fmt(latest.residual[i]), "in_situ_rate_se": _fmt(latest.residual_se[i]),
                   "advection": _fmt(latest.advection[i]), "rate_unit": rate_unit,
@@ -165,9 +176,14 @@ def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool],
         if rate > 0:
             t = latest.tendency[i]
             fast = np.isfinite(t) and ((t < -rate) if down else (t > rate))
-            fire("advective_rate", c, bool(latest.regime[i] == "advective" and fast), not fast or latest.regime[i] != "advective",
+            # cleared once the change has slowed to half the rate or the air changes in place (not on a
+            # flicker between advective and mixed)
+            slowed = not np.isfinite(t) or ((t > -rate / 2) if down else (t < rate / 2))
+            fire("advective_rate", c, bool(latest.regime[i] == "advective" and fast),
+                 slowed or latest.regime[i] in ("in_situ", "steady"),
                  f"{c}: {'cold air carried in' if down else 'a plume carried in'}, "
-                 f"{'cooling' if down else 'rising'} {abs(t):.2g} {rate_unit}",
+                 f"{'cooling' if down else 'rising'} {display.rate(t)} {display.rate_unit} "
+                 f"(carried in {display.rate(latest.advection[i])})",
                  {**ev, "tendency": _fmt(t), "advection": _fmt(latest.advection[i]), "residual": _fmt(latest.residual[i]),
                   "rate_unit": rate_unit, "regime": latest.regime[i]})
     if ac["silent_after"] and last_seen:
@@ -175,7 +191,9 @@ def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool],
         newest = max(pd.Timestamp(t) for t in last_seen.values())
         for sid, t in sorted(last_seen.items()):
             gap = newest - pd.Timestamp(t)
-            fire("silent_after", sid, gap > limit, gap <= limit, f"station {sid} has sent nothing for {gap}",
+            minutes = gap.total_seconds() / 60.0
+            fire("silent_after", sid, gap > limit, gap <= limit,
+                 f"station {sid} has sent nothing for {minutes:.0f} min",
                  {"last_report": t, "newest_report": newest.strftime("%Y-%m-%dT%H:%M:%SZ"),
                   "silent_minutes": gap.total_seconds() / 60.0}, kind="station")
     return out

@@ -37,8 +37,11 @@ class FollowState:
     time_format: str = ""  # the time layout found in the first lines ("" = none yet)
     pinned: dict | None = None  # settings.Pinned as a dict, once pinned
     final_through: str | None = None  # the newest final analysis time (UTC ISO 8601)
-    chunks: list = field(default_factory=list)  # final rows, in time order: [file, first time, last time]
-    revisions: list = field(default_factory=list)  # files of one-sided estimates as issued
+    first_time: str | None = None  # the first analysis time of the stored final rows (UTC ISO 8601)
+    final_rows: int = 0  # analysis steps stored as final (rows of the "final" columns)
+    final_layout: dict = field(default_factory=dict)  # column -> [dtype, clusters] of the final rows
+    revision_rows: int = 0  # rows of the "revisions" columns (one-sided estimates as issued)
+    revision_layout: dict = field(default_factory=dict)
     obs: str | None = None  # the retained observations
     rejected: str | None = None  # every rejected row so far
     counts: dict = field(default_factory=lambda: {k: 0 for k in COUNTS})
@@ -54,7 +57,7 @@ class FollowState:
 
     def files(self) -> set[str]:
         """The data files this state names."""
-        names = {c[0] for c in self.chunks} | set(self.revisions)
+        names = {f"final.{c}.bin" for c in self.final_layout} | {f"revisions.{c}.bin" for c in self.revision_layout}
         names |= {n for n in (self.obs, self.rejected) if n}
         return names
 
@@ -99,3 +102,50 @@ class Store:
         for p in self.dir.iterdir():
             if p.is_file() and p.name not in keep:
                 p.unlink(missing_ok=True)
+
+
+class Columns:
+    """Rows stored column by column in append-only binary files (``<prefix>.<column>.bin``).
+
+    Appending costs only the new rows, and reading a column is one read.
+    The committed row count lives in the state: bytes beyond it (from a call
+    that never committed) are cut off before the next append, so a kill
+    between an append and the commit loses nothing and doubles nothing.
+    """
+
+    def __init__(self, store: Store, prefix: str, layout: dict) -> None:
+        self.store = store
+        self.prefix = prefix
+        self.layout = layout  # column -> [dtype, width] (width: values per row; 0: one value, read as 1-D)
+
+    def path(self, name: str) -> Path:
+        return self.store.dir / f"{self.prefix}.{name}.bin"
+
+    def names(self) -> set[str]:
+        return {self.path(n).name for n in self.layout}
+
+    def append(self, rows: int, arrays: dict) -> None:
+        """Append ``arrays`` (each (k, width) or (k,)) after the first ``rows`` committed rows."""
+        import numpy as np
+
+        self.store.dir.mkdir(parents=True, exist_ok=True)
+        for name, (dtype, width) in self.layout.items():
+            p = self.path(name)
+            size = rows * max(1, width) * np.dtype(dtype).itemsize
+            with open(p, "ab") as fh:
+                if fh.tell() != size:
+                    fh.truncate(size)
+                    fh.seek(size)
+                fh.write(np.ascontiguousarray(arrays[name], dtype=dtype).tobytes())
+
+    def read(self, rows: int) -> dict:
+        """The first ``rows`` committed rows of every column."""
+        import numpy as np
+
+        out = {}
+        for name, (dtype, width) in self.layout.items():
+            a = np.fromfile(self.path(name), dtype=dtype, count=rows * max(1, width))
+            if a.size != rows * max(1, width):
+                raise ValueError(f"{self.path(name)}: {a.size} values where the state has {rows * max(1, width)}")
+            out[name] = a.reshape(rows, width) if width else a
+        return out

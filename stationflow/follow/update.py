@@ -22,7 +22,7 @@ from ..run.sinks import Partition
 from . import alerts as al
 from .engine import REVISION_COLUMNS, Follow, StepResult, _checked, _iso, _ts
 from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
-from .state import FollowState, Store
+from .state import Columns, FollowState, Store
 
 log = logging.getLogger(__name__)
 
@@ -64,8 +64,11 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     _store_revisions(state, store, block, gen)
     latest = _latest(block, step_cfg, p)
     _update_minimum(state, block)
+    from ..report.now import Display
+
+    display = Display.of(p.variable, block.plan.unit, cfg["observations"]["units"].get(p.variable))
     new_alerts = al.evaluate(latest, state.last_seen, state.firing, step_cfg, variable=p.variable,
-                             unit=block.plan.unit, zone=_zone(cfg))
+                             unit=block.plan.unit, zone=_zone(cfg), display=display)
     state.alerts.extend(new_alerts)
     state.newest = _iso(block.times[-1])
     _save_obs(state, store, _trim(obs, block), gen)
@@ -140,34 +143,52 @@ def _doubts(chk, plan) -> pd.DataFrame:
     return table[keep.to_numpy()].reset_index(drop=True)
 
 
-def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> None:
-    """The rows that became final, once, for good (a new file the state names)."""
+def _final_columns(state: FollowState, store: Store) -> Columns:
+    return Columns(store, "final", state.final_layout)
+
+
+def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> None:  # noqa: ARG001
+    """Append the rows that became final, once, for good (committed with the state)."""
     k = block.n_final
     if k <= 0:
         return
-    name = store.name("final", gen, "npz")
-    np.savez(store.file(name), **{n: v[:k] for n, v in block.terms.items()})
-    state.chunks.append([name, _iso(block.times[0]), _iso(block.times[k - 1])])
+    if not state.final_layout:
+        state.final_layout = {n: [np.asarray(v).dtype.str, int(v.shape[1])] for n, v in block.terms.items()}
+        state.first_time = _iso(block.times[0])
+    _final_columns(state, store).append(state.final_rows, {n: v[:k] for n, v in block.terms.items()})
+    state.final_rows += k
     state.final_through = _iso(block.times[k - 1])
 
 
-def _store_revisions(state: FollowState, store: Store, block: Block, gen: int) -> None:
-    """The one-sided estimates as issued now (the revision history of the newest rows)."""
+#: the revision history's columns: [dtype, 0] (one value per row)
+REVISION_LAYOUT = {"issued": ["<i8", 0], "time": ["<i8", 0], "cluster": ["<i4", 0],
+                   **{c: ["<f8", 0] for c in REVISION_COLUMNS}, "regime": ["|i1", 0]}
+
+
+def _store_revisions(state: FollowState, store: Store, block: Block, gen: int) -> None:  # noqa: ARG001
+    """Append the one-sided estimates as issued now (the revision history of the newest rows)."""
     rows = np.flatnonzero(block.terms["one_sided"][:, 0])
     if rows.size == 0:
         return
     n_c = len(block.clusters)
     t = block.terms
-    table = pd.DataFrame({
-        "issued": np.repeat(block.times[-1], rows.size * n_c),
-        "time": np.repeat(block.times[rows], n_c),
-        "cluster": np.tile(block.clusters["cluster"].astype(str).to_numpy(), rows.size),
-        **{c: t[c][rows].reshape(-1) for c in REVISION_COLUMNS},
-        "regime": np.asarray(REGIMES, object)[t["regime"][rows].reshape(-1)],
-    })
-    name = store.name("revisions", gen, "parquet")
-    table.to_parquet(store.file(name), index=False)
-    state.revisions.append(name)
+    arrays = {"issued": np.repeat(block.times[-1].value, rows.size * n_c),
+              "time": np.repeat(block.times[rows].asi8, n_c),
+              "cluster": np.tile(np.arange(n_c, dtype=np.int32), rows.size),
+              **{c: t[c][rows].reshape(-1) for c in REVISION_COLUMNS},
+              "regime": t["regime"][rows].reshape(-1)}
+    state.revision_layout = REVISION_LAYOUT
+    Columns(store, "revisions", REVISION_LAYOUT).append(state.revision_rows, arrays)
+    state.revision_rows += rows.size * n_c
+
+
+def revisions_table(state: FollowState, store: Store, clusters: pd.DataFrame) -> pd.DataFrame:
+    """The revision history: every one-sided estimate as it was issued."""
+    cols = Columns(store, "revisions", state.revision_layout).read(state.revision_rows)
+    names = clusters["cluster"].astype(str).to_numpy()
+    return pd.DataFrame({"issued": pd.to_datetime(cols["issued"], utc=True), "time": pd.to_datetime(cols["time"], utc=True),
+                         "cluster": names[cols["cluster"]], **{c: cols[c] for c in REVISION_COLUMNS},
+                         "regime": np.asarray(REGIMES, object)[cols["regime"]]})
 
 
 def _zone(cfg):
@@ -237,22 +258,18 @@ def _save_obs(state: FollowState, store: Store, obs: pd.DataFrame, gen: int) -> 
 def _night_layout(state: FollowState, block: Block) -> Layout:
     """The whole night so far: from the first final row (or the first open one) to the newest."""
     plan = block.plan
-    t0 = _ts(state.chunks[0][1]) if state.chunks else block.times[0]
+    t0 = _ts(state.first_time) if state.final_rows else block.times[0]
     times = grid_times(t0, block.times[-1], plan.interval)
     lay = plan.layout
     return Layout(times, lay.clusters, lay.convergence, lay.unit, lay.variable, lay.quantity)
 
 
 def _parts(state: FollowState, store: Store, block: Block):
-    """Every row of the night in time order: the stored final chunks, then this call's open rows."""
-    first = 0
-    for name, _, _ in state.chunks:
-        with np.load(store.file(name)) as z:
-            terms = {k: z[k] for k in z.files}
-        yield Partition(first, terms)
-        first += terms["regime"].shape[0]
+    """Every row of the night in time order: the stored final rows, then this call's open rows."""
+    if state.final_rows:
+        yield Partition(0, _final_columns(state, store).read(state.final_rows))
     k = block.n_final
-    yield Partition(first, {n: v[k:] for n, v in block.terms.items()})
+    yield Partition(state.final_rows, {n: v[k:] for n, v in block.terms.items()})
 
 
 def render(ctx: Follow, state: FollowState, store: Store, block: Block, latest: al.Latest) -> None:
@@ -293,8 +310,8 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
            else pd.DataFrame(columns=["file", "line", "reason"]))
     files.write_rejected(rej, out / "rejected_rows.csv")
     files.write_csv(cluster_table(block.plan.network), out / "clusters.csv", time_columns=())
-    if state.revisions:
-        rev = pd.concat([pd.read_parquet(store.file(n)) for n in state.revisions], ignore_index=True)
+    if state.revision_rows:
+        rev = revisions_table(state, store, layout.clusters)
         from ..report.atomic import write_with
 
         write_with(out / "revisions.parquet", lambda tmp: rev.to_parquet(tmp, index=False))

@@ -103,7 +103,7 @@ def _when(hours: float, hours_se: float, now: pd.Timestamp, zone: str | None) ->
 def _page(title: str, refresh: int, body: list[str]) -> str:
     return ("<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
             f"<meta http-equiv='refresh' content='{int(refresh)}'><title>{_esc(title)}</title>"
-            f"<style>{CSS}.past{{background:#fde2e0}}.soon{{background:#fff1d6}}td{{vertical-align:top}}</style>"
+            f"<style>{CSS}.past{{background:#fde2e0}}.soon{{background:#fff1d6}}td{{vertical-align:top}}.num{{white-space:nowrap}}</style>"
             "</head><body>" + "".join(body) + "</body></html>\n")
 
 
@@ -197,10 +197,10 @@ def _cluster_row(j, clusters, t, latest, state, history, disp: Display, zone, do
     crit = disp.value(latest.critical[j]) if np.isfinite(latest.critical[j]) else "–"
     reg = latest.regime[j]
     return (f"<tr class='{cls}'><td><b>{_esc(name)}</b><br><span class='muted'>{_esc(members)}</span></td>"
-            f"<td>{disp.value(latest.value[j])}{disp.spread(latest.value_se[j])} {disp.unit}</td><td>{low}</td>"
-            f"<td>{disp.rate(latest.tendency[j], t['tendency_se'][-1, j])}</td>"
-            f"<td>{disp.rate(latest.advection[j], t['advection_se'][-1, j])}</td>"
-            f"<td>{disp.rate(latest.residual[j], latest.residual_se[j])}</td>"
+            f"<td class='num'>{disp.value(latest.value[j])}{disp.spread(latest.value_se[j])} {disp.unit}</td><td>{low}</td>"
+            f"<td class='num'>{disp.rate(latest.tendency[j], t['tendency_se'][-1, j])}</td>"
+            f"<td class='num'>{disp.rate(latest.advection[j], t['advection_se'][-1, j])}</td>"
+            f"<td class='num'>{disp.rate(latest.residual[j], latest.residual_se[j])}</td>"
             f"<td class='reg-{_esc(reg)}'>{_esc(reg)}</td><td>{crit}</td>"
             f"<td>{_when(hrs, latest.hours_se[j], latest.time, zone) if np.isfinite(latest.critical[j]) else '–'}</td>"
             f"<td>{spark}</td><td>{_esc(', '.join(doubted))}</td></tr>")
