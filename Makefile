@@ -6,10 +6,11 @@ STAMP_RUN := $(VENV)/.installed-run
 STAMP_TEST := $(VENV)/.installed-test
 OUT ?= demo_output
 
-.PHONY: demo demo-town report-check test fuzz coverage bench sample-data clean help
+.PHONY: demo demo-night demo-town report-check test fuzz coverage bench sample-data clean help
 
 help:
 	@echo "make demo       run the frost-night demo end to end and print where the report is"
+	@echo "make demo-night replay the frost night through the follow mode (budget --follow): now.html and alerts.jsonl"
 	@echo "make demo-town  run the PM2.5 town demo"
 	@echo "make test       run the whole test suite"
 	@echo "make report-check  both demos, then their reports in a headless browser (screenshots) with every figure captioned"
@@ -32,6 +33,9 @@ $(STAMP_TEST): pyproject.toml | $(BIN)/python
 
 demo: $(STAMP_RUN)
 	$(BIN)/stationflow demo --scenario frost --out $(OUT)/frost
+
+demo-night: $(STAMP_RUN)
+	$(BIN)/stationflow demo --scenario frost --night --out $(OUT)/night
 
 demo-town: $(STAMP_RUN)
 	$(BIN)/stationflow demo --scenario town --out $(OUT)/town

@@ -501,11 +501,13 @@ def _budget_summary(run, out: Path, notes: list[str]) -> str:
 def demo(
     out: Annotated[Path, typer.Option("--out", help="Output folder.")] = Path("demo_output"),
     scenario: Annotated[ScenarioName, typer.Option("--scenario", help="frost: a frost night in an invented valley; town: PM2.5 sensors in an invented town.")] = ScenarioName.frost,
+    night: Annotated[bool, typer.Option("--night", help="Replay the scenario through the follow mode (budget --follow) as if a logger were writing it, at full speed: leaves now.html, alerts.jsonl and the budget files.")] = False,
     quiet: QuietOpt = False,
 ) -> None:
     """Run the main job on a bundled scenario (invented place, known truth) and say where the report is.
 
-    Uses sample_data/<scenario>/ when present (as shipped), else generates the scenario.
+    Uses sample_data/<scenario>/ when present (as shipped), else generates the scenario. With --night the
+    scenario is replayed time step by time step through the follow mode instead.
 
     Example:
 
@@ -516,6 +518,9 @@ def demo(
 
     def job(report):
         folder = Path(__file__).resolve().parent.parent / "sample_data" / scenario.value
+        if night:
+            _night_job(folder, scenario.value, out, report, quiet=quiet)
+            return
         with _staged(out) as stage:
             source = folder
             if not (folder / "observations.csv").exists():
@@ -531,6 +536,33 @@ def demo(
             typer.echo(f"\nOpen the report: {(out / 'report.html').resolve()}")
 
     _run(job, quiet=quiet)
+
+
+def _night_job(folder: Path, scenario: str, out: Path, report, *, quiet: bool) -> None:
+    """demo --night: the scenario replayed through the follow mode into ``out`` (a fresh start each time)."""
+    import shutil
+
+    from .scenarios import replay, synthetic
+
+    if (out / ".follow").exists():
+        shutil.rmtree(out / ".follow")
+    (out / "live").mkdir(parents=True, exist_ok=True)
+    if not (folder / "observations.csv").exists():
+        folder = out / "input"
+        make, write = synthetic.SCENARIOS[scenario]
+        write(make(), folder)
+
+    def say(res) -> None:
+        if not quiet and (res.new_alerts or (res.newest is not None and res.newest.minute == 0)):
+            typer.echo(_follow_line(res, _config(folder / "config.toml"), out))
+
+    results = replay.replay(folder, out, progress=report, on_step=say)
+    if not quiet:
+        cpu = sorted(r.cpu_s for r in results)
+        typer.echo(f"replayed {len(results)} follow calls (median {cpu[len(cpu) // 2]:.2f} s of CPU each)")
+        typer.echo(f"alerts: {out / 'alerts.jsonl'}")
+        typer.echo(f"\nOpen the page: {(out / 'now.html').resolve()}")
+        typer.echo(SAFETY)
 
 
 class Terminated(KeyboardInterrupt):

@@ -31,73 +31,23 @@ from __future__ import annotations
 
 import logging
 import time as _time
-from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from .. import qc
 from ..config import Config
 from ..errors import ConfigError, IngestError
-from ..network.grid import grid_times, parse_duration
 from ..read.canonical import IngestResult, canonicalise
 from ..read.observations import read_csv_lines
-from ..run.check import CheckResult
 from . import source as src
-from .settings import Pinned, pin, pinned_config, qc_reach, refuse_unsupported, write_pinned
+from .context import Follow, StepResult, iso_utc, to_time
 from .state import FollowState, Store
+from .update import advance
 
 log = logging.getLogger(__name__)
 
-#: columns of the revision history (the one-sided estimates as they were issued)
-REVISION_COLUMNS = ("tendency", "tendency_se", "advection", "advection_se", "residual", "residual_se")
-
-
-@dataclass
-class Follow:
-    """What stays the same from call to call: the inputs, the configuration and the output folder."""
-
-    obs: Path
-    stations_path: Path
-    cfg: Config
-    out: Path
-    every: float = 60.0
-    stations: pd.DataFrame | None = None
-    _plan_cache: dict = field(default_factory=dict)
-
-    def __post_init__(self) -> None:
-        from ..read.stations import read_stations
-
-        src.check_source(self.obs)
-        refuse_unsupported(self.cfg)
-        if self.stations is None:
-            self.stations = read_stations(self.stations_path, self.cfg)
-
-
-@dataclass
-class StepResult:
-    """What one call did (for the console line and the tests)."""
-
-    new_rows: int
-    newest: pd.Timestamp | None
-    final_through: pd.Timestamp | None
-    new_alerts: list
-    waiting: str = ""
-    latest: pd.DataFrame | None = None  # the newest row of every cluster (after the call)
-    cpu_s: float = 0.0
-
-
 def _empty_obs() -> pd.DataFrame:
     return pd.DataFrame({"station_id": pd.Categorical([]), "time": pd.Series([], dtype="datetime64[ns, UTC]")})
-
-
-def _iso(t: pd.Timestamp | None) -> str | None:
-    return None if t is None else pd.Timestamp(t).tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ")
-
-
-def _ts(s: str | None) -> pd.Timestamp | None:
-    return None if s is None else pd.Timestamp(s)
 
 
 def _read_config(ctx: Follow, state: FollowState) -> Config:
@@ -181,7 +131,7 @@ def _merge(state: FollowState, retained: pd.DataFrame, frames: list, sources: li
                           "earlier row was already in use and is kept"}))
     out = both[~drop]
     n_new = int((~drop[n_old:]).sum())
-    final = _ts(state.final_through)
+    final = to_time(state.final_through)
     if final is not None and n_new:
         late = out["time"].iloc[n_old - int(drop[:n_old].sum()):] <= final
         state.counts["late_after_final"] += int(late.sum())
@@ -191,28 +141,13 @@ def _merge(state: FollowState, retained: pd.DataFrame, frames: list, sources: li
     return out, rejected, n_new
 
 
-def _checked(obs: pd.DataFrame, stations: pd.DataFrame, cfg: Config, units: dict) -> CheckResult:
-    """The QC of the retained rows, as a :class:`~stationflow.run.check.CheckResult` the plan can use."""
-    data = IngestResult(obs, stations.reset_index(drop=True), pd.DataFrame(columns=["file", "line", "reason"]),
-                        {"rows_read": len(obs), "rows_accepted": len(obs), "rows_rejected": 0}, dict(units), [])
-    result = qc.run_qc(obs, data.stations, cfg)
-    empty = pd.DataFrame()
-    return CheckResult(data, result, empty, empty, empty, empty, cfg)
-
-
-def _plan(ctx: Follow, chk: CheckResult, cfg: Config, pinned: Pinned):
-    """The plan of the retained rows with the pinned settings (the model error's network computed once per
-    process: it depends only on the pinned network and noise)."""
-    from ..run.plan import plan_budget
-
-    plan = plan_budget(chk, cfg, network_stations=pinned.network_stations)
-    return plan
-
-
 def follow_step(ctx: Follow, *, progress=lambda _m: None) -> StepResult:
     """One call (see the module docstring)."""
     cpu0 = _time.process_time()
     store = Store(ctx.out)
+    if not ctx.locked:
+        store.lock()
+        ctx.locked = True
     state = store.load()
     store.tidy(state)
     if state.source and state.source != str(ctx.obs):
@@ -231,25 +166,15 @@ def follow_step(ctx: Follow, *, progress=lambda _m: None) -> StepResult:
     if n_new:
         seen = obs.groupby("station_id", observed=True)["time"].max()
         for sid, t in seen.items():
-            state.last_seen[str(sid)] = _iso(t)
+            state.last_seen[str(sid)] = iso_utc(t)
     if rejected:
         old = pd.read_parquet(store.file(state.rejected)) if state.rejected else None
         allrej = pd.concat(([old] if old is not None else []) + rejected, ignore_index=True)
         state.rejected = store.name("rejected", gen, "parquet")
         allrej.astype({"file": str, "reason": str}).to_parquet(store.file(state.rejected), index=False)
-    from .update import advance
-
     result = advance(ctx, state, store, obs, gen, n_new, progress)
     result.cpu_s = _time.process_time() - cpu0
     return result
 
 
 __all__ = ["Follow", "StepResult", "follow_step"]
-
-
-def learn_span(cfg: Config) -> pd.Timedelta:
-    return parse_duration(cfg["follow"]["learn"])
-
-
-def analysis_grid(first: pd.Timestamp, last: pd.Timestamp, interval: pd.Timedelta) -> pd.DatetimeIndex:
-    return grid_times(first, last, interval)

@@ -21,6 +21,8 @@ from ..report.atomic import atomic_write
 
 STATE_DIR = ".follow"
 STATE_FILE = "state.json"
+LOCK_FILE = "lock"
+_HELD: list = []  # the lock files this process holds
 VERSION = 1
 
 COUNTS = ("rows_read", "rows_accepted", "rows_rejected", "duplicates", "conflicts", "late_after_final", "restarts",
@@ -94,14 +96,33 @@ class Store:
         with atomic_write(self.path) as tmp:
             tmp.write_text(json.dumps(asdict(state), indent=1) + "\n", encoding="utf-8")
 
+    def lock(self) -> None:
+        """Hold the folder for this process (released when it exits, however it ends): two runs following
+        into one folder would undo each other's commits."""
+        import fcntl
+
+        self.dir.mkdir(parents=True, exist_ok=True)
+        fh = open(self.dir / LOCK_FILE, "a+")  # noqa: SIM115 - held open for the life of the process
+        try:
+            fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            fh.close()
+            from ..errors import ConfigError
+
+            raise ConfigError(f"{self.dir.parent}: another follow run is using this output folder") from None
+        _HELD.append(fh)
+
     def tidy(self, state: FollowState) -> None:
-        """Remove the files of calls that never committed, and those the state no longer names."""
+        """Remove the files of calls that never committed, those the state no longer names, and the temporary
+        files of outputs a killed call was writing."""
         if not self.dir.exists():
             return
-        keep = state.files() | {STATE_FILE}
+        keep = state.files() | {STATE_FILE, LOCK_FILE}
         for p in self.dir.iterdir():
             if p.is_file() and p.name not in keep:
                 p.unlink(missing_ok=True)
+        for p in self.dir.parent.glob(".*.part"):
+            p.unlink(missing_ok=True)
 
 
 class Columns:

@@ -20,7 +20,7 @@ from ..run.partitions import compute_partition, derive, partition_rows
 from ..run.plan import Layout, plan_budget
 from ..run.sinks import Partition
 from . import alerts as al
-from .engine import REVISION_COLUMNS, Follow, StepResult, _checked, _iso, _ts
+from .context import Follow, StepResult, checked, iso_utc, to_time
 from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
 from .state import Columns, FollowState, Store
 
@@ -44,7 +44,7 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
             _render_waiting(ctx, state, store, waiting)
             return StepResult(n_new, newest, None, [], waiting=waiting)
         progress("learning the settings (pinned for the night: settings.toml)")
-        chk = _checked(obs, ctx.stations, cfg, state.units)
+        chk = checked(obs, ctx.stations, cfg, state.units)
         plan = plan_budget(chk, cfg)
         p = pin(plan, cfg, time_format=state.time_format, units=state.units, newest=newest)
         state.pinned = p.to_json()
@@ -55,7 +55,7 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
         state.generation = gen
         state.rendered = gen
         store.commit(state)  # only the poll count changed
-        return StepResult(0, newest, _ts(state.final_through), [])
+        return StepResult(0, newest, to_time(state.final_through), [])
     p = Pinned.from_json(state.pinned)
     step_cfg = pinned_config(cfg, p, ctx.out, for_steps=True)
     progress("quality control and plane fits of the open rows")
@@ -70,7 +70,7 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     new_alerts = al.evaluate(latest, state.last_seen, state.firing, step_cfg, variable=p.variable,
                              unit=block.plan.unit, zone=_zone(cfg), display=display)
     state.alerts.extend(new_alerts)
-    state.newest = _iso(block.times[-1])
+    state.newest = iso_utc(block.times[-1])
     _save_obs(state, store, _trim(obs, block), gen)
     state.generation = gen
     store.commit(state)  # the commit point: everything above is now the state
@@ -79,7 +79,7 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     state.delivered += al.run_command(cfg["alerts"]["command"], state.alerts[state.delivered:])
     state.rendered = gen
     store.commit(state)
-    return StepResult(n_new, block.times[-1], _ts(state.final_through), new_alerts, latest=_latest_table(latest, block))
+    return StepResult(n_new, block.times[-1], to_time(state.final_through), new_alerts, latest=_latest_table(latest, block))
 
 
 class Block:
@@ -105,11 +105,11 @@ def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, p: Pinned, step
     interval = p.interval_td
     variables = [c for c in obs.columns if c not in ("station_id", "time")]
     reach = qc_reach(step_cfg, variables, interval)
-    chk = _checked(obs, ctx.stations, step_cfg, state.units)
+    chk = checked(obs, ctx.stations, step_cfg, state.units)
     plan = plan_budget(chk, step_cfg, network_stations=p.network_stations)
     times = plan.times
     n = len(times)
-    final = _ts(state.final_through)
+    final = to_time(state.final_through)
     f = 0 if final is None else int(times.searchsorted(final + interval))
     a = max(0, f - plan.halo)
     terms = compute_partition(plan, partition_rows(plan, a, n - 1), a, n - 1)
@@ -154,12 +154,14 @@ def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> No
         return
     if not state.final_layout:
         state.final_layout = {n: [np.asarray(v).dtype.str, int(v.shape[1])] for n, v in block.terms.items()}
-        state.first_time = _iso(block.times[0])
+        state.first_time = iso_utc(block.times[0])
     _final_columns(state, store).append(state.final_rows, {n: v[:k] for n, v in block.terms.items()})
     state.final_rows += k
-    state.final_through = _iso(block.times[k - 1])
+    state.final_through = iso_utc(block.times[k - 1])
 
 
+#: columns of the revision history (the one-sided estimates as they were issued)
+REVISION_COLUMNS = ("tendency", "tendency_se", "advection", "advection_se", "residual", "residual_se")
 #: the revision history's columns: [dtype, 0] (one value per row)
 REVISION_LAYOUT = {"issued": ["<i8", 0], "time": ["<i8", 0], "cluster": ["<i4", 0],
                    **{c: ["<f8", 0] for c in REVISION_COLUMNS}, "regime": ["|i1", 0]}
@@ -233,7 +235,7 @@ def _update_minimum(state: FollowState, block: Block) -> None:
         val = float(v[idx[j], j])
         old = state.minimum.get(c)
         if old is None or val < old[0]:
-            state.minimum[c] = [val, _iso(block.times[idx[j]])]
+            state.minimum[c] = [val, iso_utc(block.times[idx[j]])]
 
 
 def _trim(obs: pd.DataFrame, block: Block) -> pd.DataFrame:
@@ -258,7 +260,7 @@ def _save_obs(state: FollowState, store: Store, obs: pd.DataFrame, gen: int) -> 
 def _night_layout(state: FollowState, block: Block) -> Layout:
     """The whole night so far: from the first final row (or the first open one) to the newest."""
     plan = block.plan
-    t0 = _ts(state.first_time) if state.final_rows else block.times[0]
+    t0 = to_time(state.first_time) if state.final_rows else block.times[0]
     times = grid_times(t0, block.times[-1], plan.interval)
     lay = plan.layout
     return Layout(times, lay.clusters, lay.convergence, lay.unit, lay.variable, lay.quantity)
@@ -333,7 +335,7 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
 def _final_steps(state: FollowState, layout: Layout) -> int:
     if state.final_through is None:
         return 0
-    return int(layout.times.searchsorted(_ts(state.final_through), side="right"))
+    return int(layout.times.searchsorted(to_time(state.final_through), side="right"))
 
 
 def _render_waiting(ctx: Follow, state: FollowState, store: Store, message: str) -> None:
