@@ -22,7 +22,7 @@ from ..report.atomic import atomic_write
 STATE_DIR = ".follow"
 STATE_FILE = "state.json"
 LOCK_FILE = "lock"
-_HELD: list = []  # the lock files this process holds
+_HELD: dict = {}  # the state folders this process holds, with their open lock files
 VERSION = 1
 
 COUNTS = ("rows_read", "rows_accepted", "rows_rejected", "duplicates", "conflicts", "late_after_final", "restarts",
@@ -101,7 +101,11 @@ class Store:
         into one folder would undo each other's commits."""
         import fcntl
 
+        key = str(self.dir.resolve()) if self.dir.exists() else str(self.dir)
+        if key in _HELD:
+            return  # this process holds it already (another call of the same run)
         self.dir.mkdir(parents=True, exist_ok=True)
+        key = str(self.dir.resolve())
         fh = open(self.dir / LOCK_FILE, "a+")  # noqa: SIM115 - held open for the life of the process
         try:
             fcntl.flock(fh.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -110,7 +114,7 @@ class Store:
             from ..errors import ConfigError
 
             raise ConfigError(f"{self.dir.parent}: another follow run is using this output folder") from None
-        _HELD.append(fh)
+        _HELD[key] = fh
 
     def tidy(self, state: FollowState) -> None:
         """Remove the files of calls that never committed, those the state no longer names, and the temporary
