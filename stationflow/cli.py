@@ -443,6 +443,8 @@ def _follow_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, eve
         if not quiet:
             typer.echo(f"stopped; the state is kept in {out} (run the same command again to resume)")
         return
+    finally:
+        ctx.close()
 
 
 def _follow_line(res, cfg, out: Path) -> str:

@@ -153,5 +153,8 @@ def test_alerts_fire_when_a_condition_starts_and_not_again_while_it_holds():
     assert [a["rule"] for a in fired] == ["below_critical"] and fired[0]["evidence"]["critical"] == 273.15
     assert alerts.evaluate(latest(273.2), {}, firing, cfg, **kw) == []  # back within 2 se: still the same event
     assert alerts.evaluate(latest(273.1), {}, firing, cfg, **kw) == []
-    alerts.evaluate(latest(273.5), {}, firing, cfg, **kw)  # clearly back above: cleared
+    alerts.evaluate(latest(273.5), {}, firing, cfg, **kw)  # clearly back above, once: not cleared yet
+    assert alerts.evaluate(latest(273.0), {}, firing, cfg, **kw) == []
+    for _ in range(alerts.CLEAR_CALLS):  # clearly back above for three calls in a row: cleared
+        alerts.evaluate(latest(273.5), {}, firing, cfg, **kw)
     assert len(alerts.evaluate(latest(273.0), {}, firing, cfg, **kw)) == 1

@@ -8,8 +8,10 @@ in the variable's unit or strings with a unit (``"-2.2 degC"``,
 ``"28 degF"``, ``"35 ug m-3"``).
 
 The rules (``[alerts]``), checked on the newest row of every cluster after
-each call; an alert is written when a condition *starts* to hold (it is not
-repeated while it holds, and may fire again once it has cleared):
+each call; an alert is written when a condition *starts* to hold.  It is not
+repeated while it holds, and may fire again only once its clearing condition
+has held for :data:`CLEAR_CALLS` calls in a row (a station's silence clears
+as soon as it reports):
 
 - ``below_critical``: the value is past the critical value (below it for a
   temperature, above for a concentration); it clears once the value is back
@@ -127,7 +129,12 @@ def _fmt(x: float) -> float | None:
     return None if not np.isfinite(x) else float(round(x, 4))
 
 
-def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool], cfg: Config, *, variable: str,
+#: calls in a row a rule's clearing condition must hold before the rule may fire again for the same cluster
+#: (a value hovering at its critical value alerts once, not at every call)
+CLEAR_CALLS = 3
+
+
+def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, int], cfg: Config, *, variable: str,
              unit: str, zone, display) -> list[dict]:
     """The alerts that start now (``firing`` is updated in place); ``display``: how messages show values and
     rates (:class:`stationflow.report.now.Display`); the evidence is in ``unit``."""
@@ -138,15 +145,22 @@ def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool],
     out: list[dict] = []
 
     def fire(rule: str, subject: str, holds: bool, clears: bool, message: str, evidence: dict,
-             kind: str = "cluster") -> None:
+             kind: str = "cluster", calls_to_clear: int = CLEAR_CALLS) -> None:
         key = f"{rule}|{subject}"
-        if holds and not firing.get(key):
-            firing[key] = True
-            out.append({"time": now.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"),
-                        "local_time": now.tz_convert(zone).isoformat(), "rule": rule, kind: subject,
-                        "message": message, "evidence": evidence})
-        elif firing.get(key) and clears:
-            firing[key] = False
+        streak = firing.get(key, -1)  # -1: not firing; else calls in a row its clearing condition held
+        if streak < 0:
+            if holds:
+                firing[key] = 0
+                out.append({"time": now.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"),
+                            "local_time": now.tz_convert(zone).isoformat(), "rule": rule, kind: subject,
+                            "message": message, "evidence": evidence})
+        elif clears:
+            if streak + 1 >= calls_to_clear:
+                del firing[key]
+            else:
+                firing[key] = streak + 1
+        else:
+            firing[key] = 0
 
     within = parse_duration(ac["crossing_within"]).total_seconds() / 3600.0 if ac["crossing_within"] else None
     for i, c in enumerate(latest.clusters):
@@ -195,7 +209,7 @@ def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, bool],
             fire("silent_after", sid, gap > limit, gap <= limit,
                  f"station {sid} has sent nothing for {minutes:.0f} min",
                  {"last_report": t, "newest_report": newest.strftime("%Y-%m-%dT%H:%M:%SZ"),
-                  "silent_minutes": gap.total_seconds() / 60.0}, kind="station")
+                  "silent_minutes": gap.total_seconds() / 60.0}, kind="station", calls_to_clear=1)
     return out
 
 

@@ -27,6 +27,14 @@ class Follow:
     stations: pd.DataFrame | None = None
     locked: bool = False
 
+    def close(self) -> None:
+        """Let the output folder go (the lock taken by the first call)."""
+        from .state import Store
+
+        if self.locked:
+            Store(self.out).unlock()
+            self.locked = False
+
     def __post_init__(self) -> None:
         from ..read.stations import read_stations
 

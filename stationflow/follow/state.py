@@ -14,7 +14,7 @@ temporary name and renamed, so none is ever half-written.
 from __future__ import annotations
 
 import json
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 
 from ..report.atomic import atomic_write
@@ -22,6 +22,8 @@ from ..report.atomic import atomic_write
 STATE_DIR = ".follow"
 STATE_FILE = "state.json"
 LOCK_FILE = "lock"
+ALERT_LOG = "alerts.jsonl"
+FINAL_CSV = "final.csv"
 _HELD: dict = {}  # the state folders this process holds, with their open lock files
 VERSION = 1
 
@@ -47,8 +49,10 @@ class FollowState:
     obs: str | None = None  # the retained observations
     rejected: str | None = None  # every rejected row so far
     counts: dict = field(default_factory=lambda: {k: 0 for k in COUNTS})
-    alerts: list = field(default_factory=list)  # every alert so far
-    firing: dict = field(default_factory=dict)  # "rule|subject" -> True while the condition holds
+    final_csv_bytes: int = 0  # committed length of the final rows' budget.csv text (FINAL_CSV)
+    alert_bytes: int = 0  # committed length of the alert log (ALERT_LOG)
+    alert_count: int = 0  # alerts in it
+    firing: dict = field(default_factory=dict)  # "rule|subject" -> calls in a row its clearing condition held (-1: not firing)
     delivered: int = 0  # alerts handed to alerts.command
     last_seen: dict = field(default_factory=dict)  # station -> its newest report time (UTC ISO 8601)
     minimum: dict = field(default_factory=dict)  # cluster -> [lowest value, its time]
@@ -60,6 +64,10 @@ class FollowState:
     def files(self) -> set[str]:
         """The data files this state names."""
         names = {f"final.{c}.bin" for c in self.final_layout} | {f"revisions.{c}.bin" for c in self.revision_layout}
+        if self.alert_bytes:
+            names.add(ALERT_LOG)
+        if self.final_csv_bytes:
+            names.add(FINAL_CSV)
         names |= {n for n in (self.obs, self.rejected) if n}
         return names
 
@@ -93,8 +101,44 @@ class Store:
     def commit(self, state: FollowState) -> None:
         """Make ``state`` the state (one atomic rename)."""
         self.dir.mkdir(parents=True, exist_ok=True)
+        data = {f.name: getattr(state, f.name) for f in fields(state)}  # no deep copy: written at once
         with atomic_write(self.path) as tmp:
-            tmp.write_text(json.dumps(asdict(state), indent=1) + "\n", encoding="utf-8")
+            tmp.write_text(json.dumps(data, separators=(",", ":")) + "\n", encoding="utf-8")
+
+    def append_bytes(self, name: str, committed: int, data: bytes) -> int:
+        """Append ``data`` to the log ``name`` after its ``committed`` bytes (what a killed call appended
+        after them is cut off first); returns the new length, to be committed with the state."""
+        self.dir.mkdir(parents=True, exist_ok=True)
+        with open(self.dir / name, "ab") as fh:
+            if fh.tell() != committed:
+                fh.truncate(committed)
+                fh.seek(committed)
+            fh.write(data)
+        return committed + len(data)
+
+    def read_bytes(self, name: str, committed: int) -> bytes:
+        """The committed part of the log ``name``."""
+        if not committed:
+            return b""
+        with open(self.dir / name, "rb") as fh:
+            return fh.read(committed)
+
+    def append_alerts(self, state: FollowState, alerts: list[dict]) -> None:
+        """Append ``alerts`` to the alert log (``state`` is updated, to be committed)."""
+        if not alerts:
+            return
+        text = "".join(json.dumps(a) + "\n" for a in alerts).encode("utf-8")
+        state.alert_bytes = self.append_bytes(ALERT_LOG, state.alert_bytes, text)
+        state.alert_count += len(alerts)
+
+    def alert_log(self, state: FollowState) -> bytes:
+        """The committed alert log (JSON lines)."""
+        return self.read_bytes(ALERT_LOG, state.alert_bytes)
+
+    def alerts(self, state: FollowState, first: int = 0) -> list[dict]:
+        """The committed alerts from number ``first`` on."""
+        lines = self.alert_log(state).splitlines()
+        return [json.loads(x) for x in lines[first:]]
 
     def lock(self) -> None:
         """Hold the folder for this process (released when it exits, however it ends): two runs following
@@ -115,6 +159,14 @@ class Store:
 
             raise ConfigError(f"{self.dir.parent}: another follow run is using this output folder") from None
         _HELD[key] = fh
+
+    def unlock(self) -> None:
+        """Let the folder go (another process may follow into it now)."""
+        if not self.dir.exists():
+            return
+        fh = _HELD.pop(str(self.dir.resolve()), None)
+        if fh is not None:
+            fh.close()
 
     def tidy(self, state: FollowState) -> None:
         """Remove the files of calls that never committed, those the state no longer names, and the temporary
@@ -163,14 +215,17 @@ class Columns:
                     fh.seek(size)
                 fh.write(np.ascontiguousarray(arrays[name], dtype=dtype).tobytes())
 
-    def read(self, rows: int) -> dict:
-        """The first ``rows`` committed rows of every column."""
+    def read(self, rows: int, start: int = 0, names: list[str] | None = None) -> dict:
+        """Rows ``start .. rows - 1`` (committed) of every column (or of ``names``)."""
         import numpy as np
 
         out = {}
-        for name, (dtype, width) in self.layout.items():
-            a = np.fromfile(self.path(name), dtype=dtype, count=rows * max(1, width))
-            if a.size != rows * max(1, width):
-                raise ValueError(f"{self.path(name)}: {a.size} values where the state has {rows * max(1, width)}")
-            out[name] = a.reshape(rows, width) if width else a
+        for name in names or list(self.layout):
+            dtype, width = self.layout[name]
+            per_row = max(1, width)
+            count = (rows - start) * per_row
+            a = np.fromfile(self.path(name), dtype=dtype, count=count, offset=start * per_row * np.dtype(dtype).itemsize)
+            if a.size != count:
+                raise ValueError(f"{self.path(name)}: {a.size} values where the state has {count}")
+            out[name] = a.reshape(rows - start, width) if width else a
         return out

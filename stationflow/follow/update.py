@@ -22,7 +22,7 @@ from ..run.sinks import Partition
 from . import alerts as al
 from .context import Follow, StepResult, checked, iso_utc, to_time
 from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
-from .state import Columns, FollowState, Store
+from .state import FINAL_CSV, Columns, FollowState, Store
 
 log = logging.getLogger(__name__)
 
@@ -69,14 +69,15 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     display = Display.of(p.variable, block.plan.unit, cfg["observations"]["units"].get(p.variable))
     new_alerts = al.evaluate(latest, state.last_seen, state.firing, step_cfg, variable=p.variable,
                              unit=block.plan.unit, zone=_zone(cfg), display=display)
-    state.alerts.extend(new_alerts)
+    store.append_alerts(state, new_alerts)
     state.newest = iso_utc(block.times[-1])
     _save_obs(state, store, _trim(obs, block), gen)
     state.generation = gen
     store.commit(state)  # the commit point: everything above is now the state
     progress("writing the outputs")
     render(ctx, state, store, block, latest)
-    state.delivered += al.run_command(cfg["alerts"]["command"], state.alerts[state.delivered:])
+    if state.delivered < state.alert_count:
+        state.delivered += al.run_command(cfg["alerts"]["command"], store.alerts(state, state.delivered))
     state.rendered = gen
     store.commit(state)
     return StepResult(n_new, block.times[-1], to_time(state.final_through), new_alerts, latest=_latest_table(latest, block))
@@ -148,14 +149,20 @@ def _final_columns(state: FollowState, store: Store) -> Columns:
 
 
 def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> None:  # noqa: ARG001
-    """Append the rows that became final, once, for good (committed with the state)."""
+    """Append the rows that became final, once, for good (committed with the state): their columns, and
+    their budget.csv lines."""
+    from ..report.tables import csv_rows
+
     k = block.n_final
     if k <= 0:
         return
     if not state.final_layout:
         state.final_layout = {n: [np.asarray(v).dtype.str, int(v.shape[1])] for n, v in block.terms.items()}
         state.first_time = iso_utc(block.times[0])
-    _final_columns(state, store).append(state.final_rows, {n: v[:k] for n, v in block.terms.items()})
+    rows = {n: v[:k] for n, v in block.terms.items()}
+    text = csv_rows(_night_layout(state, block), state.final_rows, rows, header=state.final_rows == 0)
+    state.final_csv_bytes = store.append_bytes(FINAL_CSV, state.final_csv_bytes, text)
+    _final_columns(state, store).append(state.final_rows, rows)
     state.final_rows += k
     state.final_through = iso_utc(block.times[k - 1])
 
@@ -184,13 +191,19 @@ def _store_revisions(state: FollowState, store: Store, block: Block, gen: int) -
     state.revision_rows += rows.size * n_c
 
 
-def revisions_table(state: FollowState, store: Store, clusters: pd.DataFrame) -> pd.DataFrame:
-    """The revision history: every one-sided estimate as it was issued."""
-    cols = Columns(store, "revisions", state.revision_layout).read(state.revision_rows)
+def revisions_table(state: FollowState, store: Store, clusters: pd.DataFrame, since: pd.Timestamp | None = None
+                    ) -> pd.DataFrame:
+    """The revision history: the one-sided estimates as they were issued (those issued from ``since`` on)."""
+    cols = Columns(store, "revisions", state.revision_layout)
+    start = 0
+    if since is not None:
+        issued = cols.read(state.revision_rows, names=["issued"])["issued"]
+        start = int(np.searchsorted(issued, since.value))  # issued in order
+    got = cols.read(state.revision_rows, start=start)
     names = clusters["cluster"].astype(str).to_numpy()
-    return pd.DataFrame({"issued": pd.to_datetime(cols["issued"], utc=True), "time": pd.to_datetime(cols["time"], utc=True),
-                         "cluster": names[cols["cluster"]], **{c: cols[c] for c in REVISION_COLUMNS},
-                         "regime": np.asarray(REGIMES, object)[cols["regime"]]})
+    return pd.DataFrame({"issued": pd.to_datetime(got["issued"], utc=True), "time": pd.to_datetime(got["time"], utc=True),
+                         "cluster": names[got["cluster"]], **{c: got[c] for c in REVISION_COLUMNS},
+                         "regime": np.asarray(REGIMES, object)[got["regime"]]})
 
 
 def _zone(cfg):
@@ -276,30 +289,71 @@ def _parts(state: FollowState, store: Store, block: Block):
 
 def render(ctx: Follow, state: FollowState, store: Store, block: Block, latest: al.Latest) -> None:
     """Every output from the committed state and this call's open rows (each file written atomically)."""
-    from ..report.now import write_page
+    from ..report.now import RECENT_ALERTS, write_page
     from ..report.tables import budget_files
     from .history import History
 
     out = ctx.out
     layout = _night_layout(state, block)
     history = History(layout.times, float(ctx.cfg["follow"]["page_hours"]))
-    with budget_files(out, layout) as sinks:
+    with budget_files(out, layout, with_csv=False) as sinks:
         for part in _parts(state, store, block):
             for s in sinks:
                 s.write(part)
             history.write(part)
+    _write_csv(out, state, store, block, layout)
     _write_records(ctx, state, store, block, layout)
-    write_page(out / "now.html", ctx=ctx, state=state, block=block, latest=latest, history=history)
-    _write_alerts(out, state)
+    recent = store.alerts(state, max(0, state.alert_count - RECENT_ALERTS))
+    write_page(out / "now.html", ctx=ctx, state=state, block=block, latest=latest, history=history, recent=recent)
+    _write_alerts(out, state, store)
 
 
-def _write_alerts(out: Path, state: FollowState) -> None:
-    import json
+def _write_csv(out: Path, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
+    """budget.csv: the final rows' stored lines, then this call's open rows (as a batch run writes it, and
+    not above the same row limit)."""
+    from ..report.atomic import atomic_write
+    from ..report.tables import CSV_ROW_LIMIT, csv_rows
 
+    if len(layout.times) * len(layout.clusters) > CSV_ROW_LIMIT:
+        (out / "budget.csv").unlink(missing_ok=True)
+        return
+    k = block.n_final
+    open_rows = {n: v[k:] for n, v in block.terms.items()}
+    tail = csv_rows(layout, state.final_rows, open_rows, header=state.final_rows == 0)
+    with atomic_write(out / "budget.csv") as tmp:
+        with open(tmp, "wb", buffering=0) as fh:
+            if state.final_csv_bytes:
+                with open(store.file(FINAL_CSV), "rb", buffering=0) as src:
+                    _copy(src, fh, state.final_csv_bytes)
+            fh.write(tail)
+
+
+def _copy(src, dst, n: int) -> None:
+    """The first ``n`` bytes of ``src`` to ``dst`` (unbuffered files; in the kernel where it can)."""
+    import os
+
+    left = n
+    try:
+        while left > 0:
+            done = os.copy_file_range(src.fileno(), dst.fileno(), left)
+            if done == 0:
+                break
+            left -= done
+    except (AttributeError, OSError):  # not Linux, or a file system without it
+        pass
+    while left > 0:
+        chunk = src.read(min(left, 1 << 20))
+        if not chunk:
+            break
+        dst.write(chunk)
+        left -= len(chunk)
+
+
+def _write_alerts(out: Path, state: FollowState, store: Store) -> None:
     from ..report.atomic import atomic_write
 
     with atomic_write(out / "alerts.jsonl") as tmp:
-        tmp.write_text("".join(json.dumps(a) + "\n" for a in state.alerts), encoding="utf-8")
+        tmp.write_bytes(store.alert_log(state))
 
 
 def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
@@ -313,7 +367,8 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
     files.write_rejected(rej, out / "rejected_rows.csv")
     files.write_csv(cluster_table(block.plan.network), out / "clusters.csv", time_columns=())
     if state.revision_rows:
-        rev = revisions_table(state, store, layout.clusters)
+        hours = float(ctx.cfg["follow"]["page_hours"])
+        rev = revisions_table(state, store, layout.clusters, since=layout.times[-1] - pd.Timedelta(hours=hours))
         from ..report.atomic import write_with
 
         write_with(out / "revisions.parquet", lambda tmp: rev.to_parquet(tmp, index=False))
@@ -327,7 +382,7 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
         "rows": {"final_steps": int(sum(1 for _ in layout.times[:_final_steps(state, layout)])),
                  "steps": int(len(layout.times)), "clusters": int(len(layout.clusters))},
         "final_lag_steps": int(block.plan.halo + block.reach),
-        "alerts": len(state.alerts),
+        "alerts": state.alert_count,
     })
     files.write_json(rec, out / "run.json")
 

@@ -22,7 +22,7 @@ from .atomic import atomic_write
 from .html import CSS, cautions
 from .text import display_zone, show_time
 
-#: how long before now the page stops calling an alert recent
+#: the alerts the page lists (the newest first; all are in alerts.jsonl)
 RECENT_ALERTS = 12
 
 
@@ -69,19 +69,20 @@ def _sparkline(values: np.ndarray, critical: float, disp: Display, width: int = 
     if ok.sum() < 2:
         return ""
     crit = critical * disp.scale + disp.offset if np.isfinite(critical) else np.nan
-    lo, hi = np.nanmin(v), np.nanmax(v)
+    lo0, hi0 = float(np.min(values[ok])), float(np.max(values[ok]))
+    lo, hi = lo0 * disp.scale + disp.offset, hi0 * disp.scale + disp.offset
     if np.isfinite(crit) and crit >= lo - 0.5 * (hi - lo + 1):
         lo, hi = min(lo, crit), max(hi, crit)
     span = hi - lo if hi > lo else 1.0
-    xs = np.linspace(2, width - 2, v.size)
-    ys = height - 3 - (v - lo) / span * (height - 6)
-    pts = " ".join(f"{x:.1f},{y:.1f}" for x, y, o in zip(xs, ys, ok) if o)
+    xs = np.linspace(2, width - 2, v.size)[ok]
+    ys = (height - 3 - (v[ok] - lo) / span * (height - 6))
+    pts = " ".join(f"{x:.1f},{y:.1f}" for x, y in zip(xs.tolist(), ys.tolist()))
     line = ""
     if np.isfinite(crit):
         yc = height - 3 - (crit - lo) / span * (height - 6)
         line = f'<line x1="0" x2="{width}" y1="{yc:.1f}" y2="{yc:.1f}" stroke="#c0392b" stroke-dasharray="3,2"/>'
-    return (f'<svg width="{width}" height="{height}" role="img" aria-label="last hours, {disp.value(np.nanmin(values))}'
-            f' to {disp.value(np.nanmax(values))} {disp.unit}">{line}'
+    return (f'<svg width="{width}" height="{height}" role="img" aria-label="last hours, {disp.value(lo0)}'
+            f' to {disp.value(hi0)} {disp.unit}">{line}'
             f'<polyline fill="none" stroke="#2f6db5" stroke-width="1.5" points="{pts}"/></svg>')
 
 
@@ -124,7 +125,7 @@ def write_waiting(path, *, ctx, state, message: str) -> None:
         tmp.write_text(_page("stationflow: now", max(30, int(ctx.every)), body), encoding="utf-8")
 
 
-def write_page(path, *, ctx, state, block, latest, history) -> None:
+def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) -> None:
     """now.html after a call (see the module docstring)."""
     from ..follow.alerts import downward
     from ..variables import kind_of
@@ -145,7 +146,7 @@ def write_page(path, *, ctx, state, block, latest, history) -> None:
             f"{_esc(show_time(state.final_through, zone) if state.final_through else 'none yet')}; newer rows are "
             "provisional and the newest are one-sided (the last complete window, with its drift in the errors).</p>"]
     body += _cautions(kind)
-    body += _alerts_section(state, zone, disp)
+    body += _alerts_section(recent, state.alert_count, zone)
     body.append("<h2>Clusters</h2>")
     critical_note = ("Critical value: follow.critical. <b>Reaches it</b>: if the present in-situ rate goes on "
                      "(the assumption: advection is shown beside it and left out, since it stops or starts with the "
@@ -155,8 +156,18 @@ def write_page(path, *, ctx, state, block, latest, history) -> None:
     order = _order(latest, n_local, down)
     rows = ["<tr><th>cluster</th><th>now</th><th>lowest so far</th><th>change</th><th>carried in</th><th>in situ</th>"
             "<th>regime</th><th>critical</th><th>reaches it</th><th>last hours</th><th>QC doubts</th></tr>"]
+    names = clusters["cluster"].astype(str).tolist()
+    members = clusters["stations"].astype(str).tolist()
+    doubted = set(doubts["station_id"].astype(str)) if len(doubts) else set()
+    shown: dict = {}
+
+    def when_shown(t) -> str:  # many clusters share the time of their minimum
+        if t not in shown:
+            shown[t] = show_time(t, zone, date=False)
+        return shown[t]
+
     for j in order:
-        rows.append(_cluster_row(j, clusters, t, latest, state, history, disp, zone, doubts))
+        rows.append(_cluster_row(j, names, members, t, latest, state, history, disp, zone, doubted, when_shown))
     body.append("<table>" + "".join(rows) + "</table>")
     if len(clusters) > n_local:
         j = n_local
@@ -183,20 +194,19 @@ def _order(latest, n_local: int, down: bool) -> list[int]:
     return list(np.lexsort((val, hrs)))
 
 
-def _cluster_row(j, clusters, t, latest, state, history, disp: Display, zone, doubts) -> str:
-    name = str(clusters["cluster"].iloc[j])
-    members = str(clusters["stations"].iloc[j])
+def _cluster_row(j, names, members, t, latest, state, history, disp: Display, zone, doubted_by_station, when_shown
+                 ) -> str:
+    name = names[j]
     minimum = state.minimum.get(name)
-    low = (f"{disp.value(minimum[0])} <span class='muted'>{_esc(show_time(minimum[1], zone, date=False))}</span>"
+    low = (f"{disp.value(minimum[0])} <span class='muted'>{_esc(when_shown(minimum[1]))}</span>"
            if minimum else "–")
     hrs = latest.hours[j]
     cls = "past" if np.isfinite(hrs) and hrs <= 0 else ("soon" if np.isfinite(hrs) and hrs < 1.0 else "")
     spark = _sparkline(history.columns["value"][:, j], latest.critical[j], disp) if "value" in history.columns else ""
-    who = set(members.split("+"))
-    doubted = sorted({str(s) for s in doubts["station_id"].astype(str) if s in who}) if len(doubts) else []
+    doubted = sorted({s for s in members[j].split("+") if s in doubted_by_station})
     crit = disp.value(latest.critical[j]) if np.isfinite(latest.critical[j]) else "–"
     reg = latest.regime[j]
-    return (f"<tr class='{cls}'><td><b>{_esc(name)}</b><br><span class='muted'>{_esc(members)}</span></td>"
+    return (f"<tr class='{cls}'><td><b>{_esc(name)}</b><br><span class='muted'>{_esc(members[j])}</span></td>"
             f"<td class='num'>{disp.value(latest.value[j])}{disp.spread(latest.value_se[j])} {disp.unit}</td><td>{low}</td>"
             f"<td class='num'>{disp.rate(latest.tendency[j], t['tendency_se'][-1, j])}</td>"
             f"<td class='num'>{disp.rate(latest.advection[j], t['advection_se'][-1, j])}</td>"
@@ -206,14 +216,14 @@ def _cluster_row(j, clusters, t, latest, state, history, disp: Display, zone, do
             f"<td>{spark}</td><td>{_esc(', '.join(doubted))}</td></tr>")
 
 
-def _alerts_section(state, zone, disp) -> list[str]:
-    if not state.alerts:
+def _alerts_section(recent: list[dict], total: int, zone) -> list[str]:
+    if not recent:
         return ["<h2>Alerts</h2><p>None so far (alerts.jsonl).</p>"]
     items = []
-    for a in reversed(state.alerts[-RECENT_ALERTS:]):
+    for a in reversed(recent):
         items.append(f"<li><b>{_esc(show_time(a['time'], zone, date=False))}</b> {_esc(a['rule'])}: "
                      f"{_esc(a['message'])}</li>")
-    more = len(state.alerts) - RECENT_ALERTS
+    more = total - len(recent)
     tail = f"<p class='muted'>{more} earlier alerts in alerts.jsonl.</p>" if more > 0 else ""
     return [f"<h2>Alerts</h2><ul>{''.join(items)}</ul>{tail}"]
 

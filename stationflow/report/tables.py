@@ -103,17 +103,19 @@ class FileSink:
 class TableFiles(FileSink):
     """budget.parquet, and budget.csv when ``csv`` or the table has at most :data:`CSV_ROW_LIMIT` rows."""
 
-    def __init__(self, out: str | Path, layout, *, csv: bool = False, background: bool = True) -> None:
+    def __init__(self, out: str | Path, layout, *, csv: bool = False, background: bool = True,
+                 with_csv: bool | None = None) -> None:
         self.rows = len(layout.times) * len(layout.clusters)
-        self.write_csv = csv_wanted(self.rows, csv)
-        self.notes: list[str] = [] if self.write_csv else [csv_skipped(self.rows)]
+        self.write_csv = csv_wanted(self.rows, csv) if with_csv is None else with_csv
+        self.notes: list[str] = [] if self.write_csv or with_csv is not None else [csv_skipped(self.rows)]
         self.paths = [Path(out) / "budget.parquet"] + ([Path(out) / "budget.csv"] if self.write_csv else [])
+        self._remove_stale = with_csv is None  # with_csv=False: the caller writes budget.csv itself
         super().__init__(out, layout, background=background, name="table-writer")
 
     def close(self) -> None:
         super().close()
         stale = self.out / "budget.csv"
-        if not self.write_csv and stale.exists():
+        if not self.write_csv and self._remove_stale and stale.exists():
             stale.unlink()  # from an earlier run of a smaller table: it would not match these files
 
     def _write(self, first: int, block: dict[str, np.ndarray]) -> None:
@@ -122,16 +124,40 @@ class TableFiles(FileSink):
         n_c = len(self.layout.clusters)
         step = max(1, ROWS_PER_GROUP // max(1, n_c))
         for a in range(0, k, step):
-            table = self._arrow(first, {n: v[a:a + step] for n, v in block.items()})
+            table = self._rows.arrow(first, {n: v[a:a + step] for n, v in block.items()})
             self._parquet.write_table(table, row_group_size=ROWS_PER_GROUP)
             if self.write_csv:
-                self._csv.write_table(self._csv_table(table))
+                self._csv.write_table(Rows.csv_table(table))
 
     def _open(self, block: dict[str, np.ndarray]) -> None:
-        import pyarrow as pa
         import pyarrow.csv as pacsv
         import pyarrow.parquet as pq
 
+        self._rows = Rows(self.layout, block)
+        self.schema = self._rows.schema
+        labels = self._rows.labels
+        # dictionary encoding only for the label columns, and min/max statistics only for the columns one
+        # filters on (time range, cluster): for the float columns both cost time and gain nothing
+        self._parquet = self._stack.enter_context(
+            pq.ParquetWriter(self._tmp["budget.parquet"], self.schema,
+                             compression={c: "none" if c in UNCOMPRESSED else "snappy" for c in self.schema.names},
+                             use_dictionary=["cluster", "stations", "regime", *labels],
+                             write_statistics=["time", "cluster"]))
+        if self.write_csv:
+            sample = self._rows.arrow(0, {n: v[:0] for n, v in block.items()})
+            self._csv = self._stack.enter_context(
+                pacsv.CSVWriter(self._tmp["budget.csv"], Rows.csv_table(sample).schema,
+                                write_options=pacsv.WriteOptions(quoting_style="needed")))
+
+class Rows:
+    """How partitions become rows of the budget table: Arrow tables with the labels, codes and schema of
+    ``layout`` (taken from the first partition's columns ``block``)."""
+
+    def __init__(self, layout, block: dict[str, np.ndarray]) -> None:
+        import pyarrow as pa
+
+        self.layout = layout
+        self._time_ns = layout.times.tz_convert("UTC").tz_localize(None).as_unit("ns").asi8
         clusters = self.layout.clusters
         n_c = len(clusters)
         self._index_type = pa.int16() if n_c < 2 ** 15 else pa.int32()
@@ -141,29 +167,19 @@ class TableFiles(FileSink):
         self._lon = clusters["longitude"].to_numpy(float)
         self._regimes = pa.array(list(REGIMES), pa.string())
         self._names = list(block)
-        self._labels = [c for c in CLUSTER_LABELS if c in clusters]  # per-cluster labels (scale)
-        self._label_values = {c: pa.array(sorted(set(clusters[c].astype(str))), pa.string()) for c in self._labels}
+        self.labels = [c for c in CLUSTER_LABELS if c in clusters]  # per-cluster labels (scale)
+        self._label_values = {c: pa.array(sorted(set(clusters[c].astype(str))), pa.string()) for c in self.labels}
         self._label_codes = {c: pd.Index(self._label_values[c].to_pylist()).get_indexer(clusters[c].astype(str))
-                             for c in self._labels}
-        self._columns = table_columns(self._labels + self._names)
+                             for c in self.labels}
+        self._columns = table_columns(self.labels + self._names)
         self._schema = None
-        sample = self._arrow(0, {n: v[:0] for n, v in block.items()})
+        sample = self.arrow(0, {n: v[:0] for n, v in block.items()})
         # every column is REQUIRED (no nulls: a missing number is NaN): the Parquet writer then writes
         # no definition levels (measured: 0.3 s less writer time on the 300-station benchmark)
         self.schema = self._schema = pa.schema([f.with_nullable(False) for f in sample.schema])
-        self._parquet = self._stack.enter_context(
-            # dictionary encoding only for the label columns, and min/max statistics only for the columns one
-            # filters on (time range, cluster): for the float columns both cost time and gain nothing
-            pq.ParquetWriter(self._tmp["budget.parquet"], self.schema,
-                             compression={c: "none" if c in UNCOMPRESSED else "snappy" for c in self.schema.names},
-                             use_dictionary=["cluster", "stations", "regime", *self._labels],
-                             write_statistics=["time", "cluster"]))
-        if self.write_csv:
-            self._csv = self._stack.enter_context(
-                pacsv.CSVWriter(self._tmp["budget.csv"], self._csv_table(sample).schema,
-                                write_options=pacsv.WriteOptions(quoting_style="needed")))
 
-    def _arrow(self, first: int, block: dict[str, np.ndarray]):
+    def arrow(self, first: int, block: dict[str, np.ndarray]):
+        """The Arrow table of the analysis steps ``first ..`` of ``block``."""
         import pyarrow as pa
 
         k = block["regime"].shape[0]
@@ -176,7 +192,7 @@ class TableFiles(FileSink):
             "latitude": pa.array(np.tile(self._lat, k)),
             "longitude": pa.array(np.tile(self._lon, k)),
         }
-        for name in self._labels:
+        for name in self.labels:
             cols[name] = pa.DictionaryArray.from_arrays(pa.array(np.tile(self._label_codes[name], k), pa.int8()),
                                                         self._label_values[name])
         for name in self._names:
@@ -189,7 +205,7 @@ class TableFiles(FileSink):
             if self._schema is not None else pa.table({c: cols[c] for c in self._columns})
 
     @staticmethod
-    def _csv_table(table):
+    def csv_table(table):
         """The CSV form: ISO 8601 UTC times with Z, labels as plain strings."""
         import pyarrow as pa
         import pyarrow.compute as pc
@@ -205,13 +221,27 @@ class TableFiles(FileSink):
         return pa.table(cols, names=names)
 
 
+def csv_rows(layout, first: int, block: dict[str, np.ndarray], *, header: bool) -> bytes:
+    """The budget.csv text of the analysis steps ``first ..`` of ``block`` (with the header line when
+    ``header``), exactly as :class:`TableFiles` writes them: a table can be written in pieces."""
+    import pyarrow as pa
+    import pyarrow.csv as pacsv
+
+    table = Rows.csv_table(Rows(layout, block).arrow(first, block))
+    sink = pa.BufferOutputStream()
+    pacsv.write_csv(table, sink, write_options=pacsv.WriteOptions(quoting_style="needed", include_header=header))
+    return sink.getvalue().to_pybytes()
+
+
 @contextlib.contextmanager
-def budget_files(out: str | Path, layout, *, csv: bool = False, background: bool = True) -> Iterator[list]:
+def budget_files(out: str | Path, layout, *, csv: bool = False, background: bool = True,
+                 with_csv: bool | None = None) -> Iterator[list]:
     """The budget file sinks (budget.parquet [+ budget.csv], budget.nc), opened together; on leaving the
-    block they are closed (renamed into place) on success, removed on an error."""
+    block they are closed (renamed into place) on success, removed on an error.  ``with_csv``: write
+    budget.csv (True) or leave it to the caller (False) instead of the automatic choice."""
     from .netcdf import NetCDFFile
 
     with contextlib.ExitStack() as stack:
         sinks = [stack.enter_context(NetCDFFile(out, layout, background=background)),
-                 stack.enter_context(TableFiles(out, layout, csv=csv, background=background))]
+                 stack.enter_context(TableFiles(out, layout, csv=csv, background=background, with_csv=with_csv))]
         yield sinks

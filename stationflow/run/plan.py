@@ -365,8 +365,31 @@ def _settings(config: Config, var: str, vertical: str, noise: np.ndarray, st: _S
         vertical_regression=(vertical == "regression"),
     )
     if st.members and settings.model_error:  # once per run: every time partition uses the same
-        settings.model_network = model_network(st.x, st.y, st.members, noise, settings)
+        settings.model_network = _model_network(st.x, st.y, st.members, noise, settings)
     return settings, window, window_source
+
+
+#: model-error networks of the last plans (a follow run plans every few minutes with the same network)
+_MODEL_NETWORKS: dict = {}
+
+
+def _model_network(x: np.ndarray, y: np.ndarray, members: list[np.ndarray], noise: np.ndarray,
+                   settings: BudgetSettings) -> tuple:
+    """:func:`stationflow.estimate.budget.model_network`, remembered for the same network, noise and steps (a pure
+    function of them)."""
+    import hashlib
+
+    h = hashlib.sha256()
+    for a in (x, y, np.asarray(noise, float), *members):
+        h.update(np.ascontiguousarray(a).tobytes())
+        h.update(b"|")
+    h.update(repr((settings.offset, settings.model_steps, len(members))).encode())
+    key = h.hexdigest()
+    if key not in _MODEL_NETWORKS:
+        if len(_MODEL_NETWORKS) >= 4:
+            _MODEL_NETWORKS.pop(next(iter(_MODEL_NETWORKS)))
+        _MODEL_NETWORKS[key] = model_network(x, y, members, noise, settings)
+    return _MODEL_NETWORKS[key]
 
 
 def _add_wind(frame: pd.DataFrame, inputs: "_Inputs", settings: BudgetSettings, choices: dict) -> None:

@@ -59,13 +59,16 @@ def replay(folder: Path, out: Path, *, steps: int = 1, progress: Callable | None
     live.write_bytes(head)
     ctx = Follow(live, folder / "stations.csv", cfg, out, every=60.0)
     results = []
-    for i in range(0, len(groups), steps):
-        with open(live, "ab") as fh:
-            fh.write(b"".join(groups[i:i + steps]))
-        res = follow_step(ctx)
-        results.append(res)
-        if on_step is not None:
-            on_step(res)
-        if progress is not None:
-            progress(f"replaying the night: {min(i + steps, len(groups))} of {len(groups)} times")
+    try:
+        for i in range(0, len(groups), steps):
+            with open(live, "ab") as fh:
+                fh.write(b"".join(groups[i:i + steps]))
+            res = follow_step(ctx)
+            results.append(res)
+            if on_step is not None:
+                on_step(res)
+            if progress is not None:
+                progress(f"replaying the night: {min(i + steps, len(groups))} of {len(groups)} times")
+    finally:
+        ctx.close()
     return results
