@@ -349,3 +349,39 @@ def test_follow_refuses_what_it_cannot_follow_with_one_line(tmp_path, runner):
     res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
                               "--config", str(bad), "--out", str(tmp_path / "o3"), "--once"])
     assert res.exit_code == 2 and "sensors.apply" in res.stderr
+
+
+def _one_day_export(tmp_path: Path) -> tuple[Path, Path]:
+    """The frost night's first 3 h moved to 10 April and written month first (04/10/2026 17:00): every time of
+    one evening reads as 10 April or as 4 October."""
+    cfg = load(FROST / "config.toml")
+    head, groups = split_export(FROST / "observations.csv", cfg)
+    body = b"".join(groups[:37]).replace(b"2026-04-14 ", b"04/10/2026 ")
+    live = tmp_path / "live.csv"
+    live.write_bytes(head + body)
+    conf = tmp_path / "config.toml"
+    conf.write_text((FROST / "config.toml").read_text(), encoding="utf-8")
+    return live, conf
+
+
+def test_times_one_evening_cannot_settle_are_read_by_the_computers_clock(tmp_path, monkeypatch):
+    from stationflow.follow import engine
+
+    live, conf = _one_day_export(tmp_path)
+    monkeypatch.setattr(engine, "clock", lambda: pd.Timestamp("2026-04-11T04:00Z"))  # 21:00 local that evening
+    ctx = Follow(live, FROST / "stations.csv", load(conf), tmp_path / "out", every=60.0)
+    res = follow_step(ctx)
+    ctx.close()
+    assert res.newest is not None and res.newest.month == 4 and res.newest.day == 11  # 20:00 PDT = 03:00 UTC
+    state = json.loads((tmp_path / "out" / ".follow" / "state.json").read_text())
+    assert state["time_format"] == "%m/%d/%Y %H:%M"
+    assert "%m/%d/%Y %H:%M" in (tmp_path / "out" / "settings.toml").read_text()
+
+
+def test_times_no_clock_can_settle_stop_with_the_key_that_settles_them(tmp_path, runner):
+    from stationflow.cli import app
+
+    live, conf = _one_day_export(tmp_path)  # replayed months later: neither reading is near the clock
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(live), "--config",
+                              str(conf), "--out", str(tmp_path / "out"), "--once"])
+    assert res.exit_code == 2 and "observations.time_format" in res.stderr

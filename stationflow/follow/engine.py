@@ -36,8 +36,9 @@ import numpy as np
 import pandas as pd
 
 from ..config import Config
-from ..errors import ConfigError, IngestError
+from ..errors import ConfigError
 from ..read.canonical import IngestResult, canonicalise
+from ..read.layouts import AmbiguousTimes
 from ..read.observations import read_csv_lines
 from . import source as src
 from .context import Follow, StepResult, iso_utc, to_time
@@ -71,8 +72,12 @@ def _ingest(ctx: Follow, state: FollowState, chunks: list, store: Store) -> tupl
             continue
         try:
             res: IngestResult = canonicalise(raw, cfg, ctx.stations, keep_lines=True)
-        except IngestError:
-            raise
+        except AmbiguousTimes as exc:
+            # a live export's first lines may all fall on one day, which cannot tell 04/10 from 10/04 until
+            # midnight: the reading that puts them near this computer's clock is taken (else the error stands)
+            state.time_format = _by_the_clock(raw, cfg, exc)
+            cfg = _read_config(ctx, state)
+            res = canonicalise(raw, cfg, ctx.stations, keep_lines=True)
         acc = res.accounting
         state.counts["rows_read"] += acc["rows_read"]
         state.counts["rows_accepted"] += acc["rows_accepted"]
@@ -90,6 +95,35 @@ def _ingest(ctx: Follow, state: FollowState, chunks: list, store: Store) -> tupl
             frames.append(res.observations)
             sources.append(res.row_sources)
     return frames, sources, rejected
+
+
+def clock() -> pd.Timestamp:
+    """This computer's time (UTC)."""
+    return pd.Timestamp.now(tz="UTC")
+
+
+def _by_the_clock(raw, cfg: Config, exc: AmbiguousTimes) -> str:
+    """Of the two readings of ambiguous times, the one whose newest time lies within two days of now (and the
+    other's not); else ``exc`` is raised."""
+    from ..read.stations import rename_columns
+    from ..read.times import tzinfo_for
+
+    frame = raw.frame.rename(columns=rename_columns(list(raw.frame.columns), cfg["observations"]["columns"]))
+    if "time" not in frame:
+        raise exc
+    now = clock()
+    near = []
+    for layout in exc.layouts:
+        t = pd.to_datetime(frame["time"].astype(str), format=layout, errors="coerce").dropna()
+        if t.empty:
+            continue
+        newest = t.max().tz_localize(tzinfo_for(cfg["observations"]["timezone"]), ambiguous="NaT",
+                                     nonexistent="NaT")
+        if pd.notna(newest) and abs(newest - now) <= pd.Timedelta("2D"):
+            near.append(layout)
+    if len(near) != 1:
+        raise exc
+    return near[0]
 
 
 def _merge(state: FollowState, retained: pd.DataFrame, frames: list, sources: list

@@ -31,6 +31,14 @@ _CLOCKS = ("%H:%M", "%H:%M:%S", "%I:%M %p", "%I:%M:%S %p", "%I:%M%p", "%H%M", ""
 SAMPLE = 2000
 
 
+class AmbiguousTimes(ConfigError):
+    """Times that read both month-first and day-first equally well; ``layouts`` holds the two."""
+
+    def __init__(self, message: str, layouts: tuple[str, str]) -> None:
+        super().__init__(message)
+        self.layouts = layouts
+
+
 def candidate_layouts() -> list[tuple[str, str]]:
     """Every (family, layout) tried, in order of preference within a family."""
     out = []
@@ -98,8 +106,8 @@ def detect_layout(text: pd.Series, station: pd.Series) -> str:
         idd = _irregularity(_parses(text[keep], d), station[keep])
         if im != idd:
             return m if im < idd else d
-        raise ConfigError(
+        raise AmbiguousTimes(
             f"the times (such as {vals.iloc[0]!r}) read both as {m!r} (month first) and as {d!r} (day first) and the "
-            f"data do not tell which; set observations.time_format = \"{m}\" or \"{d}\""
+            f"data do not tell which; set observations.time_format = \"{m}\" or \"{d}\"", (m, d)
         )
     return next(iter(fitting.values()))
