@@ -385,3 +385,32 @@ def test_times_no_clock_can_settle_stop_with_the_key_that_settles_them(tmp_path,
     res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(live), "--config",
                               str(conf), "--out", str(tmp_path / "out"), "--once"])
     assert res.exit_code == 2 and "observations.time_format" in res.stderr
+
+
+def test_a_real_export_followed_minute_by_minute(tmp_path, arm_dir, arm_config):
+    """The ARM SGP front (real, 13 stations, 6 minutes; ../shared/data, skipped when absent) appended a few
+    minutes at a time: the newest rows are answered at once, and the network's gradient points from the cold
+    north-west to the warm south-east as in the batch run (tests/test_real_front.py)."""
+    from stationflow import read
+    from stationflow.config import from_dict
+
+    data = read.read(arm_dir / "sgp_met_1min_long.csv", None, load(arm_config))
+    stations = tmp_path / "stations.csv"
+    data.stations.to_csv(stations, index=False)
+    lines = (arm_dir / "sgp_met_1min_long.csv").read_bytes().splitlines(keepends=True)
+    head, body = lines[0], sorted(lines[1:], key=lambda b: b.split(b",")[0])  # the export is by station: by time
+    live = tmp_path / "live.csv"
+    live.write_bytes(head + b"".join(body[:3 * 13]))
+    raw = load(arm_config).to_dict()
+    raw["follow"]["learn"] = "2min"  # six minutes of data: learn from the first three
+    ctx = Follow(live, stations, from_dict(raw), tmp_path / "out", every=60.0)
+    first = follow_step(ctx)
+    _append(live, b"".join(body[3 * 13:]))
+    last = follow_step(ctx)
+    ctx.close()
+    assert first.newest is not None and last.newest == pd.Timestamp("2019-05-08T04:05:00Z")
+    table = pd.read_parquet(tmp_path / "out" / "budget.parquet")
+    regional = table[(table["cluster"] == "network") & (table["time"] == last.newest)]
+    assert len(regional) == 1 and 90 <= float(regional["gradient_bearing"].iloc[0]) <= 180
+    assert table["provisional"].all()  # six minutes: nothing can be final yet
+    assert (tmp_path / "out" / "now.html").read_text().count("<tr") > 5

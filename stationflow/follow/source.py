@@ -68,7 +68,7 @@ def check_source(source: Path) -> None:
     if not source.exists():
         raise IngestError(f"{source}: file not found; check the path")
     if source.is_dir():
-        if any(source.glob("*.parquet")) or any(source.glob("*.nc")):
+        if any(q.suffix.lower() in (".parquet", ".pq", ".nc", ".cdf", ".nc4", ".netcdf") for q in source.iterdir()):
             raise IngestError(f"{source}: --follow reads CSV exports (a file, or a folder of .csv files); "
                               "this folder holds Parquet or netCDF files")
         return

@@ -35,7 +35,8 @@ def _detect_format(path: Path, configured: str) -> str:
     if path.is_dir():
         if any(path.glob("*.parquet")) or any(path.glob("**/*.parquet")):
             return "parquet"
-        if any(path.glob("*.csv")) and not any(path.glob("*.nc")):
+        netcdf = any(q.suffix.lower() in (".nc", ".cdf", ".nc4", ".netcdf") for q in path.iterdir())
+        if not netcdf and any(path.glob("*.csv")):
             return "csv"
         return "netcdf"
     suffix = path.suffix.lower()
