@@ -6,7 +6,7 @@ STAMP_RUN := $(VENV)/.installed-run
 STAMP_TEST := $(VENV)/.installed-test
 OUT ?= demo_output
 
-.PHONY: demo demo-night demo-town report-check test fuzz coverage bench sample-data clean help
+.PHONY: demo demo-night demo-town report-check test fuzz coverage bench bench-follow sample-data clean help
 
 help:
 	@echo "make demo       run the frost-night demo end to end and print where the report is"
@@ -17,6 +17,7 @@ help:
 	@echo "make fuzz       the whole-pipeline property test with many examples (not part of make test)"
 	@echo "make coverage   the coverage suite at full size: do stated errors cover the truth? (not part of make test)"
 	@echo "make bench      run the benchmarks (not part of make test)"
+	@echo "make bench-follow  the follow mode's CPU per new 5-minute step on 300 stations"
 	@echo "make sample-data regenerate sample_data/ from stationflow.scenarios.synthetic"
 
 $(BIN)/python:
@@ -56,6 +57,10 @@ coverage: $(STAMP_TEST)
 
 bench: $(STAMP_TEST)
 	$(BIN)/python benchmarks/run.py
+	$(BIN)/python benchmarks/follow.py
+
+bench-follow: $(STAMP_TEST)
+	$(BIN)/python benchmarks/follow.py
 
 sample-data: $(STAMP_RUN)
 	$(BIN)/python -m stationflow.scenarios.synthetic sample_data

@@ -24,3 +24,13 @@ def test_benchmark_harness_names_an_unknown_size(capsys):
     assert "unknown benchmark size '3000'" in capsys.readouterr().err
     assert bench.main(["--help"]) == 0
     assert "300x30d" in capsys.readouterr().out
+
+
+def test_follow_benchmark_harness_runs_a_tiny_night(tmp_path):
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("bench_follow", ROOT / "benchmarks" / "follow.py")
+    bench = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(bench)
+    r = bench.run(12, 2.0, tmp_path, once=False)
+    assert r["steps"] == 25 and r["calls_timed"] > 0 and r["cpu_median_s"] > 0 and r["budget_rows"] > 0
