@@ -414,3 +414,41 @@ def test_a_real_export_followed_minute_by_minute(tmp_path, arm_dir, arm_config):
     assert len(regional) == 1 and 90 <= float(regional["gradient_bearing"].iloc[0]) <= 180
     assert table["provisional"].all()  # six minutes: nothing can be final yet
     assert (tmp_path / "out" / "now.html").read_text().count("<tr") > 5
+
+
+def test_each_alert_reaches_the_users_command_on_its_standard_input(tmp_path):
+    cfg_path = tmp_path / "config.toml"
+    received = tmp_path / "received.jsonl"
+    hook = tmp_path / "hook.py"
+    hook.write_text(f"import sys\nopen({str(received)!r}, 'a').write(sys.stdin.read())\n", encoding="utf-8")
+    cfg_path.write_text((FROST / "config.toml").read_text() + f"\n[alerts]\ncommand = {json.dumps(f'{sys.executable} {hook}')}\n",
+                        encoding="utf-8")
+    cfg = load(cfg_path)
+    head, groups = split_export(FROST / "observations.csv", cfg)
+    live, out = tmp_path / "live.csv", tmp_path / "out"
+    live.write_bytes(head)
+    ctx = Follow(live, FROST / "stations.csv", cfg, out, every=60.0)
+    for i in range(0, 80, 4):  # the evening: the front's advective cooling alerts
+        _append(live, b"".join(groups[i:i + 4]))
+        follow_step(ctx)
+    ctx.close()
+    sent = (out / "alerts.jsonl").read_text().splitlines()
+    assert sent and received.read_text().splitlines() == sent
+
+
+def test_ctrl_c_ends_a_follow_run_cleanly(tmp_path):
+    cfg = load(FROST / "config.toml")
+    head, groups = split_export(FROST / "observations.csv", cfg)
+    live, out = tmp_path / "live.csv", tmp_path / "out"
+    live.write_bytes(head + b"".join(groups[:20]))
+    cmd = [sys.executable, "-m", "stationflow", "budget", "--stations", str(FROST / "stations.csv"), "--obs", str(live),
+           "--config", str(FROST / "config.toml"), "--out", str(out), "--follow", "--every", "1"]
+    proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    deadline = time.monotonic() + 60
+    while not (out / "now.html").exists() and time.monotonic() < deadline:
+        time.sleep(0.2)
+    time.sleep(0.5)
+    proc.send_signal(signal.SIGINT)
+    stdout, stderr = proc.communicate(timeout=60)
+    assert proc.returncode == 0, stderr
+    assert "stopped; the state is kept" in stdout and "error" not in stderr
