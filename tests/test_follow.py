@@ -322,7 +322,10 @@ def test_once_waits_for_enough_data_then_writes_every_output(tmp_path, runner):
             str(FROST / "config.toml"), "--out", str(out), "--once"]
     res = runner.invoke(app, args)
     assert res.exit_code == 0, res.output
-    assert "learning" in res.output and (out / "now.html").exists() and not (out / "budget.parquet").exists()
+    # half an hour of data: answered already, with settings learned so far; nothing final, nothing pinned
+    assert "learning" in res.output and "Settings not pinned yet" in (out / "now.html").read_text()
+    assert pd.read_parquet(out / "budget.parquet")["provisional"].all() and not (out / "settings.toml").exists()
+    assert json.loads((out / "run.json").read_text())["status"] == "learning"
     _append(live, b"".join(groups[6:40]))
     res = runner.invoke(app, args)
     assert res.exit_code == 0, res.output

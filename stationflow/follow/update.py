@@ -32,55 +32,101 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     """Bring the budget up to date with ``obs`` (the retained rows, new ones merged) and commit."""
     cfg = ctx.cfg
     newest = pd.Timestamp(obs["time"].max()) if len(obs) else None
-    if state.pinned is None:
-        need = parse_duration(cfg["follow"]["learn"])
-        span = (newest - pd.Timestamp(obs["time"].min())) if newest is not None else pd.Timedelta(0)
-        if newest is None or span < need:
-            _save_obs(state, store, obs, gen)
-            state.generation = gen
-            store.commit(state)
-            waiting = (f"learning the network's settings: {span} of the {need} of data needed so far"
-                       if newest is not None else "waiting for the first observations")
-            _render_waiting(ctx, state, store, waiting)
-            return StepResult(n_new, newest, None, [], waiting=waiting)
-        progress("learning the settings (pinned for the night: settings.toml)")
-        chk = checked(obs, ctx.stations, cfg, state.units)
-        plan = plan_budget(chk, cfg)
-        p = pin(plan, cfg, time_format=state.time_format, units=state.units, newest=newest)
-        state.pinned = p.to_json()
-        write_pinned(cfg, p, ctx.out)
-        if plan.sensors is not None:
-            files.write_csv(plan.sensors, ctx.out / "sensor_offsets.csv", time_columns=())
-    elif n_new == 0 and state.rendered == state.generation and (ctx.out / "now.html").exists():
+    learning = ""
+    if newest is not None and n_new == 0 and state.rendered == state.generation and (ctx.out / "now.html").exists():
         state.generation = gen
         state.rendered = gen
         store.commit(state)  # only the poll count changed
         return StepResult(0, newest, to_time(state.final_through), [])
+    if state.pinned is None:
+        need = parse_duration(cfg["follow"]["learn"])
+        span = (newest - pd.Timestamp(obs["time"].min())) if newest is not None else pd.Timedelta(0)
+        if newest is None or span < need:
+            learning = (f"learning the network's settings: {_minutes(span)} of the {_minutes(need)} of data needed "
+                        "so far" if newest is not None else "waiting for the first observations")
+        else:
+            progress("learning the settings (pinned for the night: settings.toml)")
+            chk = checked(obs, ctx.stations, cfg, state.units)
+            plan = plan_budget(chk, cfg)
+            p = pin(plan, cfg, time_format=state.time_format, units=state.units, newest=newest)
+            state.pinned = p.to_json()
+            state.minimum = {}  # the clusters of the learning hour may differ from the pinned network's
+            write_pinned(cfg, p, ctx.out)
+            if plan.sensors is not None:
+                files.write_csv(plan.sensors, ctx.out / "sensor_offsets.csv", time_columns=())
+    if learning:
+        return _early(ctx, state, store, obs, gen, n_new, learning, progress)
     p = Pinned.from_json(state.pinned)
     step_cfg = pinned_config(cfg, p, ctx.out, for_steps=True)
     progress("quality control and plane fits of the open rows")
-    block = _compute(ctx, state, obs, p, step_cfg)
+    block = _compute(ctx, state, obs, step_cfg, p.network_stations)
     _store_final(state, store, block, gen)
     _store_revisions(state, store, block, gen)
-    latest = _latest(block, step_cfg, p)
     _update_minimum(state, block)
+    latest, new_alerts = _judge(ctx, state, store, block, step_cfg)
+    _save_obs(state, store, _trim(obs, block), gen)
+    return _finish(ctx, state, store, block, latest, new_alerts, gen, n_new, progress)
+
+
+def _minutes(td: pd.Timedelta) -> str:
+    return f"{td.total_seconds() / 60:.0f} min"
+
+
+def _early(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, gen: int, n_new: int, learning: str,
+           progress) -> StepResult:
+    """Before the settings are pinned: the rows answered with settings learned from the data so far (nothing
+    becomes final or is stored), or the waiting page when there is too little to fit yet."""
+    from ..config import from_dict
+    from ..errors import StationflowError
+
+    _save_obs(state, store, obs, gen)
+    block = None
+    if len(obs):
+        data = ctx.cfg.to_dict()
+        data["sensors"]["estimate"] = False
+        early_cfg = from_dict(data, source=ctx.cfg.source)
+        try:
+            progress("quality control and plane fits (settings not pinned yet)")
+            block = _compute(ctx, state, obs, early_cfg, None, final=False)
+        except StationflowError as exc:  # too few stations or times to fit yet: say so and wait
+            learning = f"{learning}; no budget yet ({exc})"
+    if block is None or len(block.times) == 0:
+        state.generation = gen
+        store.commit(state)
+        _render_waiting(ctx, state, store, learning)
+        return StepResult(n_new, pd.Timestamp(obs["time"].max()) if len(obs) else None, None, [], waiting=learning)
+    block.learning = learning
+    latest, new_alerts = _judge(ctx, state, store, block, early_cfg)
+    return _finish(ctx, state, store, block, latest, new_alerts, gen, n_new, progress)
+
+
+def _judge(ctx: Follow, state: FollowState, store: Store, block: "Block", cfg) -> tuple:
+    """The newest rows with their projections, and the alerts that start now (appended to the log)."""
     from ..report.now import Display
 
-    display = Display.of(p.variable, block.plan.unit, cfg["observations"]["units"].get(p.variable))
-    new_alerts = al.evaluate(latest, state.last_seen, state.firing, step_cfg, variable=p.variable,
-                             unit=block.plan.unit, zone=_zone(cfg), display=display)
+    var = block.plan.variable
+    latest = _latest(block, cfg, var)
+    display = Display.of(var, block.plan.unit, ctx.cfg["observations"]["units"].get(var))
+    new_alerts = al.evaluate(latest, state.last_seen, state.firing, cfg, variable=var,
+                             unit=block.plan.unit, zone=_zone(ctx.cfg), display=display)
     store.append_alerts(state, new_alerts)
+    return latest, new_alerts
+
+
+def _finish(ctx: Follow, state: FollowState, store: Store, block: "Block", latest, new_alerts: list, gen: int,
+            n_new: int, progress) -> StepResult:
+    """Commit, render every output from the committed state, hand the new alerts to alerts.command."""
     state.newest = iso_utc(block.times[-1])
-    _save_obs(state, store, _trim(obs, block), gen)
     state.generation = gen
     store.commit(state)  # the commit point: everything above is now the state
     progress("writing the outputs")
     render(ctx, state, store, block, latest)
     if state.delivered < state.alert_count:
-        state.delivered += al.run_command(cfg["alerts"]["command"], store.alerts(state, state.delivered))
+        state.delivered += al.run_command(ctx.cfg["alerts"]["command"], store.alerts(state, state.delivered))
     state.rendered = gen
     store.commit(state)
-    return StepResult(n_new, block.times[-1], to_time(state.final_through), new_alerts, latest=_latest_table(latest, block))
+    return StepResult(n_new, block.times[-1], to_time(state.final_through), new_alerts,
+                      waiting=getattr(block, "learning", ""), latest=_latest_table(latest, block))
 
 
 class Block:
@@ -95,23 +141,26 @@ class Block:
         self.reach = reach
         self.qc_doubts = qc_doubts
         self.drift = drift
+        self.learning = ""  # before the settings are pinned: what is being learned
 
     @property
     def clusters(self) -> pd.DataFrame:
         return self.plan.layout.clusters
 
 
-def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, p: Pinned, step_cfg) -> Block:
-    """QC, fits and budget of the retained rows; the rows from the first open time on, the one-sided newest."""
-    interval = p.interval_td
+def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, step_cfg, network_stations: list[str] | None, *,
+             final: bool = True) -> Block:
+    """QC, fits and budget of the retained rows; the rows from the first open time on, the one-sided newest
+    (``final=False``: none becomes final, before the settings are pinned)."""
+    chk = checked(obs, ctx.stations, step_cfg, state.units)
+    plan = plan_budget(chk, step_cfg, network_stations=network_stations)
+    interval = plan.interval
     variables = [c for c in obs.columns if c not in ("station_id", "time")]
     reach = qc_reach(step_cfg, variables, interval)
-    chk = checked(obs, ctx.stations, step_cfg, state.units)
-    plan = plan_budget(chk, step_cfg, network_stations=p.network_stations)
     times = plan.times
     n = len(times)
-    final = to_time(state.final_through)
-    f = 0 if final is None else int(times.searchsorted(final + interval))
+    last_final = to_time(state.final_through)
+    f = 0 if last_final is None else int(times.searchsorted(last_final + interval))
     a = max(0, f - plan.halo)
     terms = compute_partition(plan, partition_rows(plan, a, n - 1), a, n - 1)
     terms = derive(terms, plan.layout.convergence)
@@ -121,7 +170,7 @@ def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, p: Pinned, step
     core = slice(f - a, None)
     terms = {k: np.ascontiguousarray(v[core]) for k, v in terms.items()}
     lag = plan.halo + reach  # steps after which nothing that can still arrive changes a row
-    n_final = max(0, (n - 1 - lag) - f + 1)
+    n_final = max(0, (n - 1 - lag) - f + 1) if final else 0
     k, n_c = terms["regime"].shape
     provisional = np.ones((k, n_c), bool)
     provisional[:n_final] = False
@@ -213,14 +262,14 @@ def _zone(cfg):
     return tzinfo_for(display_zone(cfg) or "UTC")
 
 
-def _latest(block: Block, cfg, p: Pinned) -> al.Latest:
+def _latest(block: Block, cfg, variable: str) -> al.Latest:
     """The newest row of every cluster with its projection to the critical value."""
     t = block.terms
     clusters = block.clusters
-    critical = al.critical_values(cfg, p.variable, clusters)
+    critical = al.critical_values(cfg, variable, clusters)
     i = -1
     cross = crossing(t["value"][i], t["value_se"][i], t["residual"][i], t["residual_se"][i], critical,
-                     downward=al.downward(p.variable, cfg), drift=block.drift)
+                     downward=al.downward(variable, cfg), drift=block.drift)
     return al.Latest(block.times[-1], clusters["cluster"].astype(str).tolist(), t["value"][i], t["value_se"][i],
                      t["tendency"][i], t["advection"][i], t["residual"][i], t["residual_se"][i],
                      [REGIMES[c] for c in t["regime"][i]], critical, cross.hours, cross.hours_se)
@@ -374,10 +423,10 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
         write_with(out / "revisions.parquet", lambda tmp: rev.to_parquet(tmp, index=False))
     accounting = {k: v for k, v in state.counts.items()}
     rec = run_record("budget --follow", {"observations": ctx.obs, "stations": ctx.stations_path}, ctx.cfg, accounting, {
-        "status": "following",
+        "status": "following" if state.pinned else "learning",
         "variable": block.plan.variable, "quantity": block.plan.quantity, "unit": block.plan.unit,
-        "pinned": {k: v for k, v in state.pinned.items() if k != "noise"},
-        "settings_file": "settings.toml",
+        "pinned": {k: v for k, v in state.pinned.items() if k != "noise"} if state.pinned else None,
+        "settings_file": "settings.toml" if state.pinned else None,
         "newest_time": state.newest, "final_through": state.final_through,
         "rows": {"final_steps": int(sum(1 for _ in layout.times[:_final_steps(state, layout)])),
                  "steps": int(len(layout.times)), "clusters": int(len(layout.clusters))},

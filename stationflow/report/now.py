@@ -141,10 +141,13 @@ def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) 
     clusters = block.clusters
     n_local = plan.n_local
     doubts = block.qc_doubts
-    body = [f"<h1>stationflow: now, {_esc(plan.variable)}</h1>",
+    body = [f"<h1>stationflow: now, {_esc(plan.variable)}</h1>", *_staleness(now, zone),
             f"<p><b>{_esc(show_time(now, zone))}</b> is the newest analysis time. Final rows up to "
             f"{_esc(show_time(state.final_through, zone) if state.final_through else 'none yet')}; newer rows are "
             "provisional and the newest are one-sided (the last complete window, with its drift in the errors).</p>"]
+    if block.learning:
+        body.append(f"<div class='caution'><b>Settings not pinned yet</b> ({_esc(block.learning)}): every row is "
+                    "provisional, with the reading noise, window and network learned from the data so far.</div>")
     body += _cautions(kind)
     body += _alerts_section(recent, state.alert_count, zone)
     body.append("<h2>Clusters</h2>")
@@ -184,6 +187,22 @@ def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) 
                 "Settings pinned for the night in settings.toml. This page reloads itself.</p>")
     with atomic_write(path) as tmp:
         tmp.write_text(_page(f"now: {plan.variable}", max(30, int(ctx.every)), body), encoding="utf-8")
+
+
+#: data older than this, against the computer's clock, are called stale on the page (when they look live)
+STALE = pd.Timedelta("15min")
+
+
+def _staleness(newest: pd.Timestamp, zone) -> list[str]:
+    """When the page was written (the computer's clock) and, for live data, a warning when they stopped coming."""
+    written = pd.Timestamp.now(tz="UTC")
+    lines = [f"<p class='muted'>Page written {_esc(show_time(written, zone))} by the computer's clock; if that is "
+             "long ago, the follow run has stopped.</p>"]
+    behind = written - newest
+    if STALE < behind < pd.Timedelta("2D"):  # live data that stopped (a replay of old data is days behind)
+        lines.append(f"<div class='caution'><b>No new data for {behind.total_seconds() / 60:.0f} minutes.</b> Check "
+                     "the loggers and the export before relying on this page.</div>")
+    return lines
 
 
 def _order(latest, n_local: int, down: bool) -> list[int]:
