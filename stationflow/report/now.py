@@ -96,9 +96,16 @@ def _when(hours: float, hours_se: float, now: pd.Timestamp, zone: str | None) ->
     hi = hours + 2 * hours_se if np.isfinite(hours_se) else np.nan
     rng = ""
     if np.isfinite(lo) and np.isfinite(hi):
-        rng = (f"<br><span class='muted'>between {show_time(now + pd.Timedelta(hours=lo), zone, date=False)} and "
-               f"{show_time(now + pd.Timedelta(hours=hi), zone, date=False)}</span>")
+        rng = (f"<br><span class='muted'>between {_clock(now + pd.Timedelta(hours=lo), zone)} and "
+               f"{_clock(now + pd.Timedelta(hours=hi), zone)}</span>")
     return f"{show_time(at, zone, date=False)} (in {hours * 60:.0f} ± {hours_se * 60:.0f} min){rng}"
+
+
+def _clock(t: pd.Timestamp, zone: str | None) -> str:
+    """A time of day in the data's zone, short (the page says the zone once per time in full)."""
+    from ..read.times import tzinfo_for
+
+    return f"{pd.Timestamp(t).tz_convert(tzinfo_for(zone) if zone else 'UTC'):%H:%M}"
 
 
 def _page(title: str, refresh: int, body: list[str]) -> str:
@@ -166,7 +173,7 @@ def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) 
 
     def when_shown(t) -> str:  # many clusters share the time of their minimum
         if t not in shown:
-            shown[t] = show_time(t, zone, date=False)
+            shown[t] = f"at {_clock(pd.Timestamp(t), zone)}"
         return shown[t]
 
     for j in order:
