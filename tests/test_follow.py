@@ -84,7 +84,7 @@ def night(tmp_path_factory):
         results.append(follow_step(ctx))
         call += 1
     batch = api.run_budget(FROST / "observations.csv", FROST / "stations.csv", load(out / "settings.toml"))
-    return SimpleNamespace(out=out, results=results, batch=batch.table, events=events, cfg=cfg,
+    return SimpleNamespace(out=out, results=results, batch=batch.table, batch_flags=batch.check.flags, events=events, cfg=cfg,
                            n_lines=sum(g.count(b"\n") for g in groups), scenario=synthetic.frost_valley())
 
 
@@ -121,6 +121,18 @@ def test_final_rows_equal_the_batch_run_with_the_pinned_settings(night):
     n_clusters = night.batch["cluster"].nunique()
     assert n >= 100 * n_clusters  # most of the 15 h night is final (the last 4 h wait for the QC windows)
     assert night.events.get("mid_line")
+
+
+def test_final_qc_flags_equal_the_batch_flags(night):
+    state = json.loads((night.out / ".follow" / "state.json").read_text())
+    through = pd.Timestamp(state["qc_through"])
+    follow = pd.read_csv(night.out / "qc_flags.csv", dtype=str)
+    follow = follow[pd.to_datetime(follow["time"]) <= through]
+    batch = night.batch_flags[night.batch_flags["time"] <= through]
+    key = lambda t: sorted(zip(t["station_id"].astype(str), pd.to_datetime(t["time"], utc=True), t["variable"],  # noqa: E731
+                               t["flag"], t["tests"]))
+    assert len(follow) > 50  # HV11 stuck and HV04 warm through the night
+    assert key(follow) == key(batch)
 
 
 def test_every_line_counted_once_repeats_dropped_and_the_rotation_seen(night):

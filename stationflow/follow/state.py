@@ -24,6 +24,7 @@ STATE_FILE = "state.json"
 LOCK_FILE = "lock"
 ALERT_LOG = "alerts.jsonl"
 FINAL_CSV = "final.csv"
+QC_LOG = "qc_flags.csv"
 _HELD: dict = {}  # the state folders this process holds, with their open lock files
 VERSION = 1
 
@@ -50,6 +51,8 @@ class FollowState:
     rejected: str | None = None  # every rejected row so far
     counts: dict = field(default_factory=lambda: {k: 0 for k in COUNTS})
     final_csv_bytes: int = 0  # committed length of the final rows' budget.csv text (FINAL_CSV)
+    qc_through: str | None = None  # QC flags up to this time are final and logged (QC_LOG)
+    qc_bytes: int = 0  # committed length of the QC flag log
     alert_bytes: int = 0  # committed length of the alert log (ALERT_LOG)
     alert_count: int = 0  # alerts in it
     firing: dict = field(default_factory=dict)  # "rule|subject" -> calls in a row its clearing condition held (-1: not firing)
@@ -68,6 +71,8 @@ class FollowState:
             names.add(ALERT_LOG)
         if self.final_csv_bytes:
             names.add(FINAL_CSV)
+        if self.qc_bytes:
+            names.add(QC_LOG)
         names |= {n for n in (self.obs, self.rejected) if n}
         return names
 

@@ -22,7 +22,7 @@ from ..run.sinks import Partition
 from . import alerts as al
 from .context import Follow, StepResult, checked, iso_utc, to_time
 from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
-from .state import FINAL_CSV, Columns, FollowState, Store
+from .state import FINAL_CSV, QC_LOG, Columns, FollowState, Store
 
 log = logging.getLogger(__name__)
 
@@ -116,6 +116,7 @@ def _judge(ctx: Follow, state: FollowState, store: Store, block: "Block", cfg) -
 def _finish(ctx: Follow, state: FollowState, store: Store, block: "Block", latest, new_alerts: list, gen: int,
             n_new: int, progress) -> StepResult:
     """Commit, render every output from the committed state, hand the new alerts to alerts.command."""
+    _store_qc(state, store, block)
     state.newest = iso_utc(block.times[-1])
     state.generation = gen
     store.commit(state)  # the commit point: everything above is now the state
@@ -142,6 +143,8 @@ class Block:
         self.qc_doubts = qc_doubts
         self.drift = drift
         self.learning = ""  # before the settings are pinned: what is being learned
+        self.flags = pd.DataFrame()  # the QC flags of the retained rows (qc_flags.csv's columns)
+        self.newest_report = times[-1] if len(times) else None
 
     @property
     def clusters(self) -> pd.DataFrame:
@@ -176,15 +179,34 @@ def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, step_cfg, netwo
     provisional[:n_final] = False
     terms["provisional"] = provisional
     terms["one_sided"] = np.broadcast_to(one[core][:, None], (k, n_c)).copy()
-    return Block(plan, times[f:], terms, n_final, reach, _doubts(chk, plan), drift)
-
-
-def _doubts(chk, plan) -> pd.DataFrame:
-    """The stations whose newest value of the variable or the wind QC doubts: station, variable, flag, tests."""
     from ..qc import flag_table
 
+    flags = flag_table(chk.data.observations, chk.qc)
+    block = Block(plan, times[f:], terms, n_final, reach, _doubts(chk, plan, flags), drift)
+    block.flags = flags
+    block.newest_report = pd.Timestamp(obs["time"].max())
+    return block
+
+
+def _store_qc(state: FollowState, store: Store, block: Block) -> None:
+    """Append the QC flags that became final (their values' QC windows are complete) to the flag log."""
+    from ..report.files import QC_FLAG_COLUMNS, csv_bytes
+
+    cut = block.newest_report - block.reach * block.plan.interval
+    done = to_time(state.qc_through)
+    if done is not None and cut <= done:
+        return
+    flags = block.flags
+    sel = (flags["time"] <= cut) & ((flags["time"] > done) if done is not None else True)
+    text = csv_bytes(flags.loc[sel, QC_FLAG_COLUMNS], header=state.qc_bytes == 0)
+    state.qc_bytes = store.append_bytes(QC_LOG, state.qc_bytes, text)
+    state.qc_through = iso_utc(cut)
+
+
+def _doubts(chk, plan, table: pd.DataFrame) -> pd.DataFrame:
+    """The stations whose newest value of the variable or the wind QC doubts: station, variable, flag, tests
+    (``table``: the flags of the retained rows)."""
     obs = chk.data.observations
-    table = flag_table(obs, chk.qc)
     if table.empty:
         return table
     last = obs.groupby("station_id", observed=True)["time"].max()
@@ -398,6 +420,23 @@ def _copy(src, dst, n: int) -> None:
         left -= len(chunk)
 
 
+def _write_qc_flags(out: Path, state: FollowState, store: Store, block: Block) -> None:
+    """qc_flags.csv: the logged final flags, then those of the open rows (which may still change)."""
+    from ..report.atomic import atomic_write
+    from ..report.files import QC_FLAG_COLUMNS, csv_bytes
+
+    flags = block.flags
+    done = to_time(state.qc_through)
+    rest = flags[flags["time"] > done] if done is not None else flags
+    tail = csv_bytes(rest[QC_FLAG_COLUMNS], header=state.qc_bytes == 0)
+    with atomic_write(out / "qc_flags.csv") as tmp:
+        with open(tmp, "wb", buffering=0) as fh:
+            if state.qc_bytes:
+                with open(store.file(QC_LOG), "rb", buffering=0) as src:
+                    _copy(src, fh, state.qc_bytes)
+            fh.write(tail)
+
+
 def _write_alerts(out: Path, state: FollowState, store: Store) -> None:
     from ..report.atomic import atomic_write
 
@@ -414,6 +453,7 @@ def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, 
     rej = (pd.read_parquet(store.file(state.rejected)) if state.rejected
            else pd.DataFrame(columns=["file", "line", "reason"]))
     files.write_rejected(rej, out / "rejected_rows.csv")
+    _write_qc_flags(out, state, store, block)
     files.write_csv(cluster_table(block.plan.network), out / "clusters.csv", time_columns=())
     if state.revision_rows:
         hours = float(ctx.cfg["follow"]["page_hours"])

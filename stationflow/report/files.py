@@ -10,7 +10,7 @@ import pandas as pd
 
 from .atomic import atomic_write, write_with
 
-__all__ = ["atomic_write", "write_with", "write_csv", "write_json", "write_rejected", "write_qc_flags"]
+__all__ = ["atomic_write", "write_with", "write_csv", "csv_bytes", "write_json", "write_rejected", "write_qc_flags"]
 
 
 def _iso_utc(series: pd.Series) -> pd.Series:
@@ -26,8 +26,28 @@ def _iso_utc(series: pd.Series) -> pd.Series:
 
 def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str, ...] = ("time",), float_format: str = "%.6g") -> Path:
     """Write a CSV with ISO 8601 UTC times (``Z``), fast (pyarrow's writer, shortest float repr)."""
+    import pyarrow.csv as pacsv
+
+    table = _csv_table(frame, time_columns)
+    with atomic_write(path) as tmp:
+        pacsv.write_csv(table, tmp, pacsv.WriteOptions(quoting_style="needed"))
+    return Path(path)
+
+
+def csv_bytes(frame: pd.DataFrame, *, time_columns: tuple[str, ...] = ("time",), header: bool = True) -> bytes:
+    """The text :func:`write_csv` writes for ``frame`` (without the header line unless ``header``): a file
+    can be written in pieces."""
     import pyarrow as pa
     import pyarrow.csv as pacsv
+
+    sink = pa.BufferOutputStream()
+    pacsv.write_csv(_csv_table(frame, time_columns), sink,
+                    pacsv.WriteOptions(quoting_style="needed", include_header=header))
+    return sink.getvalue().to_pybytes()
+
+
+def _csv_table(frame: pd.DataFrame, time_columns: tuple[str, ...]):
+    import pyarrow as pa
 
     out = frame.copy()
     for c in time_columns:
@@ -36,10 +56,7 @@ def write_csv(frame: pd.DataFrame, path: str | Path, *, time_columns: tuple[str,
     for c in out.columns:
         if out[c].dtype == object or isinstance(out[c].dtype, pd.CategoricalDtype):
             out[c] = out[c].astype(str)
-    table = pa.Table.from_pandas(out, preserve_index=False)
-    with atomic_write(path) as tmp:
-        pacsv.write_csv(table, tmp, pacsv.WriteOptions(quoting_style="needed"))
-    return Path(path)
+    return pa.Table.from_pandas(out, preserve_index=False)
 
 
 def _jsonable(obj):
@@ -71,6 +88,10 @@ def write_rejected(rejected: pd.DataFrame, path: str | Path) -> Path:
     return write_csv(rejected[cols] if len(rejected) else pd.DataFrame(columns=cols), path, time_columns=())
 
 
+#: the columns of qc_flags.csv
+QC_FLAG_COLUMNS = ["station_id", "time", "variable", "flag", "tests"]
+
+
 def write_qc_flags(flags: pd.DataFrame, path: str | Path) -> Path:
     """``qc_flags.csv``: station_id, time, variable, flag, tests."""
-    return write_csv(flags[["station_id", "time", "variable", "flag", "tests"]], path)
+    return write_csv(flags[QC_FLAG_COLUMNS], path)
