@@ -362,7 +362,8 @@ def budget(
             --config orchard.toml --out tonight --follow --every 60
     """
     def job(report):
-        _check_paths(obs=obs, stations=stations, config=config)
+        # a followed export may not exist yet (the logger starts later): the follow mode waits for it
+        _check_paths(obs=None if (follow or once) else obs, stations=stations, config=config)
         cfg = _config(config)
         if follow or once:
             _follow_job(obs, stations, cfg, out, report, every=every, once=once, quiet=quiet,

@@ -467,3 +467,18 @@ def test_ctrl_c_ends_a_follow_run_cleanly(tmp_path):
     stdout, stderr = proc.communicate(timeout=60)
     assert proc.returncode == 0, stderr
     assert "stopped; the state is kept" in stdout and "error" not in stderr
+
+
+def test_an_export_that_does_not_exist_yet_is_waited_for(tmp_path, runner):
+    from stationflow.cli import app
+
+    live, out = tmp_path / "later.csv", tmp_path / "out"
+    args = ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(live), "--config",
+            str(FROST / "config.toml"), "--out", str(out), "--once"]
+    res = runner.invoke(app, args)
+    assert res.exit_code == 0 and "does not exist yet" in res.output
+    assert "waiting for the first observations" in (out / "now.html").read_text()
+    head, groups = split_export(FROST / "observations.csv", load(FROST / "config.toml"))
+    live.write_bytes(head + b"".join(groups[:4]))  # the logger starts
+    res = runner.invoke(app, args)
+    assert res.exit_code == 0 and "learning" in res.output and (out / "budget.parquet").exists()

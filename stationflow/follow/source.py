@@ -64,9 +64,10 @@ def files_of(source: Path) -> list[Path]:
 
 
 def check_source(source: Path) -> None:
-    """Stop with a one-line reason when ``source`` cannot be followed."""
+    """Stop with a one-line reason when ``source`` cannot be followed (one that does not exist yet is waited
+    for)."""
     if not source.exists():
-        raise IngestError(f"{source}: file not found; check the path")
+        return
     if source.is_dir():
         if any(q.suffix.lower() in (".parquet", ".pq", ".nc", ".cdf", ".nc4", ".netcdf") for q in source.iterdir()):
             raise IngestError(f"{source}: --follow reads CSV exports (a file, or a folder of .csv files); "
@@ -85,6 +86,8 @@ def poll(source: Path, marks: dict[str, dict]) -> tuple[list[Chunk], dict[str, d
     new_marks = {k: dict(v) for k, v in marks.items()}
     chunks: list[Chunk] = []
     restarts = 0
+    if not source.exists():
+        return [], new_marks, 0
     for path in files_of(source):
         key = str(path)
         mark = Mark(**marks[key]) if key in marks else Mark()

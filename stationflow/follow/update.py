@@ -43,7 +43,9 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
         span = (newest - pd.Timestamp(obs["time"].min())) if newest is not None else pd.Timedelta(0)
         if newest is None or span < need:
             learning = (f"learning the network's settings: {_minutes(span)} of the {_minutes(need)} of data needed "
-                        "so far" if newest is not None else "waiting for the first observations")
+                        "so far" if newest is not None else
+                        f"waiting for the first observations in {ctx.obs}"
+                        + ("" if ctx.obs.exists() else " (it does not exist yet)"))
         else:
             progress("learning the settings (pinned for the night: settings.toml)")
             chk = checked(obs, ctx.stations, cfg, state.units)
