@@ -58,6 +58,9 @@ def night(tmp_path_factory):
     ctx = Follow(live, FROST / "stations.csv", cfg, out, every=60.0)
     rng = np.random.default_rng(3)
     results, pending, late, i, call = [], b"", b"", 0, 0
+    from stationflow.follow import update
+
+    parts, update.FINAL_STEPS_PER_PART = update.FINAL_STEPS_PER_PART, 40  # the final rows read back in pieces
     events: dict = {}
     while i < len(groups) or pending:
         k = int(rng.integers(1, 5))
@@ -83,6 +86,7 @@ def night(tmp_path_factory):
         _append(live, data)
         results.append(follow_step(ctx))
         call += 1
+    update.FINAL_STEPS_PER_PART = parts
     batch = api.run_budget(FROST / "observations.csv", FROST / "stations.csv", load(out / "settings.toml"))
     return SimpleNamespace(out=out, results=results, batch=batch.table, batch_flags=batch.check.flags, events=events, cfg=cfg,
                            n_lines=sum(g.count(b"\n") for g in groups), scenario=synthetic.frost_valley())

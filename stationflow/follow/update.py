@@ -352,10 +352,18 @@ def _night_layout(state: FollowState, block: Block) -> Layout:
     return Layout(times, lay.clusters, lay.convergence, lay.unit, lay.variable, lay.quantity)
 
 
+#: final analysis steps read back at once when the outputs are rendered (memory stays bounded however long
+#: the run: a day of 5-minute steps)
+FINAL_STEPS_PER_PART = 288
+
+
 def _parts(state: FollowState, store: Store, block: Block):
-    """Every row of the night in time order: the stored final rows, then this call's open rows."""
-    if state.final_rows:
-        yield Partition(0, _final_columns(state, store).read(state.final_rows))
+    """Every row of the night in time order: the stored final rows (a day at a time), then this call's open
+    rows."""
+    cols = _final_columns(state, store)
+    for a in range(0, state.final_rows, FINAL_STEPS_PER_PART):
+        b = min(state.final_rows, a + FINAL_STEPS_PER_PART)
+        yield Partition(a, cols.read(b, start=a))
     k = block.n_final
     yield Partition(state.final_rows, {n: v[k:] for n, v in block.terms.items()})
 
