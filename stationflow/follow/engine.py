@@ -10,8 +10,9 @@
 2. keeps the observations the open rows still need (the retained window:
    the rows not yet final plus the halo their QC and fits look at), so
    memory stays bounded however long the night;
-3. until ``follow.learn`` of data has arrived, only waits; then pins the
-   settings learned from the data (:mod:`.settings`);
+3. once ``follow.learn`` of data has arrived, pins the settings learned
+   from the data (:mod:`.settings`); until then it answers with the
+   settings learned so far, and nothing becomes final;
 4. runs QC, the plane fits and the budget on the retained window only, and
    splits the rows into *final* ones (nothing that can still arrive can
    change them: their centred window, the model error's smoothing and the
@@ -46,6 +47,7 @@ from .state import FollowState, Store
 from .update import advance
 
 log = logging.getLogger(__name__)
+
 
 def _empty_obs() -> pd.DataFrame:
     return pd.DataFrame({"station_id": pd.Categorical([]), "time": pd.Series([], dtype="datetime64[ns, UTC]")})

@@ -62,8 +62,8 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
     step_cfg = pinned_config(cfg, p, ctx.out, for_steps=True)
     progress("quality control and plane fits of the open rows")
     block = _compute(ctx, state, obs, step_cfg, p.network_stations)
-    _store_final(state, store, block, gen)
-    _store_revisions(state, store, block, gen)
+    _store_final(state, store, block)
+    _store_revisions(state, store, block)
     _update_minimum(state, block)
     latest, new_alerts = _judge(ctx, state, store, block, step_cfg)
     _save_obs(state, store, _trim(obs, block), gen)
@@ -221,7 +221,7 @@ def _final_columns(state: FollowState, store: Store) -> Columns:
     return Columns(store, "final", state.final_layout)
 
 
-def _store_final(state: FollowState, store: Store, block: Block, gen: int) -> None:  # noqa: ARG001
+def _store_final(state: FollowState, store: Store, block: Block) -> None:
     """Append the rows that became final, once, for good (committed with the state): their columns, and
     their budget.csv lines."""
     from ..report.tables import csv_rows
@@ -247,7 +247,7 @@ REVISION_LAYOUT = {"issued": ["<i8", 0], "time": ["<i8", 0], "cluster": ["<i4", 
                    **{c: ["<f8", 0] for c in REVISION_COLUMNS}, "regime": ["|i1", 0]}
 
 
-def _store_revisions(state: FollowState, store: Store, block: Block, gen: int) -> None:  # noqa: ARG001
+def _store_revisions(state: FollowState, store: Store, block: Block) -> None:
     """Append the one-sided estimates as issued now (the revision history of the newest rows)."""
     rows = np.flatnonzero(block.terms["one_sided"][:, 0])
     if rows.size == 0:
