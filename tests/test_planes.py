@@ -273,3 +273,17 @@ def test_noise_part_of_the_covariance():
     for name in ("var_value", "var_x", "var_y", "cov_xy"):
         np.testing.assert_allclose(full.noise_part(name), getattr(full, name), rtol=1e-9, atol=1e-15)
         np.testing.assert_allclose(half.noise_part(name), getattr(full, name) / 4, rtol=1e-9, atol=1e-15)
+
+
+def test_no_time_steps_give_empty_fits_for_clusters_of_any_size():
+    # a record split into parts can leave a part without times (the QC buddy test on one time step of a large
+    # network); every cluster size, the wide normal-equation route included, gives empty arrays, not an error
+    from stationflow.estimate.planes import MAX_PATTERN_BITS, fit_planes
+
+    n = MAX_PATTERN_BITS + 5
+    rng = np.random.default_rng(0)
+    x, y = rng.uniform(-1e4, 1e4, n), rng.uniform(-1e4, 1e4, n)
+    members = [np.arange(n), np.arange(3)]
+    for noise in (None, np.full(n, 0.1)):
+        fit = fit_planes(np.zeros((0, n)), x, y, members, noise=noise)
+        assert fit.value.shape == (0, 2) and fit.var_value.shape == (0, 2)

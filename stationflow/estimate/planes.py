@@ -291,6 +291,11 @@ def _fit_wide(X: np.ndarray, A: np.ndarray, w: np.ndarray, noise2: np.ndarray | 
             with np.errstate(invalid="ignore", divide="ignore"):
                 chi2[ts] = np.where(ok & (dof > 0), (wt * res * res).sum(axis=0) / dof, np.nan)
                 rms[ts] = np.where(ok, np.sqrt((res * res).sum(axis=0) / n_used), np.nan)
+    if n_t == 0:  # no time steps (an empty part of a split record): empty rows, every key present
+        out = {key: [val] for key, val in _table_rows(np.zeros((0, p, p)), np.zeros(0), np.zeros(0, bool),
+                                                      np.zeros(0, np.int32), p).items()}
+        if noise2 is not None:
+            out.update({f"{name}_noise": [np.zeros(0)] for name, _, _ in _ENTRIES})
     table = {key: np.concatenate(val) for key, val in out.items()}
     table.update(coef=coef_all, chi2=chi2, rms=rms)
     return table
