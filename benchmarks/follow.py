@@ -1,7 +1,7 @@
 """Benchmark of the follow mode: the CPU one new 5-minute step costs, end to end.
 
-Run with ``make bench-follow`` (part of ``make bench``) or ``python benchmarks/follow.py [stations] [hours]``
-(default 300 stations, a 14-hour night).  It generates a synthetic night (a linear field carried by a
+Run with ``make bench-follow`` (part of ``make bench``) or ``python benchmarks/follow.py [stations] [hours]
+[minutes]`` (default 300 stations, a 14-hour night, 5-minute steps).  It generates a synthetic night (a linear field carried by a
 turning wind, evening cooling, 0.1 K noise, 5 % of values missing at random) as a logger export under
 ``benchmarks/output/follow/``, then appends it to a growing file one 5-minute step at a time and runs
 one follow call (``stationflow.follow.follow_step``, what ``budget --follow`` runs each poll) after
@@ -33,7 +33,7 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 
-def generate(n: int, hours: float, folder: Path, *, seed: int = 0) -> tuple[Path, Path, Path]:
+def generate(n: int, hours: float, folder: Path, *, seed: int = 0, minutes: int = 5) -> tuple[Path, Path, Path]:
     """stations.csv, observations.csv (the whole night, time-ordered) and config.toml."""
     from stationflow.scenarios import synthetic
 
@@ -46,7 +46,7 @@ def generate(n: int, hours: float, folder: Path, *, seed: int = 0) -> tuple[Path
                               u=synthetic.ramp([(0, 3.0), (hours, 0.5)]), v=synthetic.ramp([(0, 1.0), (hours, 0.2)]),
                               source=synthetic.ramp([(0, -1.0 / 3600), (hours, -0.3 / 3600)]),
                               horizon_s=hours * 3600 + 7200)
-    times = pd.date_range("2026-04-14T01:00Z", periods=int(hours * 12) + 1, freq="5min")
+    times = pd.date_range("2026-04-14T01:00Z", periods=int(hours * 60 / minutes) + 1, freq=f"{minutes}min")
     obs = synthetic.sample(f, st, times, noise=0.1, wind_noise=0.3, seed=seed, start=times[0])
     obs = obs[np.random.default_rng(seed).random(len(obs)) >= 0.05]
     out = pd.DataFrame({"station_id": obs["station_id"], "time": pd.DatetimeIndex(obs["time"]).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -57,14 +57,14 @@ def generate(n: int, hours: float, folder: Path, *, seed: int = 0) -> tuple[Path
     return st_path, obs_path, cfg_path
 
 
-def run(n: int = 300, hours: float = 14.0, folder: Path | None = None, *, once: bool = True) -> dict:
+def run(n: int = 300, hours: float = 14.0, folder: Path | None = None, *, once: bool = True, minutes: int = 5) -> dict:
     """Replay the night one step per call; returns the timings."""
     from stationflow.config import load
     from stationflow.follow import Follow, follow_step
     from stationflow.scenarios.replay import split_export
 
     folder = folder or ROOT / "benchmarks" / "output" / "follow"
-    st_path, obs_path, cfg_path = generate(n, hours, folder / f"{n}x{hours:g}h")
+    st_path, obs_path, cfg_path = generate(n, hours, folder / f"{n}x{hours:g}h_{minutes}min", minutes=minutes)
     cfg = load(cfg_path)
     head, groups = split_export(obs_path, cfg)
     work = folder / f"run_{n}"
@@ -88,8 +88,8 @@ def run(n: int = 300, hours: float = 14.0, folder: Path | None = None, *, once: 
     done = [c for c in calls if c["pinned"]][1:]  # after the call that pinned the settings
     cpu = np.array([c["cpu_s"] for c in done])
     wall = np.array([c["wall_s"] for c in done])
-    hour = 12
-    result = {"stations": n, "hours": hours, "steps": len(groups), "calls_timed": len(done),
+    hour = 60 // minutes
+    result = {"stations": n, "hours": hours, "minutes": minutes, "steps": len(groups), "calls_timed": len(done),
               "cpu_median_s": float(np.median(cpu)), "cpu_p90_s": float(np.percentile(cpu, 90)),
               "cpu_max_s": float(cpu.max()), "wall_median_s": float(np.median(wall)),
               "cpu_first_hour_median_s": float(np.median(cpu[:hour])), "cpu_last_hour_median_s": float(np.median(cpu[-hour:])),
@@ -115,11 +115,12 @@ def _once(st_path: Path, live: Path, cfg_path: Path, out: Path) -> dict:
 def main(argv: list[str]) -> int:
     n = int(argv[0]) if argv else 300
     hours = float(argv[1]) if len(argv) > 1 else 14.0
+    minutes = int(argv[2]) if len(argv) > 2 else 5
     print(f"machine: {platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}, "
           f"{time.strftime('%Y-%m-%d')}")
-    r = run(n, hours)
+    r = run(n, hours, minutes=minutes)
     print(json.dumps(r, indent=2))
-    print(f"one new 5-minute step, {n} stations: CPU median {r['cpu_median_s']:.2f} s, 90th percentile "
+    print(f"one new {minutes}-minute step, {n} stations: CPU median {r['cpu_median_s']:.2f} s, 90th percentile "
           f"{r['cpu_p90_s']:.2f} s, largest {r['cpu_max_s']:.2f} s (first hour {r['cpu_first_hour_median_s']:.2f} s, "
           f"last hour {r['cpu_last_hour_median_s']:.2f} s); budget --once in a fresh process with nothing new: "
           f"{r['once_nothing_new_wall_s']:.2f} s")
