@@ -158,3 +158,29 @@ def test_alerts_fire_when_a_condition_starts_and_not_again_while_it_holds():
     for _ in range(alerts.CLEAR_CALLS):  # clearly back above for three calls in a row: cleared
         alerts.evaluate(latest(273.5), {}, firing, cfg, **kw)
     assert len(alerts.evaluate(latest(273.0), {}, firing, cfg, **kw)) == 1
+
+
+def test_batch_budget_with_a_noise_file_and_excluded_stations(tmp_path):
+    # the two keys a follow run pins, used on their own: per-station reading noise from a CSV, stations left out
+    from pathlib import Path
+
+    from stationflow import api
+    from stationflow.config import load
+
+    frost = Path(__file__).resolve().parent.parent / "sample_data" / "frost"
+    noise = tmp_path / "noise.csv"
+    noise.write_text("station_id,variable,reading_noise\nHV01,air_temperature,0.3\nHV02,air_temperature,0.05\n",
+                     encoding="utf-8")
+    cfg_path = tmp_path / "config.toml"
+    cfg_path.write_text((frost / "config.toml").read_text()
+                        + '\n[uncertainty]\nnoise_file = "noise.csv"\n\n[network]\nexclude = ["HV04"]\n', encoding="utf-8")
+    run = api.run_budget(frost / "observations.csv", frost / "stations.csv", load(cfg_path))
+    assert run.choices["noise_source"].startswith("uncertainty.noise_file")
+    sigma = dict(zip(run.check.data.stations["station_id"], np.broadcast_to(run.settings.sigma, (len(run.check.data.stations),))))
+    assert sigma["HV01"] == 0.3 and sigma["HV02"] == 0.05 and sigma["HV05"] == pytest.approx(np.median([0.3, 0.05]))
+    assert not run.table["stations"].astype(str).str.contains("HV04").any()
+    bad = tmp_path / "bad.csv"
+    bad.write_text("station,noise\nHV01,0.1\n", encoding="utf-8")
+    cfg_path.write_text((frost / "config.toml").read_text() + '\n[uncertainty]\nnoise_file = "bad.csv"\n', encoding="utf-8")
+    with pytest.raises(ConfigError, match="station_id, variable, reading_noise"):
+        api.run_budget(frost / "observations.csv", frost / "stations.csv", load(cfg_path))
