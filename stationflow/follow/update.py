@@ -22,7 +22,7 @@ from ..run.sinks import Partition
 from . import alerts as al
 from .context import Follow, StepResult, checked, iso_utc, to_time
 from .settings import Pinned, pin, pinned_config, qc_reach, write_pinned
-from .state import FINAL_CSV, QC_LOG, Columns, FollowState, Store
+from .state import ALERT_LOG, FINAL_CSV, QC_LOG, Columns, FollowState, Store
 
 log = logging.getLogger(__name__)
 
@@ -392,7 +392,6 @@ def render(ctx: Follow, state: FollowState, store: Store, block: Block, latest: 
 def _write_csv(out: Path, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
     """budget.csv: the final rows' stored lines, then this call's open rows (as a batch run writes it, and
     not above the same row limit)."""
-    from ..report.atomic import atomic_write
     from ..report.tables import CSV_ROW_LIMIT, csv_rows
 
     if len(layout.times) * len(layout.clusters) > CSV_ROW_LIMIT:
@@ -401,11 +400,18 @@ def _write_csv(out: Path, state: FollowState, store: Store, block: Block, layout
     k = block.n_final
     open_rows = {n: v[k:] for n, v in block.terms.items()}
     tail = csv_rows(layout, state.final_rows, open_rows, header=state.final_rows == 0)
-    with atomic_write(out / "budget.csv") as tmp:
+    _log_and_tail(out / "budget.csv", store, FINAL_CSV, state.final_csv_bytes, tail)
+
+
+def _log_and_tail(path: Path, store: Store, log: str, committed: int, tail: bytes) -> None:
+    """Write ``path`` atomically: the committed part of the state's log ``log``, then ``tail``."""
+    from ..report.atomic import atomic_write
+
+    with atomic_write(path) as tmp:
         with open(tmp, "wb", buffering=0) as fh:
-            if state.final_csv_bytes:
-                with open(store.file(FINAL_CSV), "rb", buffering=0) as src:
-                    _copy(src, fh, state.final_csv_bytes)
+            if committed:
+                with open(store.file(log), "rb", buffering=0) as src:
+                    _copy(src, fh, committed)
             fh.write(tail)
 
 
@@ -432,26 +438,17 @@ def _copy(src, dst, n: int) -> None:
 
 def _write_qc_flags(out: Path, state: FollowState, store: Store, block: Block) -> None:
     """qc_flags.csv: the logged final flags, then those of the open rows (which may still change)."""
-    from ..report.atomic import atomic_write
     from ..report.files import QC_FLAG_COLUMNS, csv_bytes
 
     flags = block.flags
     done = to_time(state.qc_through)
     rest = flags[flags["time"] > done] if done is not None else flags
     tail = csv_bytes(rest[QC_FLAG_COLUMNS], header=state.qc_bytes == 0)
-    with atomic_write(out / "qc_flags.csv") as tmp:
-        with open(tmp, "wb", buffering=0) as fh:
-            if state.qc_bytes:
-                with open(store.file(QC_LOG), "rb", buffering=0) as src:
-                    _copy(src, fh, state.qc_bytes)
-            fh.write(tail)
+    _log_and_tail(out / "qc_flags.csv", store, QC_LOG, state.qc_bytes, tail)
 
 
 def _write_alerts(out: Path, state: FollowState, store: Store) -> None:
-    from ..report.atomic import atomic_write
-
-    with atomic_write(out / "alerts.jsonl") as tmp:
-        tmp.write_bytes(store.alert_log(state))
+    _log_and_tail(out / "alerts.jsonl", store, ALERT_LOG, state.alert_bytes, b"")
 
 
 def _write_records(ctx: Follow, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
