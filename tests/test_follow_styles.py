@@ -50,3 +50,38 @@ def test_follow_equals_batch_on_any_export(tmp_path, case):
     assert len(final) > 0, "nothing final: the night is longer than the final lag"
     batch = api.run_budget(paths["obs"], paths["stations"], load(out / "settings.toml"))
     assert assert_rows_equal(final, batch.table) == len(final)
+
+
+def _night_export(tmp_path):
+    st, obs = linear_night(10, 48, seed=4, interval="10min", start="2026-04-14 20:00", missing=0.1)
+    obs = obs.sort_values(["time", "station_id"], kind="stable")
+    return write_export(tmp_path / "export", st, obs, units_row=True)
+
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as hst  # noqa: E402
+
+
+@settings(max_examples=3, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture],
+          derandomize=True)
+@given(cuts=hst.lists(hst.floats(0.0, 1.0), min_size=3, max_size=12))
+def test_bytes_arriving_at_any_boundary_give_the_batch_rows(tmp_path_factory, cuts):
+    """Appended at arbitrary byte boundaries (lines cut anywhere, the header and the units row included), the
+    final rows equal the batch run with the settings the follow run pinned."""
+    tmp = tmp_path_factory.mktemp("cuts")
+    paths = _night_export(tmp)
+    cfg = load(paths["config"])
+    data = paths["obs"].read_bytes()
+    live, out = tmp / "live.csv", tmp / "out"
+    live.write_bytes(b"")
+    ctx = Follow(live, paths["stations"], cfg, out, every=60.0)
+    start = 0
+    for end in sorted({int(c * len(data)) for c in cuts} | {5, len(data)}):  # 5: inside the header line
+        with open(live, "ab") as fh:
+            fh.write(data[start:end])
+        start = end
+        follow_step(ctx)
+    ctx.close()
+    final = _final(out)
+    batch = api.run_budget(paths["obs"], paths["stations"], load(out / "settings.toml"))
+    assert assert_rows_equal(final, batch.table) == len(final) > 0
