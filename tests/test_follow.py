@@ -486,3 +486,22 @@ def test_an_export_that_does_not_exist_yet_is_waited_for(tmp_path, runner):
     live.write_bytes(head + b"".join(groups[:4]))  # the logger starts
     res = runner.invoke(app, args)
     assert res.exit_code == 0 and "learning" in res.output and (out / "budget.parquet").exists()
+
+
+def test_a_pm25_network_followed_shows_its_units_and_projects_only_what_is_set(tmp_path, runner):
+    from stationflow.cli import app
+
+    town = ROOT / "sample_data" / "town"
+    cfg = load(town / "config.toml")
+    head, groups = split_export(town / "observations.csv", cfg)
+    live, out = tmp_path / "live.csv", tmp_path / "out"
+    live.write_bytes(head + b"".join(groups[:30]))
+    args = ["budget", "--stations", str(town / "stations.csv"), "--obs", str(live), "--config", str(town / "config.toml"),
+            "--out", str(out), "--once"]
+    assert runner.invoke(app, args).exit_code == 0
+    page = (out / "now.html").read_text()
+    assert "ug/m3" in page and "Air quality" in page and "Frost:" not in page  # the unit the config declares
+    latest = pd.read_parquet(out / "budget.parquet")
+    assert latest["provisional"].any()
+    # no critical value set for a concentration: nothing projected
+    assert "not approaching" not in page and "reached" not in page

@@ -191,7 +191,8 @@ def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) 
     body.append(f"<p class='muted'>Source {_esc(ctx.obs)}: rows read {c['rows_read']:,}, rejected "
                 f"{c['rows_rejected']:,} (rejected_rows.csv), repeats dropped {c['duplicates']:,}, arrived after their "
                 f"time was final {c['late_after_final']:,}, files restarted (rotated or truncated) {c['restarts']:,}. "
-                "Settings pinned for the night in settings.toml. This page reloads itself.</p>")
+                + ("Settings pinned for the night in settings.toml. " if state.pinned else "")
+                + "This page reloads itself.</p>")
     with atomic_write(path) as tmp:
         tmp.write_text(_page(f"now: {plan.variable}", max(30, int(ctx.every)), body), encoding="utf-8")
 
