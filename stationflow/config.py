@@ -158,7 +158,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
                                    "interval, window, network) are pinned for the night; written to settings.toml"),
         "critical": Key({}, (dict, int, float, str), "the critical value whose crossing now.html projects: a number in the "
                                                        "variable's unit, a string with a unit ('-2.2 degC', '28 degF', "
-                                                       "'35 ug m-3'), or a table with 'default' and cluster or station ids "
+                                                       "'35 ug/m3'), or a table with 'default' and cluster or station ids "
                                                        "(a cluster takes the most demanding value of its own and its "
                                                        "stations'). Temperatures are crossed downward, concentrations "
                                                        "upward (default: 0 degC for temperatures, the freezing point: "

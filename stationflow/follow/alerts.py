@@ -5,7 +5,7 @@ all, or a table with ``default`` and cluster or station ids (a cluster takes
 the most demanding value of its own id and its stations': the highest
 critical temperature, the lowest concentration limit).  Values are numbers
 in the variable's unit or strings with a unit (``"-2.2 degC"``,
-``"28 degF"``, ``"35 ug m-3"``).
+``"28 degF"``, ``"35 ug/m3"``).
 
 The rules (``[alerts]``), checked on the newest row of every cluster after
 each call; an alert is written when a condition *starts* to hold.  It is not
