@@ -170,11 +170,12 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "below_critical": Key(True, (bool,), "alert when a cluster's latest value is past follow.critical (below it for "
                                              "temperatures, above for concentrations)"),
         "crossing_within": Key("60min", (str,), "alert when the projected crossing of follow.critical is this close "
-                                                "('' = off)"),
+                                                "('' = off) (common practice)"),
         "advective_rate": Key(1.0, (int, float), "alert when the regime turns advective with a change faster than this "
                                                  "[variable unit per hour]: cooling for temperatures, rising for "
                                                  "concentrations (0 = off) (common practice)"),
-        "silent_after": Key("30min", (str,), "alert when a station has sent nothing for this long ('' = off)"),
+        "silent_after": Key("30min", (str,), "alert when a station has sent nothing for this long ('' = off) "
+                                             "(common practice: a few missed reports)"),
         "command": Key("", (str,), "a command run for every alert with the alert (one JSON line) on its standard input; "
                                    "no shell is involved (arguments split as a POSIX shell would)"),
     },
@@ -198,6 +199,13 @@ class Config:
     def to_dict(self) -> dict[str, Any]:
         """Plain nested dict (for run.json)."""
         return copy.deepcopy(self.data)
+
+    def with_values(self, **sections: dict[str, Any]) -> "Config":
+        """A validated copy with some keys changed: ``cfg.with_values(budget={"variable": "pm2_5"})``."""
+        data = self.to_dict()
+        for section, values in sections.items():
+            data[section].update(values)
+        return from_dict(data, source=self.source)
 
 
 def _check_type(where: str, value: Any, key: Key) -> Any:

@@ -57,11 +57,7 @@ def _read_config(ctx: Follow, state: FollowState) -> Config:
     """The configuration new lines are read with: the time layout found in the first lines pinned."""
     if not state.time_format:
         return ctx.cfg
-    from ..config import from_dict
-
-    data = ctx.cfg.to_dict()
-    data["observations"]["time_format"] = state.time_format
-    return from_dict(data, source=ctx.cfg.source)
+    return ctx.cfg.with_values(observations={"time_format": state.time_format})
 
 
 def _ingest(ctx: Follow, state: FollowState, chunks: list, store: Store) -> tuple[list[pd.DataFrame], list, list]:

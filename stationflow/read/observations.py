@@ -120,18 +120,13 @@ def read_csv_lines(source: str, header: bytes, body: bytes, first_line: int, cfg
     The lines are copied with the header to a scratch file in ``scratch``, read by the same readers as a
     file, and renumbered.
     """
-    import copy
     import tempfile
-
-    from ..config import from_dict
 
     n_body = body.count(b"\n") + (0 if body.endswith(b"\n") or not body else 1)
     oc = cfg["observations"]
     # skip_lines count in the source file; in the scratch file the body starts at line 2
     skip = [n - first_line + 2 for n in oc["skip_lines"] if first_line <= n < first_line + n_body]
-    data = copy.deepcopy(cfg.to_dict())
-    data["observations"]["skip_lines"] = skip
-    local = from_dict(data, source=cfg.source)
+    local = cfg.with_values(observations={"skip_lines": skip})
     scratch.mkdir(parents=True, exist_ok=True)
     with tempfile.NamedTemporaryFile("wb", dir=scratch, suffix=".csv", delete=False) as fh:
         fh.write(header if header.endswith(b"\n") else header + b"\n")
