@@ -134,82 +134,89 @@ def _fmt(x: float) -> float | None:
 CLEAR_CALLS = 3
 
 
-def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, int], cfg: Config, *, variable: str,
+def _transition(held: dict[str, int], subjects: np.ndarray, holds: np.ndarray, clears: np.ndarray,
+                calls_to_clear: int = CLEAR_CALLS) -> np.ndarray:
+    """Update one rule's firing subjects ``held`` (subject -> calls in a row its clearing condition held) and
+    return the positions in ``subjects`` where the rule starts to fire now.  Only the subjects that fire or
+    start to are visited one by one."""
+    active = np.isin(subjects, np.array(list(held), dtype=object)) if held else np.zeros(len(subjects), bool)
+    start = np.flatnonzero(holds & ~active)
+    for i in np.flatnonzero(active):
+        streak = held[subjects[i]] + 1 if clears[i] else 0
+        if streak >= calls_to_clear:
+            del held[subjects[i]]
+        else:
+            held[subjects[i]] = streak
+    held.update((subjects[i], 0) for i in start)
+    return start
+
+
+def evaluate(latest: Latest, last_seen: dict[str, str], firing: dict[str, dict], cfg: Config, *, variable: str,
              unit: str, zone, display) -> list[dict]:
-    """The alerts that start now (``firing`` is updated in place); ``display``: how messages show values and
-    rates (:class:`stationflow.report.now.Display`); the evidence is in ``unit``."""
+    """The alerts that start now; ``firing`` (rule -> subject -> calls in a row its clearing condition held) is
+    updated in place; ``display``: how messages show values and rates
+    (:class:`stationflow.report.now.Display`); the evidence is in ``unit``."""
     ac = cfg["alerts"]
     down = downward(variable, cfg)
     rate_unit = f"{unit} h-1"
-    now = latest.time
+    stamp = {"time": latest.time.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"),
+             "local_time": latest.time.tz_convert(zone).isoformat()}
+    names = np.array(latest.clusters, dtype=object)
+    v, vse, crit, hrs = latest.value, latest.value_se, latest.critical, latest.hours
     out: list[dict] = []
 
-    def fire(rule: str, subject: str, holds: bool, clears: bool, message: str, evidence: dict,
-             kind: str = "cluster", calls_to_clear: int = CLEAR_CALLS) -> None:
-        key = f"{rule}|{subject}"
-        streak = firing.get(key, -1)  # -1: not firing; else calls in a row its clearing condition held
-        if streak < 0:
-            if holds:
-                firing[key] = 0
-                out.append({"time": now.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"),
-                            "local_time": now.tz_convert(zone).isoformat(), "rule": rule, kind: subject,
-                            "message": message, "evidence": evidence})
-        elif clears:
-            if streak + 1 >= calls_to_clear:
-                del firing[key]
-            else:
-                firing[key] = streak + 1
-        else:
-            firing[key] = 0
+    def alert(rule: str, i: int, message: str, **evidence) -> None:
+        out.append({**stamp, "rule": rule, "cluster": names[i], "message": message,
+                    "evidence": {"value": _fmt(v[i]), "value_se": _fmt(vse[i]), "unit": unit,
+                                 **{k: (_fmt(x) if isinstance(x, float) else x) for k, x in evidence.items()}}})
 
-    within = parse_duration(ac["crossing_within"]).total_seconds() / 3600.0 if ac["crossing_within"] else None
-    for i, c in enumerate(latest.clusters):
-        v, vse, crit = latest.value[i], latest.value_se[i], latest.critical[i]
-        ev = {"value": _fmt(v), "value_se": _fmt(vse), "unit": unit}
-        if ac["below_critical"] and np.isfinite(crit) and np.isfinite(v):
-            past = v < crit if down else v > crit
+    with np.errstate(invalid="ignore"):
+        if ac["below_critical"]:
+            past = (v < crit) if down else (v > crit)
             back = (v > crit + 2 * vse) if down else (v < crit - 2 * vse)
-            fire("below_critical", c, bool(past), bool(back),
-                 f"{c}: {display.value(v)} {display.unit}, {'below' if down else 'above'} the critical value "
-                 f"{display.value(crit)} {display.unit}",
-                 {**ev, "critical": _fmt(crit)})
-        if within is not None and np.isfinite(crit):
-            hrs = latest.hours[i]
-            soon = bool(np.isfinite(hrs) and 0 < hrs <= within)
-            # cleared only once the projection is clearly off (twice as far, or no approach), not on a flicker
-            off = not (np.isfinite(hrs) and hrs <= 2 * within)
-            fire("crossing_within", c, soon, off,
-                 f"{c}: {display.value(v)} {display.unit}, projected to reach {display.value(crit)} {display.unit} in "
-                 f"{hrs * 60:.0f} ± {latest.hours_se[i] * 60:.0f} min if the present in-situ rate "
-                 f"({display.rate(latest.residual[i])} {display.rate_unit}) goes on",
-                 {**ev, "critical": _fmt(crit), "minutes": _fmt(hrs * 60), "minutes_se": _fmt(latest.hours_se[i] * 60),
-                  "in_situ_rate": _fmt(latest.residual[i]), "in_situ_rate_se": _fmt(latest.residual_se[i]),
-                  "advection": _fmt(latest.advection[i]), "rate_unit": rate_unit,
-                  "assumption": "the present in-situ rate continues; advection is left out"})
+            for i in _transition(firing.setdefault("below_critical", {}), names, past, back):
+                alert("below_critical", i, f"{names[i]}: {display.value(v[i])} {display.unit}, "
+                      f"{'below' if down else 'above'} the critical value {display.value(crit[i])} {display.unit}",
+                      critical=float(crit[i]))
+        if ac["crossing_within"]:
+            within = parse_duration(ac["crossing_within"]).total_seconds() / 3600.0
+            soon = (hrs > 0) & (hrs <= within)
+            off = ~(hrs <= 2 * within)  # cleared once clearly off (twice as far, or no approach), not on a flicker
+            for i in _transition(firing.setdefault("crossing_within", {}), names, soon, off):
+                alert("crossing_within", i,
+                      f"{names[i]}: {display.value(v[i])} {display.unit}, projected to reach {display.value(crit[i])} "
+                      f"{display.unit} in {hrs[i] * 60:.0f} ± {latest.hours_se[i] * 60:.0f} min if the present in-situ "
+                      f"rate ({display.rate(latest.residual[i])} {display.rate_unit}) goes on",
+                      critical=float(crit[i]), minutes=float(hrs[i] * 60), minutes_se=float(latest.hours_se[i] * 60),
+                      in_situ_rate=float(latest.residual[i]), in_situ_rate_se=float(latest.residual_se[i]),
+                      advection=float(latest.advection[i]), rate_unit=rate_unit,
+                      assumption="the present in-situ rate continues; advection is left out")
         rate = float(ac["advective_rate"])
         if rate > 0:
-            t = latest.tendency[i]
-            fast = np.isfinite(t) and ((t < -rate) if down else (t > rate))
+            t = latest.tendency
+            regime = np.array(latest.regime, dtype=object)
+            fast = (t < -rate) if down else (t > rate)
             # cleared once the change has slowed to half the rate or the air changes in place (not on a
             # flicker between advective and mixed)
-            slowed = not np.isfinite(t) or ((t > -rate / 2) if down else (t < rate / 2))
-            fire("advective_rate", c, bool(latest.regime[i] == "advective" and fast),
-                 slowed or latest.regime[i] in ("in_situ", "steady"),
-                 f"{c}: {'cold air carried in' if down else 'a plume carried in'}, "
-                 f"{'cooling' if down else 'rising'} {display.rate(t)} {display.rate_unit} "
-                 f"(carried in {display.rate(latest.advection[i])})",
-                 {**ev, "tendency": _fmt(t), "advection": _fmt(latest.advection[i]), "residual": _fmt(latest.residual[i]),
-                  "rate_unit": rate_unit, "regime": latest.regime[i]})
+            slowed = ~((t <= -rate / 2) if down else (t >= rate / 2)) | np.isin(regime, ["in_situ", "steady"])
+            for i in _transition(firing.setdefault("advective_rate", {}), names, (regime == "advective") & fast, slowed):
+                alert("advective_rate", i, f"{names[i]}: {'cold air carried in' if down else 'a plume carried in'}, "
+                      f"{'cooling' if down else 'rising'} {display.rate(t[i])} {display.rate_unit} "
+                      f"(carried in {display.rate(latest.advection[i])})",
+                      tendency=float(t[i]), advection=float(latest.advection[i]), residual=float(latest.residual[i]),
+                      rate_unit=rate_unit, regime=str(regime[i]))
     if ac["silent_after"] and last_seen:
-        limit = parse_duration(ac["silent_after"])
-        newest = max(pd.Timestamp(t) for t in last_seen.values())
-        for sid, t in sorted(last_seen.items()):
-            gap = newest - pd.Timestamp(t)
-            minutes = gap.total_seconds() / 60.0
-            fire("silent_after", sid, gap > limit, gap <= limit,
-                 f"station {sid} has sent nothing for {minutes:.0f} min",
-                 {"last_report": t, "newest_report": newest.strftime("%Y-%m-%dT%H:%M:%SZ"),
-                  "silent_minutes": gap.total_seconds() / 60.0}, kind="station", calls_to_clear=1)
+        stations = np.array(sorted(last_seen), dtype=object)
+        seen = pd.DatetimeIndex([last_seen[s] for s in stations])
+        gap = seen.max() - seen
+        silent = np.asarray(gap > parse_duration(ac["silent_after"]))
+        for i in _transition(firing.setdefault("silent_after", {}), stations, silent, ~silent, calls_to_clear=1):
+            minutes = gap[i].total_seconds() / 60.0
+            out.append({**stamp, "rule": "silent_after", "station": stations[i],
+                        "message": f"station {stations[i]} has sent nothing for {minutes:.0f} min",
+                        "evidence": {"last_report": last_seen[stations[i]],
+                                     "newest_report": seen.max().strftime("%Y-%m-%dT%H:%M:%SZ"),
+                                     "silent_minutes": minutes}})
     return out
 
 

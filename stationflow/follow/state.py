@@ -55,7 +55,7 @@ class FollowState:
     qc_bytes: int = 0  # committed length of the QC flag log
     alert_bytes: int = 0  # committed length of the alert log (ALERT_LOG)
     alert_count: int = 0  # alerts in it
-    firing: dict = field(default_factory=dict)  # "rule|subject" -> calls in a row its clearing condition held (-1: not firing)
+    firing: dict = field(default_factory=dict)  # rule -> {subject: calls in a row its clearing condition held}
     delivered: int = 0  # alerts handed to alerts.command
     last_seen: dict = field(default_factory=dict)  # station -> its newest report time (UTC ISO 8601)
     minimum: dict = field(default_factory=dict)  # cluster -> [lowest value, its time]
