@@ -367,7 +367,7 @@ def budget(
         cfg = _config(config)
         if follow or once:
             _follow_job(obs, stations, cfg, out, report, every=every, once=once, quiet=quiet,
-                        variable=variable, engine=engine)
+                        variable=variable, engine=engine, scheduler=scheduler, csv=csv)
             return
         if scheduler and engine != Engine.dask:
             from .errors import ConfigError
@@ -414,7 +414,7 @@ def _budget_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, var
 
 
 def _follow_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, every: float, once: bool, quiet: bool,
-                variable: str | None = None, engine=None) -> None:
+                variable: str | None = None, engine=None, scheduler: str | None = None, csv: bool = False) -> None:
     """budget --follow / --once: one call, or calls every ``every`` seconds until Ctrl-C (which ends cleanly)."""
     import time
 
@@ -423,15 +423,11 @@ def _follow_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, eve
 
     if stations is None:
         raise ConfigError("--follow needs --stations (the network must be known before the rows arrive)")
-    if engine is not None and engine != Engine.local:
-        raise ConfigError("--follow runs on the local engine (each call is small)")
+    if (engine is not None and engine != Engine.local) or scheduler:
+        raise ConfigError("--follow runs on the local engine (each call is small): leave out --engine and --scheduler")
     if variable:
-        from .config import from_dict
-
-        data = cfg.to_dict()
-        data["budget"]["variable"] = variable
-        cfg = from_dict(data, source=cfg.source)
-    ctx = Follow(obs, stations, cfg, out, every)
+        cfg = cfg.with_values(budget={"variable": variable})
+    ctx = Follow(obs, stations, cfg, out, every, csv=csv)
     try:
         while True:
             res = follow_step(ctx, progress=report)

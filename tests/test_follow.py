@@ -368,6 +368,13 @@ def test_follow_refuses_what_it_cannot_follow_with_one_line(tmp_path, runner):
     res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
                               "--config", str(bad), "--out", str(tmp_path / "o3"), "--once"])
     assert res.exit_code == 2 and "sensors.apply" in res.stderr
+    odd = tmp_path / "odd.toml"
+    odd.write_text((FROST / "config.toml").read_text() + '\n[follow]\ncritical = "-2 furlongs"\n')
+    res = runner.invoke(app, ["budget", "--stations", str(FROST / "stations.csv"), "--obs", str(FROST / "observations.csv"),
+                              "--config", str(odd), "--out", str(tmp_path / "o4"), "--once"])
+    assert res.exit_code == 2 and "follow.critical" in res.stderr and not (tmp_path / "o4" / ".follow").exists()
+    res = runner.invoke(app, [*base, "--obs", str(FROST / "observations.csv"), "--engine", "dask"])
+    assert res.exit_code == 2 and "leave out --engine" in res.stderr
 
 
 def _one_day_export(tmp_path: Path) -> tuple[Path, Path]:

@@ -24,6 +24,7 @@ class Follow:
     cfg: Config
     out: Path
     every: float = 60.0
+    csv: bool = False  # budget.csv even above the row limit (--csv)
     stations: pd.DataFrame | None = None
     locked: bool = False
 
@@ -38,8 +39,11 @@ class Follow:
     def __post_init__(self) -> None:
         from ..read.stations import read_stations
 
+        from .alerts import critical_values
+
         src.check_source(self.obs)
         refuse_unsupported(self.cfg)
+        critical_values(self.cfg, self.cfg["budget"]["variable"], pd.DataFrame({"cluster": [], "stations": []}))
         if self.stations is None:
             self.stations = read_stations(self.stations_path, self.cfg)
 

@@ -22,7 +22,6 @@ file gives the same final rows.
 
 from __future__ import annotations
 
-import copy
 import math
 from dataclasses import asdict, dataclass
 from pathlib import Path
@@ -30,10 +29,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..config import Config, from_dict, to_toml
+from ..config import Config, to_toml
 from ..errors import ConfigError
-from ..network.grid import format_duration, parse_duration
-from ..qc.thresholds import thresholds
+from ..network.grid import format_duration
+from ..qc.thresholds import persistence_rule, thresholds
+from ..report.atomic import atomic_write
 from ..report.files import write_csv
 
 NOISE_FILE = "reading_noise.csv"
@@ -53,7 +53,6 @@ class Pinned:
     exclude: list[str]
     noise: dict[str, float]
     time_format: str
-    units: dict[str, str]
     pinned_at: str  # the newest data time when pinned (UTC, ISO 8601)
 
     def to_json(self) -> dict:
@@ -63,49 +62,41 @@ class Pinned:
     def from_json(cls, d: dict) -> "Pinned":
         return cls(**d)
 
-    @property
-    def interval_td(self) -> pd.Timedelta:
-        return parse_duration(self.interval)
-
 
 def refuse_unsupported(cfg: Config) -> None:
     """Settings a followed night cannot honour, refused up front with the reason."""
     if cfg["sensors"]["apply"]:
         raise ConfigError("sensors.apply is not available with --follow: the offsets are learned from a whole record; "
-                          "run the batch budget on the night for corrected values")
-    if cfg["budget"]["chunk"]:
-        pass  # harmless: partitions give identical results
+                          "set sensors.apply = false, and run the batch budget on the night for corrected values")
 
 
-def pin(plan, cfg: Config, *, time_format: str, units: dict[str, str], newest: pd.Timestamp) -> Pinned:
+def pin(plan, cfg: Config, *, time_format: str, newest: pd.Timestamp) -> Pinned:
     """The settings the plan of the learning data resolved to (``plan``: a :class:`~stationflow.run.plan.BudgetPlan`)."""
     net_ids = [str(s) for s in plan.network.stations["station_id"]]
     all_ids = [str(s) for s in plan.ids]
     sigma = np.broadcast_to(np.asarray(plan.settings.sigma, float), (len(all_ids),))
-    noise = {sid: float(sigma[i]) for i, sid in enumerate(all_ids) if sid in set(net_ids)}
+    in_net = set(net_ids)
+    noise = {sid: float(sigma[i]) for i, sid in enumerate(all_ids) if sid in in_net}
     declared_wind = cfg["uncertainty"]["wind_component"]
     wind = float(declared_wind) if declared_wind is not None else (
         float(plan.settings.wind_sigma) if plan.choices.get("wind") != "none" else None)
     exclude = sorted(set(all_ids) - set(net_ids) | set(cfg["network"]["exclude"]))
     return Pinned(plan.variable, format_duration(plan.interval), format_duration(plan.window), plan.choices["vertical"],
-                  wind, net_ids, exclude, noise, time_format, dict(units),
+                  wind, net_ids, exclude, noise, time_format,
                   newest.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%SZ"))
 
 
 def pinned_config(cfg: Config, p: Pinned, out: Path, *, for_steps: bool) -> Config:
     """The user's configuration with the pinned settings; ``for_steps``: the form each follow step runs with
     (no sensor-offset estimate: it needs a whole record)."""
-    data = copy.deepcopy(cfg.to_dict())
-    data["budget"].update(variable=p.variable, interval=p.interval, window=p.window, vertical=p.vertical)
+    uncertainty = {"noise_file": str(Path(out) / NOISE_FILE)}
     if p.wind_component is not None:
-        data["uncertainty"]["wind_component"] = p.wind_component
-    data["uncertainty"]["noise_file"] = str(Path(out) / NOISE_FILE)
-    data["network"]["exclude"] = list(p.exclude)
-    if p.time_format:
-        data["observations"]["time_format"] = p.time_format
-    if for_steps:
-        data["sensors"]["estimate"] = False
-    return from_dict(data, source=cfg.source)
+        uncertainty["wind_component"] = p.wind_component
+    return cfg.with_values(
+        budget={"variable": p.variable, "interval": p.interval, "window": p.window, "vertical": p.vertical},
+        uncertainty=uncertainty, network={"exclude": list(p.exclude)},
+        observations={"time_format": p.time_format} if p.time_format else {},
+        sensors={"estimate": False} if for_steps else {})
 
 
 def write_pinned(cfg: Config, p: Pinned, out: Path) -> list[Path]:
@@ -114,7 +105,6 @@ def write_pinned(cfg: Config, p: Pinned, out: Path) -> list[Path]:
     paths = [write_csv(noise, Path(out) / NOISE_FILE, time_columns=())]
     full = pinned_config(cfg, p, out, for_steps=False).to_dict()
     full["uncertainty"]["noise_file"] = NOISE_FILE  # relative to settings.toml: the folder can be moved
-    from ..report.atomic import atomic_write
 
     text = ("# The configuration of a followed night with the settings learned at its start pinned "
             f"({p.pinned_at}).\n# stationflow budget --config settings.toml on the whole record gives the same final "
@@ -137,12 +127,7 @@ def _plain(d):
 def qc_reach(cfg: Config, variables: list[str], interval: pd.Timedelta) -> int:
     """Analysis steps over which a value's QC flag can still change as later values arrive (the longest
     persistence window of the variables present, and the step test's next value)."""
-    from ..qc.thresholds import is_concentration
-
-    pers = thresholds(cfg)["persistence"]
-    # a concentration without its own window is tested over 60 min (qc.runner)
-    minutes = max([float(pers[v][1]) if v in pers else 60.0 for v in variables if v in pers or is_concentration(v, cfg)]
-                  + [0.0])
-    if not cfg["qc"]["enabled"]:
-        minutes = 0.0
+    th = thresholds(cfg)
+    rules = [persistence_rule(v, cfg, th) for v in variables] if cfg["qc"]["enabled"] else []
+    minutes = max([float(r[1]) for r in rules if r is not None] + [0.0])
     return int(math.ceil(minutes * 60.0 / interval.total_seconds())) + 2

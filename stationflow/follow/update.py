@@ -6,6 +6,7 @@ See :mod:`stationflow.follow.engine` for the whole call.
 from __future__ import annotations
 
 import logging
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -15,6 +16,7 @@ from ..estimate.budget import REGIMES
 from ..estimate.projection import crossing
 from ..estimate.provisional import drift_per_hour, one_sided
 from ..network.grid import grid_times, parse_duration
+from ..qc import flag_table
 from ..report import files
 from ..run.partitions import compute_partition, derive, partition_rows
 from ..run.plan import Layout, plan_budget
@@ -50,7 +52,7 @@ def advance(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, ge
             progress("learning the settings (pinned for the night: settings.toml)")
             chk = checked(obs, ctx.stations, cfg, state.units)
             plan = plan_budget(chk, cfg)
-            p = pin(plan, cfg, time_format=state.time_format, units=state.units, newest=newest)
+            p = pin(plan, cfg, time_format=state.time_format, newest=newest)
             state.pinned = p.to_json()
             state.minimum = {}  # the clusters of the learning hour may differ from the pinned network's
             write_pinned(cfg, p, ctx.out)
@@ -78,15 +80,12 @@ def _early(ctx: Follow, state: FollowState, store: Store, obs: pd.DataFrame, gen
            progress) -> StepResult:
     """Before the settings are pinned: the rows answered with settings learned from the data so far (nothing
     becomes final or is stored), or the waiting page when there is too little to fit yet."""
-    from ..config import from_dict
     from ..errors import StationflowError
 
     _save_obs(state, store, obs, gen)
     block = None
     if len(obs):
-        data = ctx.cfg.to_dict()
-        data["sensors"]["estimate"] = False
-        early_cfg = from_dict(data, source=ctx.cfg.source)
+        early_cfg = ctx.cfg.with_values(sensors={"estimate": False})
         try:
             progress("quality control and plane fits (settings not pinned yet)")
             block = _compute(ctx, state, obs, early_cfg, None, final=False)
@@ -129,24 +128,23 @@ def _finish(ctx: Follow, state: FollowState, store: Store, block: "Block", lates
     state.rendered = gen
     store.commit(state)
     return StepResult(n_new, block.times[-1], to_time(state.final_through), new_alerts,
-                      waiting=getattr(block, "learning", ""), latest=_latest_table(latest, block))
+                      waiting=block.learning, latest=_latest_table(latest, block))
 
 
+@dataclass
 class Block:
     """The rows computed by one call: ``terms`` from the first open analysis time to the newest."""
 
-    def __init__(self, plan, times: pd.DatetimeIndex, terms: dict, n_final: int, reach: int, qc_doubts: pd.DataFrame,
-                 drift: np.ndarray) -> None:
-        self.plan = plan
-        self.times = times  # the analysis times of ``terms``
-        self.terms = terms
-        self.n_final = n_final  # the first rows that are now final
-        self.reach = reach
-        self.qc_doubts = qc_doubts
-        self.drift = drift
-        self.learning = ""  # before the settings are pinned: what is being learned
-        self.flags = pd.DataFrame()  # the QC flags of the retained rows (qc_flags.csv's columns)
-        self.newest_report = times[-1] if len(times) else None
+    plan: object  # the BudgetPlan of the retained rows
+    times: pd.DatetimeIndex  # the analysis times of ``terms``
+    terms: dict
+    n_final: int  # the first rows, which are now final
+    reach: int  # the QC reach [analysis steps]
+    flags: pd.DataFrame  # the QC flags of the retained rows (qc_flags.csv's columns)
+    qc_doubts: pd.DataFrame  # the flags of each station's newest value of the variable or the wind
+    drift: np.ndarray  # per cluster: the change per hour of the centred in-situ rate (the projection's drift)
+    newest_report: pd.Timestamp  # the newest observation time
+    learning: str = ""  # before the settings are pinned: what is being learned
 
     @property
     def clusters(self) -> pd.DataFrame:
@@ -181,13 +179,9 @@ def _compute(ctx: Follow, state: FollowState, obs: pd.DataFrame, step_cfg, netwo
     provisional[:n_final] = False
     terms["provisional"] = provisional
     terms["one_sided"] = np.broadcast_to(one[core][:, None], (k, n_c)).copy()
-    from ..qc import flag_table
-
     flags = flag_table(chk.data.observations, chk.qc)
-    block = Block(plan, times[f:], terms, n_final, reach, _doubts(chk, plan, flags), drift)
-    block.flags = flags
-    block.newest_report = pd.Timestamp(obs["time"].max())
-    return block
+    return Block(plan, times[f:], terms, n_final, reach, flags, _doubts(chk, plan, flags), drift,
+                 pd.Timestamp(obs["time"].max()))
 
 
 def _store_qc(state: FollowState, store: Store, block: Block) -> None:
@@ -310,18 +304,15 @@ def _latest_table(latest: al.Latest, block: Block) -> pd.DataFrame:
 
 
 def _update_minimum(state: FollowState, block: Block) -> None:
-    v = block.terms["value"]
-    names = block.clusters["cluster"].astype(str).tolist()
-    with np.errstate(invalid="ignore"):
-        ok = np.isfinite(v).any(axis=0)
-        idx = np.argmin(np.where(np.isfinite(v), v, np.inf), axis=0)
-    for j, c in enumerate(names):
-        if not ok[j]:
-            continue
-        val = float(v[idx[j], j])
-        old = state.minimum.get(c)
-        if old is None or val < old[0]:
-            state.minimum[c] = [val, iso_utc(block.times[idx[j]])]
+    """Each cluster's lowest value so far, and when (``state.minimum``: cluster -> [value, time])."""
+    v = np.where(np.isfinite(block.terms["value"]), block.terms["value"], np.inf)
+    idx = np.argmin(v, axis=0)
+    low = v[idx, np.arange(v.shape[1])]
+    names = block.clusters["cluster"].astype(str).to_numpy()
+    old = np.array([state.minimum.get(c, [np.inf])[0] for c in names], float)
+    lower = np.flatnonzero(np.isfinite(low) & (low < old))
+    when = block.times[idx[lower]].strftime("%Y-%m-%dT%H:%M:%SZ")
+    state.minimum.update(zip(names[lower].tolist(), ([float(a), t] for a, t in zip(low[lower], when))))
 
 
 def _trim(obs: pd.DataFrame, block: Block) -> pd.DataFrame:
@@ -382,19 +373,20 @@ def render(ctx: Follow, state: FollowState, store: Store, block: Block, latest: 
             for s in sinks:
                 s.write(part)
             history.write(part)
-    _write_csv(out, state, store, block, layout)
+    _write_csv(ctx, state, store, block, layout)
     _write_records(ctx, state, store, block, layout)
     recent = store.alerts(state, max(0, state.alert_count - RECENT_ALERTS))
     write_page(out / "now.html", ctx=ctx, state=state, block=block, latest=latest, history=history, recent=recent)
     _write_alerts(out, state, store)
 
 
-def _write_csv(out: Path, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
-    """budget.csv: the final rows' stored lines, then this call's open rows (as a batch run writes it, and
-    not above the same row limit)."""
-    from ..report.tables import CSV_ROW_LIMIT, csv_rows
+def _write_csv(ctx: Follow, state: FollowState, store: Store, block: Block, layout: Layout) -> None:
+    """budget.csv: the final rows' stored lines, then this call's open rows (as a batch run writes it: not
+    above the same row limit, unless --csv)."""
+    from ..report.tables import csv_rows, csv_wanted
 
-    if len(layout.times) * len(layout.clusters) > CSV_ROW_LIMIT:
+    out = ctx.out
+    if not csv_wanted(len(layout.times) * len(layout.clusters), ctx.csv):
         (out / "budget.csv").unlink(missing_ok=True)
         return
     k = block.n_final

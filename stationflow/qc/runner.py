@@ -40,7 +40,7 @@ from .neighbours import SpatialTest
 from .persistence import Slots, not_persistent, regular_slots
 from .range import within_range
 from .steps import plausible_steps
-from .thresholds import SPATIAL_VARIABLES, is_concentration, thresholds
+from .thresholds import SPATIAL_VARIABLES, is_concentration, persistence_rule, thresholds
 
 log = logging.getLogger(__name__)
 
@@ -195,8 +195,9 @@ class _Run:
 
     def persistence_test(self, v: str) -> None:
         x, calm_speed = self.arr[v], self.cfg["qc"]["calm_speed"]
-        if v in self.th["persistence"] or is_concentration(v, self.cfg):
-            mr, win = self.th["persistence"].get(v, (1e-9, 60.0))
+        rule = persistence_rule(v, self.cfg, self.th)
+        if rule is not None:
+            mr, win = rule
             exempt = None
             if v == "wind_speed":
                 exempt = x < calm_speed

@@ -55,6 +55,19 @@ def thresholds(config: Config) -> dict[str, dict]:
     return {"range": rng, "step": step, "persistence": pers, "spatial_floor": floor}
 
 
+#: the persistence rule of a concentration without its own: any change at all within 60 min (common practice)
+CONCENTRATION_PERSISTENCE = (1e-9, 60.0)
+
+
+def persistence_rule(name: str, config: Config, th: dict | None = None) -> tuple[float, float] | None:
+    """(minimum range, window minutes) of the persistence test of ``name``, or None when it is not tested
+    (``th``: :func:`thresholds` of ``config``, when already at hand)."""
+    table = (th or thresholds(config))["persistence"]
+    if name in table:
+        return table[name]
+    return CONCENTRATION_PERSISTENCE if is_concentration(name, config) else None
+
+
 def is_concentration(name: str, config: Config) -> bool:
     """True for a concentration (``observations.kinds``, see :func:`stationflow.variables.kind_of`): tested as
     non-negative, for persistence, and by the spatial test on ln(C)."""
