@@ -257,6 +257,7 @@ def test_the_page_is_self_contained_and_says_its_assumption(night):
     page = (night.out / "now.html").read_text()
     assert "http-equiv='refresh'" in page and "<script" not in page and "src=" not in page
     assert "present in-situ rate goes on" in page and "°F" in page  # the export is in degF: shown in degF
+    assert "the freezing point is used" in page  # no follow.critical in the demo: the default is said
     assert "Decision aid" in page or "decision aid" in page
     assert page.count("<svg") >= 10  # a sparkline per cluster
 

@@ -47,7 +47,6 @@ class Chunk:
     header: bytes
     body: bytes
     first_line: int
-    restarted: bool  # the file was truncated or rotated: read again from its start
 
 
 def _fingerprint(data: bytes) -> str:
@@ -127,5 +126,5 @@ def poll(source: Path, marks: dict[str, dict]) -> tuple[list[Chunk], dict[str, d
         mark.head = _fingerprint(head[:min(mark.offset, HEAD_BYTES)])
         new_marks[key] = mark.to_json()
         if data:
-            chunks.append(Chunk(key, header, data, first_line, restarted))
+            chunks.append(Chunk(key, header, data, first_line))
     return chunks, new_marks, restarts

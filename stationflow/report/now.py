@@ -158,7 +158,10 @@ def write_page(path, *, ctx, state, block, latest, history, recent: list[dict]) 
     body += _cautions(kind)
     body += _alerts_section(recent, state.alert_count, zone)
     body.append("<h2>Clusters</h2>")
-    critical_note = ("Critical value: follow.critical. <b>Reaches it</b>: if the present in-situ rate goes on "
+    critical_note = ("Critical value: follow.critical" + (
+        " is not set, so the freezing point is used: set the critical temperature of your crop and bud stage"
+        if cfg["follow"]["critical"] in ({}, "") and kind == "temperature" else "")
+        + ". <b>Reaches it</b>: if the present in-situ rate goes on "
                      "(the assumption: advection is shown beside it and left out, since it stops or starts with the "
                      "wind), with ± one standard error and the two-standard-error range; the error includes the "
                      "rate's own drift over the last window.")
