@@ -111,10 +111,26 @@ def _run(fn, *, quiet: bool):
         _err(_os_error_line(exc))
         raise typer.Exit(2) from None
     except Exception as exc:  # noqa: BLE001 - the last line of defence: a bug, not a user error
+        signum = _cancelling_signal(exc)
+        if signum is not None:  # a signal that stopped a pyarrow read: the same as when it reaches Python
+            _err("terminated (SIGTERM); the run stopped and the output folder was left as it was" if signum == 15
+                 else "interrupted; the run stopped and the output folder was left as it was")
+            raise typer.Exit(143 if signum == 15 else 130) from None
         if STATE["verbose"]:
             traceback.print_exc()
         _err(f"unexpected fault ({type(exc).__name__}: {exc}); rerun with --verbose and please report it")
         raise typer.Exit(1) from None
+
+
+def _cancelling_signal(exc: BaseException) -> int | None:
+    """The signal number when ``exc`` is pyarrow's ``ArrowCancelled`` (pyarrow stops a long read on SIGINT or
+    SIGTERM itself and raises it instead of letting the signal reach Python), else None."""
+    import re
+
+    if type(exc).__name__ != "ArrowCancelled":
+        return None
+    m = re.search(r"signal (\d+)", str(exc))
+    return int(m.group(1)) if m else 2
 
 
 def _config(path: Optional[Path]):
@@ -436,6 +452,12 @@ def _follow_job(obs: Path, stations: Path | None, cfg, out: Path, report, *, eve
             if once:
                 return
             time.sleep(every)
+    except Exception as exc:  # noqa: BLE001 - only a signal's cancellation is a stop; the rest goes on up
+        if _cancelling_signal(exc) is None:
+            raise
+        if not quiet:
+            typer.echo(f"stopped; the state is kept in {out} (run the same command again to resume)")
+        return
     except KeyboardInterrupt:
         if not quiet:
             typer.echo(f"stopped; the state is kept in {out} (run the same command again to resume)")

@@ -119,3 +119,22 @@ def test_sigkill_leaves_no_worker_and_the_next_run_tidies_up(export, duration, t
     assert proc.returncode == 0
     _whole_run(out)
     assert not list(tmp_path.glob(".out.stationflow-*"))
+
+
+@pytest.mark.parametrize("signum, code, word", [(15, 143, "terminated"), (2, 130, "interrupted")])
+def test_a_signal_that_stops_a_pyarrow_read_ends_like_the_signal(tmp_path, monkeypatch, runner, signum, code, word):
+    # pyarrow stops a long CSV read on SIGINT/SIGTERM itself and raises ArrowCancelled (seen in CI: "received
+    # signal 15"): the run must end as the signal does, not as an unexpected fault
+    import pyarrow as pa
+
+    from stationflow import cli
+
+    def cancelled(*args, **kwargs):
+        raise pa.lib.ArrowCancelled(f"Operation cancelled. Detail: received signal {signum}")
+
+    monkeypatch.setattr(cli, "_budget_job", cancelled)
+    frost = Path(__file__).resolve().parent.parent / "sample_data" / "frost"
+    res = runner.invoke(cli.app, ["budget", "--stations", str(frost / "stations.csv"), "--obs",
+                                  str(frost / "observations.csv"), "--out", str(tmp_path / "out")])
+    assert res.exit_code == code and res.stderr.strip().startswith(f"error: {word}")
+    assert not (tmp_path / "out").exists()
